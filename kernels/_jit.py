@@ -1,0 +1,19 @@
+"""The one place for JIT options of every relaxtui kernel.
+
+``cache=True`` keeps compiled machine code on disk between processes,
+``nogil=True`` lets a user-interface thread run while a kernel sweeps, and
+fastmath stays off so results are reproducible bit for bit.
+"""
+
+from numba import njit
+
+JIT_OPTIONS = dict(cache=True, nogil=True, fastmath=False)
+
+
+def kernel(fn=None, *, parallel=False):
+    """Decorate a kernel with the project's JIT options (compiled on first call)."""
+
+    def wrap(f):
+        return njit(parallel=parallel, **JIT_OPTIONS)(f)
+
+    return wrap(fn) if fn is not None else wrap

@@ -1,0 +1,5 @@
+"""``python -m relaxtui`` runs the command line."""
+
+from relaxtui.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,175 @@
+"""The ``relaxtui`` command line.
+
+This module must stay light: ``relaxtui --help`` imports neither numba nor
+textual. Each subcommand's handler is imported only when it runs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from relaxtui.errors import RelaxError, UsageError
+
+SUBCOMMANDS = ("init", "info", "solve", "sweep", "open", "render")
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error and exit status 2."""
+
+    def error(self, message):  # noqa: D401 - argparse API
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def _omega(text: str):
+    if text == "auto":
+        return "auto"
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"omega must be a number in (0, 2) or 'auto', not {text!r}")
+    if not 0.0 < value < 2.0:
+        raise argparse.ArgumentTypeError(f"omega must lie in (0, 2), got {value:g}")
+    return value
+
+
+def _positive_float(name):
+    def parse(text):
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{name} must be a number, not {text!r}")
+        if not value > 0.0 or value != value or value == float("inf"):
+            raise argparse.ArgumentTypeError(f"{name} must be a positive finite number, got {text}")
+        return value
+
+    return parse
+
+
+def _positive_int(name):
+    def parse(text):
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{name} must be a whole number, not {text!r}")
+        if value < 1:
+            raise argparse.ArgumentTypeError(f"{name} must be at least 1, got {value}")
+        return value
+
+    return parse
+
+
+def _add_solver_options(p: argparse.ArgumentParser, *, omega: bool = True) -> None:
+    from relaxtui.methods_names import METHOD_NAMES
+
+    p.add_argument("--method", choices=METHOD_NAMES, help="relaxation method (default: the case's [solver] table, else red-black-sor)")
+    if omega:
+        p.add_argument("--omega", type=_omega, metavar="W|auto", help="relaxation factor in (0, 2), or 'auto' to estimate the optimum")
+    p.add_argument("--tolerance", type=_positive_float("tolerance"), metavar="T", help="largest error left in the field, in the case's unit")
+    p.add_argument("--max-sweeps", type=_positive_int("max-sweeps"), metavar="N", help="stop after N sweeps (or cycles)")
+
+
+def _add_picture_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--scale", type=_positive_int("scale"), default=1, metavar="K", help="picture pixels per cell (integer, default 1)")
+    p.add_argument("--isolines", type=_positive_int("isolines"), metavar="N", help="draw N evenly spaced isolines on the picture")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(
+        prog="relaxtui",
+        description="Steady-state field studies (Laplace and Poisson) on 2-D grids drawn as PNG pictures.",
+        epilog="`relaxtui CASE.toml` is short for `relaxtui open CASE.toml`.",
+    )
+    parser.add_argument("--version", action="version", version=f"relaxtui {_version()}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("init", help="write a starter case file for a picture", description="Write a starter case TOML next to MASK.png: one region per colour, kinds left for you to choose.")
+    p.add_argument("mask", metavar="MASK.png")
+    p.add_argument("-o", "--output", metavar="CASE.toml", help="where to write (default: the picture's name with .toml)")
+    p.add_argument("--force", action="store_true", help="overwrite an existing file")
+
+    p = sub.add_parser("info", help="describe a case: grid, regions, faces, memory", description="Load a case and print its grid, regions and the memory a solve needs.")
+    p.add_argument("case", metavar="CASE.toml")
+
+    p = sub.add_parser("solve", help="solve a case headless and write field, report and history", description="Solve a case to its tolerance without a screen.")
+    p.add_argument("case", metavar="CASE.toml")
+    _add_solver_options(p)
+    p.add_argument("--time-limit", type=_positive_float("time-limit"), metavar="S", help="stop after S seconds (outputs are still written)")
+    p.add_argument("--initial", metavar="FIELD.npy", help="start from this field (.npy, or a .npz bundle) instead of the default guess")
+    p.add_argument("--out", metavar="FIELD.npy", help="write the field (float64, NaN outside the domain)")
+    p.add_argument("--report", metavar="REPORT.json", help="write the report")
+    p.add_argument("--history", metavar="HIST.csv", help="write the per-sweep history")
+    p.add_argument("--picture", metavar="FIELD.png", help="write a colour picture of the field")
+    p.add_argument("--vtk", metavar="FIELD.vti", help="write the field as VTK ImageData XML")
+    p.add_argument("--bundle", metavar="RUN.npz", help="write field, codes, history and report in one numpy archive")
+    _add_picture_options(p)
+    p.add_argument("-q", "--quiet", action="store_true", help="print nothing but errors")
+
+    p = sub.add_parser("sweep", help="compare relaxation factors or methods on one case", description="Solve once per setting at the same tolerance and tabulate sweeps, seconds and factor.")
+    p.add_argument("case", metavar="CASE.toml")
+    p.add_argument("--omega", metavar="START:STOP:STEP", help="relaxation factors to try, e.g. 1.80:1.99:0.01")
+    p.add_argument("--method", help="method for the omega range (sor or red-black-sor, default red-black-sor)")
+    p.add_argument("--methods", metavar="M1,M2,...", help="methods to compare, each at auto omega")
+    p.add_argument("--tolerance", type=_positive_float("tolerance"), metavar="T")
+    p.add_argument("--max-sweeps", type=_positive_int("max-sweeps"), metavar="N")
+    p.add_argument("--time-limit", type=_positive_float("time-limit"), metavar="S", help="time limit per solve")
+    p.add_argument("--csv", metavar="FILE", help="also write the table as CSV")
+    p.add_argument("-q", "--quiet", action="store_true")
+
+    p = sub.add_parser("open", help="open a case in the terminal UI", description="Watch and tune a solve in the terminal UI.")
+    p.add_argument("case", metavar="CASE.toml")
+    _add_solver_options(p)
+    p.add_argument("--run", action="store_true", help="start solving at once")
+
+    p = sub.add_parser("render", help="draw a saved field as a PNG picture", description="Draw a field (.npy) of a case as a colour picture with a colour bar.")
+    p.add_argument("field", metavar="FIELD.npy")
+    p.add_argument("--case", required=True, metavar="CASE.toml")
+    p.add_argument("-o", "--output", required=True, metavar="FIELD.png")
+    _add_picture_options(p)
+    return parser
+
+
+def _version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("relaxtui")
+    except Exception:  # not installed (running from a source tree)
+        return "unknown"
+
+
+def _handler(command: str):
+    if command == "init":
+        from relaxtui.starter import run_init as h
+    elif command == "info":
+        from relaxtui.inspect import run_info as h
+    elif command in ("solve", "sweep"):
+        from relaxtui import run
+
+        h = run.run_solve if command == "solve" else run.run_sweep
+    elif command == "open":
+        from relaxtui.tui.app import run_open as h
+    elif command == "render":
+        from relaxtui.export import run_render as h
+    else:  # pragma: no cover - argparse restricts the choices
+        raise UsageError(f"unknown command {command!r}")
+    return h
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] not in SUBCOMMANDS and not argv[0].startswith("-") and argv[0].endswith(".toml"):
+        argv.insert(0, "open")
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    try:
+        return int(_handler(args.command)(args) or 0)
+    except RelaxError as exc:
+        print(f"relaxtui {args.command}: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print(f"relaxtui {args.command}: interrupted", file=sys.stderr)
+        return 130

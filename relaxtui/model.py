@@ -1,0 +1,100 @@
+"""The validated problem: what a case file and its picture mean.
+
+A :class:`Case` is produced by :func:`relaxtui.case.load_case` and consumed by
+the operator assembly (``relaxtui.operator``), the reports and the UI. It holds
+no numba objects and is cheap to build.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+# Region kinds, in the order of the contract's table. The integer of a kind is
+# its position here; kernels receive these integers, never the strings.
+KINDS = ("interior", "fixed", "outside", "flux", "convection")
+INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = range(5)
+KIND_CODE = {name: i for i, name in enumerate(KINDS)}
+
+# The methods a case's [solver] table, the command line and the UI accept.
+# The registry with their set-up lives in relaxtui.methods.
+DEFAULT_METHOD = "red-black-sor"
+DEFAULT_OMEGA = "auto"
+DEFAULT_TOLERANCE = 1e-3
+DEFAULT_MAX_SWEEPS = 200_000
+
+
+@dataclass(frozen=True)
+class Region:
+    """One declared colour of the picture and what it means.
+
+    Parameters that do not apply to the kind are ``None``; ``conductivity`` of
+    a fixed region is ``None`` unless the case gives one (then a face uses the
+    neighbouring interior cell's conductivity alone).
+    """
+
+    name: str
+    color: str  # "#rrggbb" lower case, or "transparent"
+    kind: str  # one of KINDS
+    conductivity: float | None = None  # interior: k (default 1.0); fixed: optional
+    source: float = 0.0  # interior only: per unit volume, into the domain
+    value: float | None = None  # fixed
+    flux: float | None = None  # flux: per unit face area, into the domain
+    coefficient: float | None = None  # convection: film coefficient
+    ambient: float | None = None  # convection
+    line: int | None = None  # line of the [[region]] header in the TOML file
+
+    @property
+    def kind_code(self) -> int:
+        return KIND_CODE[self.kind]
+
+
+@dataclass(frozen=True)
+class SolverDefaults:
+    """The case's optional ``[solver]`` table; ``None`` where it is silent."""
+
+    method: str | None = None
+    omega: float | str | None = None  # a number in (0, 2) or "auto"
+    tolerance: float | None = None
+    max_sweeps: int | None = None
+
+
+@dataclass(eq=False)
+class Case:
+    """A loaded, validated case.
+
+    ``codes[row, col]`` is the index into ``regions`` of the region the pixel
+    belongs to, in image order (row 0 is the top of the picture).
+    """
+
+    path: Path | None
+    mask_path: Path
+    regions: tuple[Region, ...]
+    codes: np.ndarray  # uint8, shape (rows, cols)
+    cell_size: float = 1.0
+    depth: float = 1.0
+    snap: bool = False
+    snapped: int = 0
+    title: str | None = None
+    quantity: str = "field"
+    unit: str = ""
+    solver: SolverDefaults = field(default_factory=SolverDefaults)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (int(self.codes.shape[0]), int(self.codes.shape[1]))
+
+    @property
+    def name(self) -> str:
+        """A short name for reports: the TOML file's stem, else the mask's."""
+        return (self.path or self.mask_path).stem
+
+    def kind_codes(self) -> np.ndarray:
+        """Per-region kind integers (int8), index-aligned with ``regions``."""
+        return np.array([r.kind_code for r in self.regions], dtype=np.int8)
+
+    def region_counts(self) -> np.ndarray:
+        """Number of cells of each region (int64), index-aligned with ``regions``."""
+        return np.bincount(self.codes.ravel(), minlength=len(self.regions)).astype(np.int64)
