@@ -1,0 +1,297 @@
+"""The stopping rule: when is the field at equilibrium to the user's tolerance?
+
+A pure module (numpy only, no numba, no screen). It is fed the history of a
+stationary iteration, one record per sweep (the largest update
+``max |u_k - u_{k-1}|`` and the largest residual of the sweep), and decides.
+
+The estimate
+------------
+For a linear stationary iteration ``e_{k+1} = M e_k`` whose slowest mode decays
+by the factor ``rho`` per sweep, the update of sweep ``k + 1`` is
+``(M - I) e_k``; on that mode ``|e_k| = |Δ_{k+1}| / (1 - rho)`` and hence
+
+    |e_k| ≈ Δ_k · rho / (1 - rho)        (the geometric tail of the updates)
+
+(e.g. Hageman & Young, *Applied Iterative Methods*, 1981, ch. 5, on stopping
+tests for SOR; common practice). A small update is therefore *not*
+convergence: with rho = 0.9999 the error is ten thousand times the update.
+
+Three things make the naive test dishonest, and the rule guards each:
+
+* **Early decay is faster than the asymptotic one.** Rough error components
+  dominate the updates (an update multiplies each mode by ``1 - λ``, up to 2
+  for rough modes but tiny for the smooth ones that carry the error), and they
+  die first, so a short-window ratio of updates underestimates rho. The rule
+  measures the decay rate over two consecutive windows and, while the rate is
+  still slowing down, extrapolates it (a decay rate that falls from window to
+  window is assumed to keep falling by as much again).
+* **SOR is not monotone** (complex eigenvalues above the optimal ω, a Jordan
+  block at it): the updates oscillate. Rates are measured on the running
+  maximum of the updates over a short envelope, and the error bound uses that
+  maximum, not the last update.
+* **The rate estimate is uncertain.** The bound uses ``1 - rho`` shrunk by
+  a safety factor and is multiplied by another, so the reported estimated
+  error is an upper bound in practice; the tests check it against the exact
+  discrete solution over many methods, ω, shapes and tolerances.
+
+When the caller knows a theoretical factor for the method (Young's relations
+from an estimated Jacobi spectral radius), it is used as a floor for rho.
+
+Decisions (the contract's statuses): ``converged``, ``stalled`` (no new
+smallest update for a long window, or the updates have reached the
+floating-point floor while the bound is still above the tolerance),
+``diverged`` (non-finite values or sustained growth), ``sweep-limit``,
+``time-limit``, ``cancelled``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+CONVERGED = "converged"
+STALLED = "stalled"
+DIVERGED = "diverged"
+SWEEP_LIMIT = "sweep-limit"
+TIME_LIMIT = "time-limit"
+CANCELLED = "cancelled"
+STATUSES = (CONVERGED, STALLED, DIVERGED, SWEEP_LIMIT, TIME_LIMIT, CANCELLED)
+
+# Tuning constants of the estimate (validated by tests/test_stopping*.py against
+# exact discrete solutions; change them only with those tests).
+MIN_WINDOW = 4  # shortest window (sweeps) a decay rate is measured over
+WINDOW_FRACTION = 0.25  # a window is this fraction of the sweeps since the last restart
+ENVELOPE = 8  # running maximum of the updates over this many sweeps
+RATE_SAFETY = 1.5  # (1 - rho) is divided by this before use
+ERROR_SAFETY = 2.0  # the geometric tail is multiplied by this
+FLOOR_ULPS = 64.0  # updates below FLOOR_ULPS * eps * scale are rounding noise
+STALL_MIN_WINDOW = 500  # sweeps without a new smallest update before "stalled"
+GROWTH_LIMIT = 1e6  # sustained growth by this factor over the best update is divergence
+
+
+@dataclass(frozen=True)
+class Decision:
+    status: str | None  # None: keep going
+    estimated_error: float
+    factor: float | None
+    eta_sweeps: float | None  # sweeps still needed to reach the tolerance at the current factor
+
+
+def _envelope_at(u: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """Running maximum of ``u`` over the ENVELOPE entries ending at each index."""
+    offsets = np.arange(-(ENVELOPE - 1), 1)
+    cols = np.clip(idx[:, None] + offsets[None, :], 0, None)
+    return u[cols].max(axis=1)
+
+
+def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = None):
+    """Bound the remaining error after each sweep ``ends`` of one run segment.
+
+    Parameters
+    ----------
+    updates : 1-D array
+        Largest update of each sweep since the segment started (a new segment
+        starts whenever the iteration itself changes, e.g. a new ω).
+    ends : array of int, optional
+        Sweep indices (0-based, into ``updates``) to estimate after; default
+        the last one.
+    prior_factor : float, optional
+        A theoretical convergence factor for the method, used as a lower bound
+        on the factor (never to make the bound smaller).
+
+    Returns
+    -------
+    error, factor, measured, mature : arrays (one entry per end)
+        ``error`` is the bound on max |u - u_exact| in field units (inf where
+        not yet estimable); ``factor`` the factor used for it (NaN where
+        unknown); ``measured`` the raw decay factor of the recent window;
+        ``mature`` whether the decay rate has settled enough to trust.
+    """
+    u = np.asarray(updates, dtype=np.float64)
+    n = len(u)
+    k = np.atleast_1d(np.asarray(n - 1 if ends is None else ends, dtype=np.int64))
+    m = np.maximum(MIN_WINDOW, (WINDOW_FRACTION * (k + 1)).astype(np.int64))
+    ok = k - 2 * m >= 0
+    k0 = np.where(ok, k, 0)
+    m0 = np.where(ok, m, 0)
+    e_now = _envelope_at(u, k0)
+    e_mid = _envelope_at(u, k0 - m0)
+    e_old = _envelope_at(u, k0 - 2 * m0)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        r1 = (np.log(e_mid) - np.log(e_now)) / np.maximum(m0, 1)  # recent decay rate per sweep
+        r2 = (np.log(e_old) - np.log(e_mid)) / np.maximum(m0, 1)  # the window before
+        # still slowing down: assume the rate keeps falling by as much again
+        rate = np.where(r2 > r1, np.maximum(2.0 * r1 - r2, r1 / 4.0), r1)
+        rho = np.exp(-rate)
+        measured = np.exp(-r1)
+    if prior_factor is not None:
+        rho = np.maximum(rho, prior_factor)
+    gap = (1.0 - rho) / RATE_SAFETY
+    finite = ok & np.isfinite(e_now) & np.isfinite(r1) & np.isfinite(r2) & (rate > 0.0) & (gap > 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # the tail of the updates from this sweep on, Δ/(1 - rho) (a little looser
+        # than Δ·rho/(1 - rho)), with both safety factors applied
+        error = np.where(finite, ERROR_SAFETY * e_now / np.where(finite, gap, 1.0), np.inf)
+    error = np.where(ok & (e_now == 0.0), 0.0, error)
+    mature = finite & (r2 <= 1.25 * r1 + 1e-12)
+    factor = np.where(finite, rho, np.nan)
+    return error, factor, np.where(ok, measured, np.nan), mature
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """What the rule knows after the latest sweep."""
+
+    error: float  # bound on max |u - u_exact| in field units (inf when not yet estimable)
+    factor: float | None  # convergence factor per sweep used for the bound
+    measured: float | None  # raw decay factor of the recent window
+    mature: bool  # whether the decay rate has settled enough to trust the bound
+
+
+def estimate(updates: np.ndarray, *, prior_factor: float | None = None) -> Estimate:
+    """The estimate after the last sweep of ``updates`` (see :func:`estimates`)."""
+    if len(updates) == 0:
+        return Estimate(math.inf, None, None, False)
+    if not math.isfinite(float(updates[-1])):
+        return Estimate(math.inf, None, None, False)
+    e, f, meas, mature = estimates(updates, prior_factor=prior_factor)
+    fac = None if math.isnan(f[0]) else float(f[0])
+    return Estimate(float(e[0]), fac, None if math.isnan(meas[0]) else float(meas[0]), bool(mature[0]))
+
+
+class StoppingRule:
+    """Decides after each chunk of sweeps whether a run should stop.
+
+    Parameters
+    ----------
+    tolerance : float
+        Largest error the user accepts, in field units (> 0).
+    max_sweeps : int
+        Sweep limit of the run.
+    time_limit : float or None
+        Seconds of solving allowed.
+    scale : float
+        Magnitude of the field (largest |value| among boundary values and the
+        initial field); sets the floating-point floor of the updates.
+    """
+
+    def __init__(self, tolerance: float, max_sweeps: int, time_limit: float | None = None, scale: float = 1.0):
+        if not tolerance > 0.0:
+            raise ValueError("tolerance must be > 0")
+        self.tolerance = float(tolerance)
+        self.max_sweeps = int(max_sweeps)
+        self.time_limit = time_limit
+        self.scale = max(abs(float(scale)), np.finfo(float).tiny)
+        self.prior_factor: float | None = None
+        self._updates = np.empty(1024)
+        self._n = 0
+        self._segment = 0  # index where the current segment (same iteration) starts
+        self._best = math.inf
+        self._best_at = 0
+        self.last = Decision(None, math.inf, None, None)
+
+    # -- feeding ---------------------------------------------------------------
+    def add(self, updates) -> None:
+        """Append the largest update of each sweep just done."""
+        updates = np.asarray(updates, dtype=np.float64)
+        need = self._n + len(updates)
+        if need > len(self._updates):
+            grown = np.empty(max(need, 2 * len(self._updates)))
+            grown[: self._n] = self._updates[: self._n]
+            self._updates = grown
+        self._updates[self._n : need] = updates
+        # "best" moves only on a 1 % improvement; the stall test watches it
+        for i in np.flatnonzero(updates < self._best * 0.99):
+            if updates[i] < self._best * 0.99:
+                self._best = float(updates[i])
+                self._best_at = self._n + int(i)
+        self._n = need
+
+    def restart(self, prior_factor: float | None = None) -> None:
+        """The iteration changed (new ω, new method): measure rates afresh from here."""
+        self._segment = self._n
+        self.prior_factor = prior_factor
+        self._best = math.inf
+        self._best_at = self._n
+
+    @property
+    def sweeps(self) -> int:
+        return self._n
+
+    @property
+    def updates(self) -> np.ndarray:
+        return self._updates[: self._n]
+
+    # -- deciding --------------------------------------------------------------
+    def recent_errors(self, count: int) -> np.ndarray:
+        """The error bound after each of the last ``count`` sweeps (for the history)."""
+        seg = self._updates[self._segment : self._n]
+        count = min(count, len(seg))
+        if count <= 0:
+            return np.empty(0)
+        ends = np.arange(len(seg) - count, len(seg))
+        return estimates(seg, ends, prior_factor=self.prior_factor)[0]
+
+    def estimate(self) -> Estimate:
+        return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor)
+
+    def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
+        """The decision after the sweeps fed so far (``seconds`` of solving)."""
+        est = self.estimate()
+        eta = None
+        if est.factor is not None and 0.0 < est.factor < 1.0 and math.isfinite(est.error):
+            eta = max(0.0, math.log(self.tolerance / est.error) / math.log(est.factor)) if est.error > self.tolerance else 0.0
+        status = self._status(est, seconds, cancelled)
+        self.last = Decision(status, est.error, est.factor, eta)
+        return self.last
+
+    def _status(self, est: Estimate, seconds: float, cancelled: bool) -> str | None:
+        n = self._n
+        seg = self._updates[self._segment : n]
+        if n and not math.isfinite(self._updates[n - 1]):
+            return DIVERGED
+        if len(seg) and est.mature and est.error <= self.tolerance:
+            return CONVERGED
+        if len(seg) and est.error == 0.0:
+            return CONVERGED  # the field no longer changes at all: it is the discrete solution
+        if self._diverging(seg):
+            return DIVERGED
+        if self._stalled(seg, est):
+            return STALLED
+        if cancelled:
+            return CANCELLED
+        if n >= self.max_sweeps:
+            return SWEEP_LIMIT
+        if self.time_limit is not None and seconds >= self.time_limit:
+            return TIME_LIMIT
+        return None
+
+    def _diverging(self, seg: np.ndarray) -> bool:
+        if len(seg) < 2 * MIN_WINDOW:
+            return False
+        last = seg[-1]
+        if last > GROWTH_LIMIT * max(self.scale, self._best):
+            return True
+        # Sustained growth: the update envelope rose over each of the last two windows
+        # and now exceeds the best update by a large factor.
+        m = max(MIN_WINDOW, int(WINDOW_FRACTION * len(seg)))
+        if len(seg) - 1 < 2 * m:
+            return False
+        k = len(seg) - 1
+        e_now, e_mid, e_old = _envelope_at(seg, np.array([k, k - m, k - 2 * m]))
+        return e_now > e_mid > e_old and e_now > 1e3 * self._best
+
+    def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
+        if len(seg) < 2 * MIN_WINDOW:
+            return False
+        floor = FLOOR_ULPS * np.finfo(float).eps * self.scale
+        recent = seg[-MIN_WINDOW:]
+        if recent.max() <= floor and est.error > self.tolerance:
+            return True  # rounding noise: no further progress is possible
+        window = max(STALL_MIN_WINDOW, (self._n - self._segment) // 2)
+        if est.factor is not None and 0.0 < est.factor < 1.0:
+            # at the measured rate a 1 % improvement takes about 0.01/(1 - rho) sweeps
+            window = max(window, int(5.0 / (1.0 - est.factor)))
+        return self._n - self._best_at > window
