@@ -1,0 +1,663 @@
+"""Loading a case: a TOML file and its PNG picture, validated into a :class:`Case`.
+
+:func:`load_case` implements the case-file contract (../shared/case-format.md)
+completely; every problem is a :class:`CaseError` with a one-line message that
+names the file, the key and, where the TOML text shows it, the line.
+:func:`build_case` runs the checks on an already decoded array of region codes
+(the loader uses it; tests build cases from arrays with it).
+
+Choices where the contract is silent (also in the README):
+
+* numbers must be finite (``inf`` and ``nan`` are refused);
+* ``name`` must be a non-empty string; ``"transparent"`` is matched in any case;
+* the first problem found is reported (top-level keys, then ``[solver]``, then
+  the regions in order, then the picture, then the domain).
+
+Nothing here imports numba at module level; the labelling kernel for the
+solvability check is imported when a case is checked.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from datetime import date, datetime, time
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from relaxtui import memory, picture
+from relaxtui.errors import CaseError
+from relaxtui.methods_names import METHOD_NAMES
+from relaxtui.model import CONVECTION, FIXED, INTERIOR, KINDS, Case, Region, SolverDefaults
+
+TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region")
+SOLVER_KEYS = ("method", "omega", "tolerance", "max_sweeps")
+COMMON_KEYS = ("name", "color", "kind")
+# Keys each kind takes besides name, color and kind; and which of them are required.
+KIND_KEYS = {
+    "interior": ("conductivity", "source"),
+    "fixed": ("value", "conductivity"),
+    "outside": (),
+    "flux": ("flux",),
+    "convection": ("coefficient", "ambient"),
+}
+REQUIRED_KEYS = {"interior": (), "fixed": ("value",), "outside": (), "flux": ("flux",), "convection": ("coefficient", "ambient")}
+POSITIVE_KEYS = ("conductivity", "coefficient")
+ALL_REGION_KEYS = COMMON_KEYS + ("conductivity", "source", "value", "flux", "coefficient", "ambient")
+DEFAULT_CONDUCTIVITY = 1.0
+MAX_REGIONS = picture.MAX_REGIONS
+
+_KIND_CHOICES = "interior, fixed, outside, flux, convection"
+
+
+# ---------------------------------------------------------------------------
+# Where keys sit in the TOML text (tomllib gives no positions for keys)
+
+_BARE_OR_QUOTED = r'"(?:[^"\\]|\\.)*"|\'[^\']*\'|[A-Za-z0-9_-]+'
+_KEY_RE = re.compile(rf"^({_BARE_OR_QUOTED})\s*[.=]")
+_AOT_RE = re.compile(r"^\[\[\s*(.+?)\s*\]\]\s*(?:#.*)?$")
+_TABLE_RE = re.compile(r"^\[\s*([^\[].*?)\s*\]\s*(?:#.*)?$")
+_FIRST_RE = re.compile(rf"^\s*({_BARE_OR_QUOTED})")
+
+
+def _unquote(text: str) -> str:
+    if len(text) >= 2 and text[0] == text[-1] and text[0] in "\"'":
+        inner = text[1:-1]
+        if text[0] == '"':
+            try:
+                return tomllib.loads(f"k = {text}")["k"]
+            except tomllib.TOMLDecodeError:
+                return inner
+        return inner
+    return text
+
+
+def _first_component(dotted: str) -> str:
+    m = _FIRST_RE.match(dotted)
+    return _unquote(m.group(1)) if m else dotted.strip()
+
+
+class KeyLines:
+    """Line numbers (1-based) of headers and key assignments in a TOML text.
+
+    A best-effort scan of the text, good for error messages: ``top[key]``,
+    ``tables[name][key]`` (``tables[name][""]`` is the header) and
+    ``regions[i]`` = ``(header line, {key: line})`` for the i-th
+    ``[[region]]``.
+    """
+
+    def __init__(self, text: str):
+        self.top: dict[str, int] = {}
+        self.tables: dict[str, dict[str, int]] = {}
+        self.regions: list[tuple[int, dict[str, int]]] = []
+        current = self.top
+        open_quote = None
+        for no, raw in enumerate(text.splitlines(), 1):
+            if open_quote:
+                if raw.count(open_quote) % 2 == 1:
+                    open_quote = None
+                continue
+            s = raw.strip()
+            if not s or s.startswith("#"):
+                continue
+            m = _AOT_RE.match(s)
+            if m:
+                name = m.group(1)
+                first = _first_component(name)
+                self.top.setdefault(first, no)
+                if first == "region" and _unquote(name) == "region":
+                    entry: dict[str, int] = {}
+                    self.regions.append((no, entry))
+                    current = entry
+                else:
+                    current = {}
+                continue
+            m = _TABLE_RE.match(s)
+            if m:
+                name = m.group(1)
+                first = _first_component(name)
+                self.top.setdefault(first, no)
+                if first == "region" and self.regions:
+                    # a sub-table of the last region: point its key at the header
+                    rest = name.split(".", 1)[1] if "." in name else name
+                    self.regions[-1][1].setdefault(_first_component(rest), no)
+                    current = {}
+                else:
+                    current = self.tables.setdefault(first, {})
+                    current.setdefault("", no)
+                continue
+            m = _KEY_RE.match(s)
+            if m:
+                current.setdefault(_unquote(m.group(1)), no)
+                rest = s[m.end() :]
+                for q in ('"""', "'''"):
+                    if rest.count(q) % 2 == 1:
+                        open_quote = q
+                        break
+
+    def top_line(self, key: str) -> int | None:
+        return self.top.get(key)
+
+    def table_line(self, table: str, key: str | None = None) -> int | None:
+        lines = self.tables.get(table, {})
+        if key is not None and key in lines:
+            return lines[key]
+        return lines.get("", self.top.get(table))
+
+    def region_line(self, i: int, key: str | None = None) -> int | None:
+        if i < len(self.regions):
+            header, keys = self.regions[i]
+            if key is not None and key in keys:
+                return keys[key]
+            return header
+        return self.top.get("region")
+
+
+# ---------------------------------------------------------------------------
+# Messages
+
+def _where(label: str, line: int | None) -> str:
+    return f"{label}:{line}" if line else label
+
+
+def _fail(label: str, line: int | None, message: str) -> CaseError:
+    return CaseError(f"{_where(label, line)}: {message}")
+
+
+def _type_name(value) -> str:
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int):
+        return "an integer"
+    if isinstance(value, float):
+        return "a number"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, list):
+        return "an array"
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, (datetime, date, time)):
+        return "a date/time"
+    return type(value).__name__  # pragma: no cover - tomllib makes no other types
+
+
+def _show(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float):
+        return f"{value:g}"
+    if isinstance(value, str):
+        return repr(value)
+    return str(value)
+
+
+def _suggest(key: str, allowed: Sequence[str]) -> str:
+    close = difflib.get_close_matches(key, list(allowed), n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+class _Checker:
+    """Type and range checks that raise a CaseError with file, key and line."""
+
+    def __init__(self, label: str):
+        self.label = label
+
+    def fail(self, line, message):
+        raise _fail(self.label, line, message)
+
+    def number(self, value, key, line, who="", *, positive=False) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.fail(line, f"{who}key '{key}' must be a number, not {_type_name(value)} ({_show(value)})")
+        x = float(value)
+        if not math.isfinite(x):
+            self.fail(line, f"{who}key '{key}' must be a finite number, got {_show(value)}")
+        if positive and not x > 0.0:
+            self.fail(line, f"{who}key '{key}' must be > 0, got {_show(value)}")
+        return x
+
+    def string(self, value, key, line, who="", *, nonempty=False) -> str:
+        if not isinstance(value, str):
+            self.fail(line, f"{who}key '{key}' must be a string, not {_type_name(value)} ({_show(value)})")
+        if nonempty and not value.strip():
+            self.fail(line, f"{who}key '{key}' must not be empty")
+        return value
+
+    def boolean(self, value, key, line, who="") -> bool:
+        if not isinstance(value, bool):
+            self.fail(line, f"{who}key '{key}' must be true or false, not {_type_name(value)} ({_show(value)})")
+        return value
+
+
+# ---------------------------------------------------------------------------
+# The TOML file
+
+def _read_toml(path: Path, label: str) -> tuple[dict, str]:
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise CaseError(f"{label}: case file not found") from None
+    except IsADirectoryError:
+        raise CaseError(f"{label}: is a folder, not a case file") from None
+    except OSError as exc:
+        raise CaseError(f"{label}: cannot read the case file ({exc.strerror or exc})") from None
+    if data.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark some editors write
+        data = data[3:]
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        raise _fail(label, line, "not valid TOML: the file is not UTF-8 text") from None
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        msg = str(exc)
+        m = re.search(r"\(at line (\d+), column (\d+)\)\s*$", msg)
+        if m:
+            reason = msg[: m.start()].strip()
+            raise _fail(label, int(m.group(1)), f"not valid TOML: {reason} (column {m.group(2)})") from None
+        m = re.search(r"\(at end of document\)\s*$", msg)
+        if m:
+            reason = msg[: m.start()].strip()
+            raise _fail(label, text.count("\n") + 1, f"not valid TOML: {reason} (at the end of the file)") from None
+        raise _fail(label, None, f"not valid TOML: {msg}") from None
+    return doc, text
+
+
+def _parse_solver(raw, lines: KeyLines, chk: _Checker) -> SolverDefaults:
+    if not isinstance(raw, dict):
+        chk.fail(lines.top_line("solver"), f"key 'solver' must be a table ([solver]), not {_type_name(raw)}")
+    for key in raw:
+        if key not in SOLVER_KEYS:
+            chk.fail(lines.table_line("solver", key), f"[solver]: unknown key '{key}'{_suggest(key, SOLVER_KEYS)} (it takes: {', '.join(SOLVER_KEYS)})")
+    who = "[solver]: "
+    method = omega = tolerance = max_sweeps = None
+    if "method" in raw:
+        line = lines.table_line("solver", "method")
+        method = chk.string(raw["method"], "method", line, who)
+        if method not in METHOD_NAMES:
+            chk.fail(line, f"{who}key 'method' must be one of {', '.join(METHOD_NAMES)}; got {method!r}{_suggest(method, METHOD_NAMES)}")
+    if "omega" in raw:
+        line = lines.table_line("solver", "omega")
+        value = raw["omega"]
+        if isinstance(value, str):
+            if value != "auto":
+                chk.fail(line, f"{who}key 'omega' must be a number in (0, 2) or \"auto\", got {value!r}")
+            omega = "auto"
+        else:
+            omega = chk.number(value, "omega", line, who)
+            if not 0.0 < omega < 2.0:
+                chk.fail(line, f"{who}key 'omega' must lie in (0, 2) (or be \"auto\"), got {_show(value)}")
+    if "tolerance" in raw:
+        tolerance = chk.number(raw["tolerance"], "tolerance", lines.table_line("solver", "tolerance"), who, positive=True)
+    if "max_sweeps" in raw:
+        line = lines.table_line("solver", "max_sweeps")
+        value = raw["max_sweeps"]
+        if isinstance(value, bool) or not isinstance(value, int):
+            chk.fail(line, f"{who}key 'max_sweeps' must be a whole number, not {_type_name(value)} ({_show(value)})")
+        if value < 1:
+            chk.fail(line, f"{who}key 'max_sweeps' must be at least 1, got {value}")
+        max_sweeps = int(value)
+    return SolverDefaults(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps)
+
+
+def _parse_region(i: int, raw, lines: KeyLines, chk: _Checker) -> tuple[dict, int | None]:
+    """Check one [[region]] table; return its fields (name may be None) and header line."""
+    header = lines.region_line(i)
+    n = i + 1
+    if not isinstance(raw, dict):
+        chk.fail(header, f"region {n} must be a table ([[region]]), not {_type_name(raw)}")
+    name = raw.get("name")
+    who = f"region {n} ({name}): " if isinstance(name, str) and name.strip() else f"region {n}: "
+    for key in raw:
+        if key not in ALL_REGION_KEYS:
+            chk.fail(lines.region_line(i, key), f"{who}unknown key '{key}'{_suggest(key, ALL_REGION_KEYS)}")
+    if "kind" not in raw:
+        chk.fail(header, f"{who}missing key 'kind' (one of: {_KIND_CHOICES})")
+    kind_line = lines.region_line(i, "kind")
+    kind = chk.string(raw["kind"], "kind", kind_line, who)
+    if kind not in KINDS:
+        chk.fail(kind_line, f"{who}key 'kind' must be one of {_KIND_CHOICES}; got {kind!r}{_suggest(kind, KINDS)}")
+    takes = COMMON_KEYS + KIND_KEYS[kind]
+    for key in raw:
+        if key not in takes:
+            chk.fail(lines.region_line(i, key), f"{who}key '{key}' does not apply to kind '{kind}' (it takes: {', '.join(takes)})")
+    if "color" not in raw:
+        chk.fail(header, f"{who}missing key 'color' (\"#rrggbb\" or \"transparent\")")
+    color_line = lines.region_line(i, "color")
+    color_text = chk.string(raw["color"], "color", color_line, who)
+    packed = picture.parse_color(color_text)
+    if packed is None:
+        chk.fail(color_line, f"{who}key 'color' must be \"#rrggbb\" (six hex digits) or \"transparent\", got {color_text!r}")
+    for key in REQUIRED_KEYS[kind]:
+        if key not in raw:
+            chk.fail(header, f"{who}missing key '{key}' (kind '{kind}' needs: {', '.join(REQUIRED_KEYS[kind])})")
+    if "name" in raw:
+        name = chk.string(raw["name"], "name", lines.region_line(i, "name"), who, nonempty=True)
+    else:
+        name = None
+    fields: dict = {"name": name, "color": picture.color_name(packed), "kind": kind, "packed": packed}
+    for key in KIND_KEYS[kind]:
+        if key in raw:
+            fields[key] = chk.number(raw[key], key, lines.region_line(i, key), who, positive=key in POSITIVE_KEYS)
+    if kind == "interior":
+        fields.setdefault("conductivity", DEFAULT_CONDUCTIVITY)
+        fields.setdefault("source", 0.0)
+    return fields, header
+
+
+def _name_regions(parsed: list[tuple[dict, int | None]], lines: KeyLines, label: str) -> list[Region]:
+    """Give default names (``<kind>-<n>``) and refuse duplicate names and colours."""
+    per_kind: dict[str, int] = {}
+    names: list[tuple[str, bool]] = []
+    for fields, _ in parsed:
+        per_kind[fields["kind"]] = per_kind.get(fields["kind"], 0) + 1
+        if fields["name"] is None:
+            names.append((f"{fields['kind']}-{per_kind[fields['kind']]}", False))
+        else:
+            names.append((fields["name"], True))
+    seen: dict[str, int] = {}
+    for i, (name, explicit) in enumerate(names):
+        if name in seen:
+            j = seen[name]
+            other_line = lines.region_line(j, "name" if names[j][1] else None)
+            at = f" (line {other_line})" if other_line else ""
+            if explicit and names[j][1]:
+                raise _fail(label, lines.region_line(i, "name"), f"region {i + 1}: key 'name': {name!r} is already the name of region {j + 1}{at}")
+            if explicit:
+                raise _fail(label, lines.region_line(i, "name"), f"region {i + 1}: key 'name': {name!r} clashes with the default name of region {j + 1}{at}; name that region")
+            raise _fail(label, lines.region_line(i), f"region {i + 1}: its default name {name!r} clashes with the key 'name' of region {j + 1}{at}; give region {i + 1} a name")
+        seen[name] = i
+    colours: dict[int, int] = {}
+    for i, (fields, _) in enumerate(parsed):
+        p = fields["packed"]
+        if p in colours:
+            j = colours[p]
+            other_line = lines.region_line(j, "color")
+            at = f" (line {other_line})" if other_line else ""
+            raise _fail(label, lines.region_line(i, "color"), f"region {i + 1}: key 'color': {fields['color']} is already the colour of region {j + 1}{at} (colours compare case-insensitively)")
+        colours[p] = i
+    regions = []
+    for (fields, header), (name, _) in zip(parsed, names):
+        regions.append(
+            Region(
+                name=name,
+                color=fields["color"],
+                kind=fields["kind"],
+                conductivity=fields.get("conductivity"),
+                source=fields.get("source", 0.0),
+                value=fields.get("value"),
+                flux=fields.get("flux"),
+                coefficient=fields.get("coefficient"),
+                ambient=fields.get("ambient"),
+                line=header,
+            )
+        )
+    return regions
+
+
+def load_case(path: str | Path) -> Case:
+    """Read a case TOML file and its PNG picture into a validated :class:`Case`.
+
+    Parameters
+    ----------
+    path : str or Path
+        The case file. Its ``mask`` is resolved relative to the file's folder.
+
+    Raises
+    ------
+    CaseError
+        For every problem the contract names (one line: file, key, line), for
+        a picture that cannot be read, for a picture too large for the memory
+        available (checked from the PNG header, before decoding) and for an
+        ill-posed domain.
+    """
+    path = Path(path)
+    label = str(path)
+    doc, text = _read_toml(path, label)
+    lines = KeyLines(text)
+    chk = _Checker(label)
+
+    for key in doc:
+        if key not in TOP_KEYS:
+            chk.fail(lines.top_line(key), f"unknown key '{key}'{_suggest(key, TOP_KEYS)} (the top level takes: {', '.join(TOP_KEYS)})")
+    title = quantity = unit = None
+    if "title" in doc:
+        title = chk.string(doc["title"], "title", lines.top_line("title"))
+    if "quantity" in doc:
+        quantity = chk.string(doc["quantity"], "quantity", lines.top_line("quantity"))
+    if "unit" in doc:
+        unit = chk.string(doc["unit"], "unit", lines.top_line("unit"))
+    if "mask" not in doc:
+        chk.fail(None, "missing key 'mask' (the PNG picture, relative to this file)")
+    mask_text = chk.string(doc["mask"], "mask", lines.top_line("mask"), nonempty=True)
+    cell_size = chk.number(doc.get("cell_size", 1.0), "cell_size", lines.top_line("cell_size"), positive=True)
+    depth = chk.number(doc.get("depth", 1.0), "depth", lines.top_line("depth"), positive=True)
+    snap = chk.boolean(doc.get("snap", False), "snap", lines.top_line("snap"))
+    solver = _parse_solver(doc["solver"], lines, chk) if "solver" in doc else SolverDefaults()
+
+    if "region" not in doc:
+        chk.fail(None, "no [[region]] tables: declare what each colour of the picture means")
+    raw_regions = doc["region"]
+    if not isinstance(raw_regions, list):
+        chk.fail(lines.top_line("region"), f"key 'region' must be an array of tables (write each as [[region]]), not {_type_name(raw_regions)}")
+    if not raw_regions:
+        chk.fail(lines.top_line("region"), "no regions: declare what each colour of the picture means")
+    if len(raw_regions) > MAX_REGIONS:
+        chk.fail(lines.region_line(MAX_REGIONS), f"{len(raw_regions)} regions declared; at most {MAX_REGIONS} are supported")
+    parsed = [_parse_region(i, raw, lines, chk) for i, raw in enumerate(raw_regions)]
+    regions = _name_regions(parsed, lines, label)
+
+    mask_line = lines.top_line("mask")
+    mask_path = path.parent / mask_text
+    mask_label = f"{label}:{mask_line}: mask {mask_text!r}" if mask_line else f"{label}: mask {mask_text!r}"
+    if not mask_path.exists():
+        raise CaseError(f"{mask_label}: picture not found (looked for {str(mask_path)!r})")
+    if mask_path.is_dir():
+        raise CaseError(f"{mask_label}: is a folder, not a PNG picture")
+    header = picture.read_header(mask_path, mask_label)
+    check_memory(header.height, header.width, solver.method, len(regions), mask_label)
+    decoded = picture.decode(mask_path, mask_label)
+    codes, snapped = picture.match(decoded, [f["packed"] for f, _ in parsed], snap=snap, label=mask_label)
+    del decoded
+    return build_case(
+        codes,
+        regions,
+        path=path,
+        mask_path=mask_path,
+        cell_size=cell_size,
+        depth=depth,
+        snap=snap,
+        snapped=snapped,
+        title=title,
+        quantity=quantity if quantity is not None else "field",
+        unit=unit if unit is not None else "",
+        solver=solver,
+    )
+
+
+def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str) -> None:
+    """Refuse a picture whose solve would need more memory than is available."""
+    need = memory.estimate_solve_bytes(rows, cols, method, materials)
+    have = memory.available_bytes()
+    if have is not None and need > have:
+        raise CaseError(
+            f"{label}: the picture is {cols} x {rows} pixels ({rows * cols} cells); a solve needs about "
+            f"{memory.format_bytes(need)} but only {memory.format_bytes(have)} of memory is available"
+        )
+
+
+# ---------------------------------------------------------------------------
+# Cases from arrays, and the domain checks
+
+def _check_region_object(i: int, r: Region, label: str) -> None:
+    if not isinstance(r, Region):
+        raise CaseError(f"{label}: region {i + 1} is not a Region, got {type(r).__name__}")
+    who = f"region {i + 1} ({r.name})"
+    if r.kind not in KINDS:
+        raise _fail(label, r.line, f"{who}: kind must be one of {_KIND_CHOICES}; got {r.kind!r}")
+    if not isinstance(r.name, str) or not r.name.strip():
+        raise _fail(label, r.line, f"region {i + 1}: name must be a non-empty string")
+    if picture.parse_color(r.color) is None:
+        raise _fail(label, r.line, f"{who}: color must be \"#rrggbb\" or \"transparent\", got {r.color!r}")
+
+    def finite(key, value, positive=False, required=False):
+        if value is None:
+            if required:
+                raise _fail(label, r.line, f"{who}: kind '{r.kind}' needs '{key}'")
+            return
+        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) or not math.isfinite(float(value)):
+            raise _fail(label, r.line, f"{who}: '{key}' must be a finite number, got {value!r}")
+        if positive and not float(value) > 0:
+            raise _fail(label, r.line, f"{who}: '{key}' must be > 0, got {value!r}")
+
+    if r.kind == "interior":
+        finite("conductivity", r.conductivity, positive=True, required=True)
+        finite("source", r.source, required=True)
+    elif r.kind == "fixed":
+        finite("value", r.value, required=True)
+        finite("conductivity", r.conductivity, positive=True)
+    elif r.kind == "flux":
+        finite("flux", r.flux, required=True)
+    elif r.kind == "convection":
+        finite("coefficient", r.coefficient, positive=True, required=True)
+        finite("ambient", r.ambient, required=True)
+
+
+def build_case(
+    codes,
+    regions: Sequence[Region],
+    *,
+    path: str | Path | None = None,
+    mask_path: str | Path | None = None,
+    cell_size: float = 1.0,
+    depth: float = 1.0,
+    snap: bool = False,
+    snapped: int = 0,
+    title: str | None = None,
+    quantity: str = "field",
+    unit: str = "",
+    solver: SolverDefaults | None = None,
+) -> Case:
+    """Build a validated :class:`Case` from an array of region codes.
+
+    Parameters
+    ----------
+    codes : (rows, cols) integer array
+        Region index of each cell, image order. Converted to C-contiguous
+        uint8 (no copy when it already is one).
+    regions : sequence of Region
+        At most 255, unique names and colours.
+    path, mask_path : optional
+        Names used in messages and reports (``mask_path`` defaults to
+        ``<array>``).
+    cell_size, depth : float
+        Metres; both > 0.
+
+    Raises
+    ------
+    CaseError
+        Bad regions or codes, no interior cell, or a group of interior cells
+        that touches no fixed or convection cell.
+    """
+    path = Path(path) if path is not None else None
+    mask_path = Path(mask_path) if mask_path is not None else Path("<array>")
+    label = str(path) if path is not None else str(mask_path)
+    regions = tuple(regions)
+    if not regions:
+        raise CaseError(f"{label}: no regions")
+    if len(regions) > MAX_REGIONS:
+        raise CaseError(f"{label}: {len(regions)} regions; at most {MAX_REGIONS} are supported")
+    names: dict[str, int] = {}
+    colours: dict[int, int] = {}
+    for i, r in enumerate(regions):
+        _check_region_object(i, r, label)
+        if r.name in names:
+            raise _fail(label, r.line, f"region {i + 1}: name {r.name!r} is already the name of region {names[r.name] + 1}")
+        names[r.name] = i
+        p = picture.parse_color(r.color)
+        if p in colours:
+            raise _fail(label, r.line, f"region {i + 1}: colour {r.color} is already the colour of region {colours[p] + 1}")
+        colours[p] = i
+    for key, value in (("cell_size", cell_size), ("depth", depth)):
+        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) or not math.isfinite(float(value)) or not float(value) > 0:
+            raise CaseError(f"{label}: {key} must be a finite number > 0, got {value!r}")
+
+    arr = np.asarray(codes)
+    if arr.ndim != 2 or arr.shape[0] == 0 or arr.shape[1] == 0:
+        raise CaseError(f"{label}: codes must be a non-empty 2-D array, got shape {arr.shape}")
+    if arr.dtype != np.uint8:
+        if arr.dtype.kind not in "iub":
+            raise CaseError(f"{label}: codes must be integers, got dtype {arr.dtype}")
+        lo, hi = int(arr.min()), int(arr.max())
+        if lo < 0 or hi >= len(regions):
+            raise CaseError(f"{label}: codes must lie in 0..{len(regions) - 1}, got {lo}..{hi}")
+        arr = arr.astype(np.uint8)
+    elif int(arr.max()) >= len(regions):
+        raise CaseError(f"{label}: codes must lie in 0..{len(regions) - 1}, got up to {int(arr.max())}")
+    arr = np.ascontiguousarray(arr)
+
+    check_domain(arr, regions, label)
+    return Case(
+        path=path,
+        mask_path=mask_path,
+        regions=regions,
+        codes=arr,
+        cell_size=float(cell_size),
+        depth=float(depth),
+        snap=bool(snap),
+        snapped=int(snapped),
+        title=title,
+        quantity=quantity,
+        unit=unit,
+        solver=solver if solver is not None else SolverDefaults(),
+    )
+
+
+def anchored_interior(cell_kind: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Interior cells, and those of them with a face on a fixed or convection cell.
+
+    ``cell_kind`` is the per-cell kind integer (rows x cols). Returns two bool
+    arrays of the same shape.
+    """
+    interior = cell_kind == INTERIOR
+    anchor = (cell_kind == FIXED) | (cell_kind == CONVECTION)
+    touch = np.zeros_like(interior)
+    touch[1:, :] |= anchor[:-1, :]
+    touch[:-1, :] |= anchor[1:, :]
+    touch[:, 1:] |= anchor[:, :-1]
+    touch[:, :-1] |= anchor[:, 1:]
+    touch &= interior
+    return interior, touch
+
+
+def check_domain(codes: np.ndarray, regions: Sequence[Region], label: str) -> None:
+    """Refuse a domain without interior cells, or with a group of interior
+    cells (4-connected) that touches no fixed or convection cell (the
+    contract: such a group has no unique solution)."""
+    kinds = np.array([r.kind_code for r in regions], np.int8)
+    cell_kind = kinds[codes]
+    interior, touch = anchored_interior(cell_kind)
+    if not interior.any():
+        raise CaseError(f"{label}: no interior cells: no pixel belongs to a region of kind 'interior', so there is nothing to solve for")
+    from relaxtui.kernels.labels import label4
+
+    labels, count = label4(interior)
+    ok = np.zeros(count + 1, dtype=bool)
+    ok[labels[touch]] = True
+    ok[0] = True
+    bad = np.flatnonzero(~ok)
+    if bad.size:
+        g = int(bad[0])
+        size = int(np.count_nonzero(labels == g))
+        first = int(np.argmax(labels.reshape(-1) == g))
+        r, c = divmod(first, codes.shape[1])
+        more = f"; {bad.size - 1} more such groups" if bad.size > 1 else ""
+        raise CaseError(
+            f"{label}: a group of {size} interior cells (one of them at row {r}, column {c}) touches no fixed "
+            f"or convection cell, so its values are not determined{more}; put a fixed or convection region next to it"
+        )
