@@ -1,0 +1,168 @@
+"""``relaxtui info CASE.toml``: what a case holds, before any solve.
+
+Prints the title, grid, cell counts, sizes, a table of the regions (kind,
+colour, cells, faces with interior cells, parameters), the snapped count and
+the memory a solve will need against what is available.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from relaxtui import memory
+from relaxtui.model import DEFAULT_METHOD, INTERIOR, Case
+
+
+def face_matrix(codes: np.ndarray, n: int) -> np.ndarray:
+    """Faces between cells of different regions.
+
+    Returns an (n, n) int64 symmetric matrix: entry [i, j] (i != j) counts the
+    cell faces with a cell of region i on one side and of region j on the
+    other. The diagonal is 0 (faces inside one region are not counted), and
+    so are faces on the image border.
+    """
+    codes = np.ascontiguousarray(codes)
+    n = int(n)
+    counts = np.zeros(n * n, np.int64)
+    for a, b in ((codes[:, :-1], codes[:, 1:]), (codes[:-1, :], codes[1:, :])):
+        if a.size:
+            diff = a != b
+            key = a[diff].astype(np.intp) * n + b[diff]
+            counts += np.bincount(key, minlength=n * n)
+    m = counts.reshape(n, n)
+    return m + m.T
+
+
+def faces_with_interior(case: Case) -> tuple[np.ndarray, int]:
+    """Per region: faces between its cells and interior cells (for an interior
+    region: with cells of *other* interior regions); and the interior cells'
+    faces on the image border."""
+    n = len(case.regions)
+    m = face_matrix(case.codes, n)
+    interior = case.kind_codes() == INTERIOR
+    per = m[:, interior].sum(axis=1)
+    codes = case.codes
+    border = sum(int(interior[edge].sum()) for edge in (codes[0, :], codes[-1, :], codes[:, 0], codes[:, -1]))
+    return per.astype(np.int64), border
+
+
+def _metres(x: float) -> str:
+    if x == 0:
+        return "0 m"
+    if abs(x) >= 1000:
+        return f"{x / 1000:.4g} km"
+    if abs(x) >= 1:
+        return f"{x:.4g} m"
+    if abs(x) >= 1e-3:
+        return f"{x * 1e3:.4g} mm"
+    return f"{x * 1e6:.4g} µm"
+
+
+def _with_si(x: float) -> str:
+    """``0.00025`` -> ``'0.00025 m (250 µm)'``; ``5`` -> ``'5 m'``."""
+    si = _metres(x)
+    plain = f"{x:g} m"
+    return plain if si == plain else f"{plain} ({si})"
+
+
+def _si_suffix(w: float, h: float) -> str:
+    a, b = _metres(w), _metres(h)
+    return "" if (a, b) == (f"{w:g} m", f"{h:g} m") else f" ({a} × {b})"
+
+
+def _params(r, unit: str) -> str:
+    """The region's parameters in a compact form: k, s, u, q, h, ambient."""
+    u = f" {unit}" if unit else ""
+    if r.kind == "interior":
+        text = f"k={r.conductivity:g}"
+        if r.source:
+            text += f" s={r.source:g}"
+        return text
+    if r.kind == "fixed":
+        text = f"u={r.value:g}{u}"
+        if r.conductivity is not None:
+            text += f" k={r.conductivity:g}"
+        return text
+    if r.kind == "flux":
+        return f"q={r.flux:g}"
+    if r.kind == "convection":
+        return f"h={r.coefficient:g} ambient={r.ambient:g}{u}"
+    return ""
+
+
+def describe(case: Case, console=None) -> None:
+    """Print the description of a loaded case to a rich console."""
+    from rich.console import Console
+    from rich.table import Table
+    from rich.text import Text
+
+    console = console or Console()
+    rows, cols = case.shape
+    counts = case.region_counts()
+    kinds = case.kind_codes()
+    unknowns = int(counts[kinds == INTERIOR].sum())
+    faces, border = faces_with_interior(case)
+    method = case.solver.method or DEFAULT_METHOD
+    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions))
+    have = memory.available_bytes()
+    h = case.cell_size
+    unit = case.unit
+
+    console.print(Text(case.title or case.name, style="bold"))
+    facts = Table.grid(padding=(0, 2))
+    facts.add_column(style="dim")
+    facts.add_column()
+    facts.add_row("case", str(case.path) if case.path else "(built from an array)")
+    facts.add_row("picture", str(case.mask_path))
+    facts.add_row("quantity", f"{case.quantity} ({unit})" if unit else case.quantity)
+    facts.add_row("grid", f"{rows} rows × {cols} columns")
+    facts.add_row("cells", f"{rows * cols:,}")
+    facts.add_row("unknowns", f"{unknowns:,} interior cells")
+    facts.add_row("cell size", _with_si(h))
+    facts.add_row("size", f"{cols * h:g} m wide × {rows * h:g} m high" + _si_suffix(cols * h, rows * h))
+    facts.add_row("depth", _with_si(case.depth))
+    facts.add_row("snapped", f"{case.snapped:,} pixels" + ("" if case.snap else " (snap is off)"))
+    s = case.solver
+    solver = [method, f"omega {s.omega if s.omega is not None else 'auto'}"]
+    if s.tolerance is not None:
+        solver.append(f"tolerance {s.tolerance:g}{' ' + unit if unit else ''}")
+    if s.max_sweeps is not None:
+        solver.append(f"at most {s.max_sweeps:,} sweeps")
+    facts.add_row("solver", ", ".join(solver))
+    mem = f"a solve needs about {memory.format_bytes(need)}; {memory.format_bytes(have)} available"
+    facts.add_row("memory", Text(mem, style="bold red") if have is not None and need > have else mem)
+    console.print(facts)
+
+    table = Table(title="regions", title_justify="left", show_edge=False, pad_edge=False)
+    table.add_column("#", justify="right")
+    table.add_column("name")
+    table.add_column("kind")
+    table.add_column("colour", no_wrap=True)
+    table.add_column("cells", justify="right", no_wrap=True)
+    table.add_column("faces*", justify="right", no_wrap=True)
+    table.add_column("parameters")
+    for i, r in enumerate(case.regions):
+        swatch = Text()
+        if r.color != "transparent":
+            swatch.append("  ", style=f"on {r.color}")
+            swatch.append(" ")
+        swatch.append(r.color)
+        if r.kind == "interior":
+            face = f"{int(faces[i]):,}" if int(faces[i]) else ""
+        else:
+            face = f"{int(faces[i]):,}"
+        table.add_row(str(i + 1), r.name, r.kind, swatch, f"{int(counts[i]):,}", face, _params(r, unit))
+    table.add_row("", Text("(image border)", style="dim"), Text("outside", style="dim"), "", "", f"{border:,}", "")
+    console.print(table)
+    console.print(Text("* faces with interior cells: cell faces between an interior cell and a cell of "
+                       "the region (for an interior region: with cells of other interior regions). "
+                       "k conductivity, s source, u fixed value, q flux, h film coefficient.", style="dim"))
+
+
+def run_info(args) -> int:
+    """Handle ``relaxtui info``; returns the exit code."""
+    from relaxtui.case import load_case
+
+    case = load_case(args.case)
+    describe(case)
+    return 0
