@@ -125,29 +125,22 @@ def cell_conductivity(case: Case) -> np.ndarray:
             else:
                 per_region[i] = float(region.conductivity)
     k = per_region[case.codes]
-    need = inherit[case.codes]
-    if need.any():
+    rr, cc = np.nonzero(inherit[case.codes])
+    if rr.size:
+        rows, cols = case.shape
         kinds = case.kind_codes()[case.codes]
-        k_int = np.where(kinds == INTERIOR, k, 0.0)
-        n_int = (kinds == INTERIOR).astype(np.float64)
-        total = np.zeros_like(k)
-        count = np.zeros_like(k)
-        for src, dst in _NEIGHBOURS:
-            total[dst] += k_int[src]
-            count[dst] += n_int[src]
+        total = np.zeros(rr.size)
+        count = np.zeros(rr.size)
+        for dr, dc in ((-1, 0), (1, 0), (0, -1), (0, 1)):
+            r2, c2 = rr + dr, cc + dc
+            inside = (r2 >= 0) & (r2 < rows) & (c2 >= 0) & (c2 < cols)
+            r2, c2 = np.clip(r2, 0, rows - 1), np.clip(c2, 0, cols - 1)
+            interior = inside & (kinds[r2, c2] == INTERIOR)
+            total += np.where(interior, k[r2, c2], 0.0)
+            count += interior
         with np.errstate(invalid="ignore", divide="ignore"):
-            k[need] = np.where(count[need] > 0, total[need] / count[need], np.nan)
+            k[rr, cc] = np.where(count > 0, total / count, np.nan)
     return k
-
-
-_ALL = slice(None)
-# (source, destination) index pairs: cell[dst] gets its neighbour cell[src], one per direction
-_NEIGHBOURS = (
-    ((slice(1, None), _ALL), (slice(None, -1), _ALL)),  # the neighbour below
-    ((slice(None, -1), _ALL), (slice(1, None), _ALL)),  # the neighbour above
-    ((_ALL, slice(1, None)), (_ALL, slice(None, -1))),  # the neighbour to the right
-    ((_ALL, slice(None, -1)), (_ALL, slice(1, None))),  # the neighbour to the left
-)
 
 
 def flux(field, case: Case) -> tuple[np.ndarray, np.ndarray]:

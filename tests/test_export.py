@@ -290,6 +290,10 @@ def test_outside_cells_are_transparent_and_fixed_outlined():
     assert np.all(top[0] < 60) and np.all(top[1, :2] == hot)
     # the plate cells keep their colour right up to the hot column
     assert np.all(px[2 * 3 : 3 * 3, 3:6, :3] == colormap.colors(0.5))
+    # a domain cell without a value is drawn opaque in the no-data grey
+    u[4, 4] = np.nan
+    px = np.asarray(export.render_picture(u, case, vmin=0.0, vmax=100.0)[0])
+    assert np.array_equal(px[4, 4], [*colormap.NO_DATA, 255])
 
 
 def changed_pixels(u, case, **kw):
