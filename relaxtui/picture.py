@@ -145,7 +145,7 @@ def _open(path: Path, label: str):
     except (Image.DecompressionBombWarning, Image.DecompressionBombError) as exc:
         raise CaseError(f"{label}: picture refused by the decompression-bomb guard ({exc})") from None
     except UnidentifiedImageError:
-        raise CaseError(f"{label}: not a readable PNG picture") from None
+        raise CaseError(f"{label}: broken PNG picture (its chunks cannot be read)") from None
     except (OSError, ValueError, SyntaxError) as exc:
         raise CaseError(f"{label}: broken PNG picture ({exc})") from None
     if im.format != "PNG":
