@@ -1,0 +1,141 @@
+"""Small cases built from ASCII pictures, for tests.
+
+A picture is a list of equal-length strings; a legend maps each character to a
+:class:`relaxtui.model.Region`. Row 0 of the picture is the top row, as in an
+image. The helpers :func:`interior`, :func:`fixed`, :func:`outside`,
+:func:`flux` and :func:`convection` build regions with the contract's keys
+(``/work/shared/case-format.md``); colours are filled in by :func:`make_case`
+(one distinct colour per region) since the operator never looks at them.
+
+Example::
+
+    case = make_case(
+        ["#####",
+         "#...#",
+         "#...#",
+         "HHHHH"],
+        {"#": fixed("cold", 0.0), ".": interior("plate"), "H": fixed("hot", 1.0)},
+    )
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+from relaxtui.model import Case, Region
+
+
+def interior(name: str = "plate", conductivity: float | None = 1.0, source: float = 0.0) -> Region:
+    return Region(name=name, color="", kind="interior", conductivity=conductivity, source=source)
+
+
+def fixed(name: str, value: float, conductivity: float | None = None) -> Region:
+    return Region(name=name, color="", kind="fixed", value=value, conductivity=conductivity)
+
+
+def outside(name: str = "void") -> Region:
+    return Region(name=name, color="", kind="outside")
+
+
+def flux(name: str, flux: float) -> Region:
+    return Region(name=name, color="", kind="flux", flux=flux)
+
+
+def convection(name: str, coefficient: float, ambient: float) -> Region:
+    return Region(name=name, color="", kind="convection", coefficient=coefficient, ambient=ambient)
+
+
+def make_case(art, legend: dict[str, Region], cell_size: float = 1.0, depth: float = 1.0, name: str = "ascii") -> Case:
+    """Build a :class:`Case` from an ASCII picture.
+
+    Parameters
+    ----------
+    art : list of str
+        Equal-length rows; each character must be a key of ``legend``.
+    legend : dict
+        Character -> Region. The regions tuple of the case follows the
+        legend's order (so absent regions are still declared, as in a TOML
+        file that declares a colour the picture does not use).
+    cell_size, depth : float
+        As in the case file (metres).
+    """
+    rows = list(art)
+    if not rows or not rows[0]:
+        raise ValueError("empty picture")
+    width = len(rows[0])
+    for i, row in enumerate(rows):
+        if len(row) != width:
+            raise ValueError(f"picture row {i} has {len(row)} characters, row 0 has {width}")
+    keys = list(legend)
+    if len(keys) > 256:
+        raise ValueError("at most 256 regions fit uint8 codes")
+    index = {ch: n for n, ch in enumerate(keys)}
+    codes = np.empty((len(rows), width), dtype=np.uint8)
+    for i, row in enumerate(rows):
+        for j, ch in enumerate(row):
+            if ch not in index:
+                raise ValueError(f"character {ch!r} at row {i}, column {j} is not in the legend")
+            codes[i, j] = index[ch]
+    regions = tuple(
+        replace(legend[ch], color=legend[ch].color or f"#{(37 * n + 11) % 256:02x}{(91 * n + 5) % 256:02x}{n:02x}")
+        for n, ch in enumerate(keys)
+    )
+    return Case(
+        path=None,
+        mask_path=Path(f"{name}.png"),
+        regions=regions,
+        codes=codes,
+        cell_size=float(cell_size),
+        depth=float(depth),
+    )
+
+
+def case_from_codes(codes: np.ndarray, regions, cell_size: float = 1.0, depth: float = 1.0, name: str = "codes") -> Case:
+    """A case from a ready code array (uint8, indices into ``regions``)."""
+    regions = tuple(
+        replace(r, color=r.color or f"#{(37 * n + 11) % 256:02x}{(91 * n + 5) % 256:02x}{n:02x}") for n, r in enumerate(regions)
+    )
+    return Case(
+        path=None,
+        mask_path=Path(f"{name}.png"),
+        regions=regions,
+        codes=np.ascontiguousarray(codes, dtype=np.uint8),
+        cell_size=float(cell_size),
+        depth=float(depth),
+    )
+
+
+def model_problem(n: int, hot: float = 1.0, side: str = "top", conductivity: float = 1.0) -> Case:
+    """The model problem of references.md §9: an n x n block of interior cells in a one-cell fixed frame.
+
+    One side of the frame (``side``: "top", "bottom", "left", "right") is held
+    at ``hot``, the other three at 0; ``hot=0.0`` gives the homogeneous
+    problem (every side at 0). The four frame corners touch no interior cell
+    (only diagonally), so they are ``outside``: the picture is symmetric
+    under 90-degree rotation as references.md §1 requires. The grid is
+    (n + 2) x (n + 2); with h = 1/(n + 1) the equations are exactly the
+    5-point Dirichlet Laplacian.
+    """
+    if n < 1:
+        raise ValueError("n must be at least 1")
+    size = n + 2
+    grid = [["." for _ in range(size)] for _ in range(size)]
+    for k in range(size):
+        grid[0][k] = grid[size - 1][k] = "C"
+        grid[k][0] = grid[k][size - 1] = "C"
+    where = {"top": [(0, k) for k in range(size)], "bottom": [(size - 1, k) for k in range(size)],
+             "left": [(k, 0) for k in range(size)], "right": [(k, size - 1) for k in range(size)]}
+    if side not in where:
+        raise ValueError(f"side must be one of {sorted(where)}")
+    for i, j in where[side]:
+        grid[i][j] = "H"
+    for i, j in ((0, 0), (0, size - 1), (size - 1, 0), (size - 1, size - 1)):
+        grid[i][j] = "x"
+    return make_case(
+        ["".join(row) for row in grid],
+        {".": interior("plate", conductivity), "H": fixed("hot", hot), "C": fixed("cold", 0.0), "x": outside("corner")},
+        name=f"model-{n}",
+    )
