@@ -174,7 +174,7 @@ def _type_name(value) -> str:
     if isinstance(value, int):
         return "an integer"
     if isinstance(value, float):
-        return "a number"
+        return "a float"
     if isinstance(value, str):
         return "a string"
     if isinstance(value, list):

@@ -340,7 +340,7 @@ BAD = [
     ("tolerance-zero", "[solver]\ntolerance = 0  # <-\n" + REGIONS, "[solver]: key 'tolerance' must be > 0"),
     ("tolerance-negative", "[solver]\ntolerance = -1e-3  # <-\n" + REGIONS, "[solver]: key 'tolerance' must be > 0"),
     ("max-sweeps-zero", "[solver]\nmax_sweeps = 0  # <-\n" + REGIONS, "[solver]: key 'max_sweeps' must be at least 1"),
-    ("max-sweeps-float", "[solver]\nmax_sweeps = 1e5  # <-\n" + REGIONS, "[solver]: key 'max_sweeps' must be a whole number, not a number"),
+    ("max-sweeps-float", "[solver]\nmax_sweeps = 1e5  # <-\n" + REGIONS, "[solver]: key 'max_sweeps' must be a whole number, not a float"),
     ("max-sweeps-bool", "[solver]\nmax_sweeps = true  # <-\n" + REGIONS, "[solver]: key 'max_sweeps' must be a whole number, not a boolean"),
     ("region-not-array", '[region]  # <-\ncolor = "#ffffff"\nkind = "interior"\n', "key 'region' must be an array of tables"),
     ("region-empty", "region = []  # <-\n", "no regions"),
