@@ -196,6 +196,11 @@ def _show(value) -> str:
     return str(value)
 
 
+def _q(text: str) -> str:
+    """A key or name quoted for a message: 'key', or its repr if it holds odd characters."""
+    return f"'{text}'" if text.isprintable() and "'" not in text else repr(text)
+
+
 def _suggest(key: str, allowed: Sequence[str]) -> str:
     close = difflib.get_close_matches(key, list(allowed), n=1, cutoff=0.6)
     return f" (did you mean '{close[0]}'?)" if close else ""
@@ -273,7 +278,7 @@ def _parse_solver(raw, lines: KeyLines, chk: _Checker) -> SolverDefaults:
         chk.fail(lines.top_line("solver"), f"key 'solver' must be a table ([solver]), not {_type_name(raw)}")
     for key in raw:
         if key not in SOLVER_KEYS:
-            chk.fail(lines.table_line("solver", key), f"[solver]: unknown key '{key}'{_suggest(key, SOLVER_KEYS)} (it takes: {', '.join(SOLVER_KEYS)})")
+            chk.fail(lines.table_line("solver", key), f"[solver]: unknown key {_q(key)}{_suggest(key, SOLVER_KEYS)} (it takes: {', '.join(SOLVER_KEYS)})")
     who = "[solver]: "
     method = omega = tolerance = max_sweeps = None
     if "method" in raw:
@@ -312,10 +317,10 @@ def _parse_region(i: int, raw, lines: KeyLines, chk: _Checker) -> tuple[dict, in
     if not isinstance(raw, dict):
         chk.fail(header, f"region {n} must be a table ([[region]]), not {_type_name(raw)}")
     name = raw.get("name")
-    who = f"region {n} ({name}): " if isinstance(name, str) and name.strip() else f"region {n}: "
+    who = f"region {n} ({name if name.isprintable() else repr(name)}): " if isinstance(name, str) and name.strip() else f"region {n}: "
     for key in raw:
         if key not in ALL_REGION_KEYS:
-            chk.fail(lines.region_line(i, key), f"{who}unknown key '{key}'{_suggest(key, ALL_REGION_KEYS)}")
+            chk.fail(lines.region_line(i, key), f"{who}unknown key {_q(key)}{_suggest(key, ALL_REGION_KEYS)}")
     if "kind" not in raw:
         chk.fail(header, f"{who}missing key 'kind' (one of: {_KIND_CHOICES})")
     kind_line = lines.region_line(i, "kind")
@@ -424,7 +429,7 @@ def load_case(path: str | Path) -> Case:
 
     for key in doc:
         if key not in TOP_KEYS:
-            chk.fail(lines.top_line(key), f"unknown key '{key}'{_suggest(key, TOP_KEYS)} (the top level takes: {', '.join(TOP_KEYS)})")
+            chk.fail(lines.top_line(key), f"unknown key {_q(key)}{_suggest(key, TOP_KEYS)} (the top level takes: {', '.join(TOP_KEYS)})")
     title = quantity = unit = None
     if "title" in doc:
         title = chk.string(doc["title"], "title", lines.top_line("title"))
@@ -497,7 +502,7 @@ def check_memory(rows: int, cols: int, method: str | None, materials: int, label
 def _check_region_object(i: int, r: Region, label: str) -> None:
     if not isinstance(r, Region):
         raise CaseError(f"{label}: region {i + 1} is not a Region, got {type(r).__name__}")
-    who = f"region {i + 1} ({r.name})"
+    who = f"region {i + 1} ({r.name if isinstance(r.name, str) and r.name.isprintable() else repr(r.name)})"
     if r.kind not in KINDS:
         raise _fail(label, r.line, f"{who}: kind must be one of {_KIND_CHOICES}; got {r.kind!r}")
     if not isinstance(r.name, str) or not r.name.strip():
