@@ -1,0 +1,335 @@
+"""Assembly kernels: region codes in, class codes, class table and row segments out.
+
+Every interior cell's normalised equation (the contract's, divided by its
+diagonal) depends only on the regions of the cell and of its 4 neighbours.
+So a cell's *class* is that 5-tuple, encoded as one int64 *key*
+
+    key = (((r_P * B + r_N) * B + r_S) * B + r_W) * B + r_E,   B = regions + 1,
+
+where the image border is region number B - 1 (it behaves like ``outside``).
+Class 0 means "not an unknown". A *bulk* cell (all 5 regions equal) gets its
+region's bulk class without any search; the other interior cells (next to a
+boundary or an interface, O(perimeter) of them) are keyed, the distinct keys
+sorted, and each such cell finds its class by binary search.
+
+Arrays (all image order; ``cls`` is padded by one cell on every side):
+- ``codes`` (rows, cols) uint8: region index per pixel;
+- ``interior`` (regions,) uint8: 1 where the region is interior;
+- ``cls`` (rows + 2, cols + 2) uint8/uint16/uint32: class per cell;
+- ``table`` (classes, 5) float64: wN, wS, wW, wE, q of each class;
+- ``diag`` (classes,) float64: the unnormalised diagonal D of each class.
+
+The kernels know nothing of the case file: the caller passes per-region
+property arrays (see :func:`class_table`).
+"""
+
+import numpy as np
+from numba import prange
+
+from relaxtui.kernels._jit import kernel
+
+# Region kinds as integers (the order of relaxtui.model.KINDS).
+INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
+
+
+@kernel(inline=True)
+def _is_bulk(codes, i, j, r):
+    rows, cols = codes.shape
+    if i == 0 or j == 0 or i == rows - 1 or j == cols - 1:
+        return False
+    return codes[i - 1, j] == r and codes[i + 1, j] == r and codes[i, j - 1] == r and codes[i, j + 1] == r
+
+
+@kernel(inline=True)
+def _key(codes, i, j, border):
+    rows, cols = codes.shape
+    base = border + 1
+    rn = codes[i - 1, j] if i > 0 else border
+    rs = codes[i + 1, j] if i < rows - 1 else border
+    rw = codes[i, j - 1] if j > 0 else border
+    re = codes[i, j + 1] if j < cols - 1 else border
+    return (((np.int64(codes[i, j]) * base + rn) * base + rs) * base + rw) * base + re
+
+
+@kernel(parallel=True)
+def count_edge_cells(codes, interior):
+    """Per row: the number of interior cells that are not bulk (int64, (rows,))."""
+    rows, cols = codes.shape
+    counts = np.zeros(rows, dtype=np.int64)
+    for i in prange(rows):
+        n = 0
+        for j in range(cols):
+            r = codes[i, j]
+            if interior[r] != 0 and not _is_bulk(codes, i, j, r):
+                n += 1
+        counts[i] = n
+    return counts
+
+
+@kernel(parallel=True)
+def collect_edge_keys(codes, interior, border, offsets, keys):
+    """Write the key of every non-bulk interior cell, row by row from ``offsets[row]``."""
+    rows, cols = codes.shape
+    for i in prange(rows):
+        k = offsets[i]
+        for j in range(cols):
+            r = codes[i, j]
+            if interior[r] != 0 and not _is_bulk(codes, i, j, r):
+                keys[k] = _key(codes, i, j, border)
+                k += 1
+
+
+@kernel(parallel=True)
+def assign_classes(codes, interior, border, bulk_class, edge_keys, edge_base, cls):
+    """Fill the padded class array ``cls`` (zero on entry) in place.
+
+    Bulk cells of region r get ``bulk_class[r]``; a non-bulk interior cell
+    gets ``edge_base + position of its key in the sorted edge_keys``.
+    """
+    rows, cols = codes.shape
+    for i in prange(rows):
+        for j in range(cols):
+            r = codes[i, j]
+            if interior[r] == 0:
+                continue
+            if _is_bulk(codes, i, j, r):
+                cls[i + 1, j + 1] = bulk_class[r]
+            else:
+                cls[i + 1, j + 1] = edge_base + np.searchsorted(edge_keys, _key(codes, i, j, border))
+
+
+@kernel
+def class_table(class_keys, border, kind, conductivity, fixed_conductivity, value, flux, coefficient, ambient, source, h, table, diag):
+    """Fill ``table`` (classes, 5) and ``diag`` (classes,) from each class's key (class 0: key < 0, left zero).
+
+    Per region (index < border): ``kind``, ``conductivity`` (interior k),
+    ``fixed_conductivity`` (k of a fixed region, <= 0 when it has none: the
+    face then uses k_P), ``value`` (fixed), ``flux``, ``coefficient`` and
+    ``ambient`` (convection), ``source`` (interior). ``h`` is the cell size.
+    A class whose diagonal is 0 (an interior cell with no domain neighbour
+    and no convection face) gets diag 0 and a zero row; the caller rejects it.
+    """
+    base = border + 1
+    for c in range(class_keys.shape[0]):
+        key = class_keys[c]
+        if key < 0:
+            continue
+        re = key % base
+        key //= base
+        rw = key % base
+        key //= base
+        rs = key % base
+        key //= base
+        rn = key % base
+        rp = key // base
+        kp = conductivity[rp]
+        d = 0.0
+        b = 0.0
+        g = np.zeros(4)
+        for side in range(4):
+            rx = rn if side == 0 else (rs if side == 1 else (rw if side == 2 else re))
+            if rx == border:
+                continue
+            kx = kind[rx]
+            if kx == INTERIOR:
+                kn = conductivity[rx]
+                gx = 2.0 * kp * kn / (kp + kn)
+                g[side] = gx
+                d += gx
+            elif kx == FIXED:
+                kn = fixed_conductivity[rx]
+                if kn <= 0.0:
+                    kn = kp
+                gx = 2.0 * kp * kn / (kp + kn)
+                d += gx
+                b += gx * value[rx]
+            elif kx == FLUX:
+                b += flux[rx] * h
+            elif kx == CONVECTION:
+                uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                d += uh
+                b += uh * ambient[rx]
+        b += source[rp] * h * h
+        diag[c] = d
+        if d > 0.0:
+            for side in range(4):
+                table[c, side] = g[side] / d
+            table[c, 4] = b / d
+
+
+@kernel(inline=True)
+def _scan_row(cls, i, min_run, out_start, out_end, out_class, k0, write):
+    """Split padded row i (cells 1..cols) into segments; return the count (and write them if asked).
+
+    A run of one nonzero class of at least ``min_run`` cells is a *bulk*
+    segment (its class, constant weights); a run of class 0 that long is
+    skipped; everything in between forms *mixed* segments (class -1: a
+    weight gather per cell, class 0 cells masked). Mixed segments holding no
+    unknown are dropped.
+    """
+    last = cls.shape[1] - 2
+    k = k0
+    j = 1
+    mixed_start = -1
+    mixed_any = False
+    while j <= last:
+        c = cls[i, j]
+        e = j + 1
+        while e <= last and cls[i, e] == c:
+            e += 1
+        if e - j >= min_run:
+            if mixed_start >= 0:
+                if mixed_any:
+                    if write:
+                        out_start[k] = mixed_start
+                        out_end[k] = j
+                        out_class[k] = -1
+                    k += 1
+                mixed_start = -1
+                mixed_any = False
+            if c != 0:
+                if write:
+                    out_start[k] = j
+                    out_end[k] = e
+                    out_class[k] = c
+                k += 1
+        else:
+            if mixed_start < 0:
+                mixed_start = j
+            if c != 0:
+                mixed_any = True
+        j = e
+    if mixed_start >= 0 and mixed_any:
+        if write:
+            out_start[k] = mixed_start
+            out_end[k] = last + 1
+            out_class[k] = -1
+        k += 1
+    return k - k0
+
+
+@kernel(parallel=True)
+def count_segments(cls, min_run):
+    """Segments per padded row (int64, (rows + 2,)); the pad rows have none."""
+    n = cls.shape[0]
+    counts = np.zeros(n, dtype=np.int64)
+    dummy32 = np.zeros(1, dtype=np.int32)
+    dummy64 = np.zeros(1, dtype=np.int64)
+    for i in prange(1, n - 1):
+        counts[i] = _scan_row(cls, i, min_run, dummy32, dummy32, dummy64, 0, False)
+    return counts
+
+
+@kernel(parallel=True)
+def fill_segments(cls, min_run, row_ptr, seg_start, seg_end, seg_class):
+    """Write the segments of every padded row i at ``row_ptr[i]..row_ptr[i + 1]``."""
+    n = cls.shape[0]
+    for i in prange(1, n - 1):
+        _scan_row(cls, i, min_run, seg_start, seg_end, seg_class, row_ptr[i], True)
+
+
+@kernel
+def interior_runs(codes, interior, kind):
+    """Runs of interior cells per row, for the well-posedness check.
+
+    Returns (row, start, end, anchored) arrays (int32 x 3, uint8): one entry
+    per maximal horizontal run of interior cells; ``anchored`` is 1 when a
+    cell of the run has a fixed or convection neighbour.
+    """
+    rows, cols = codes.shape
+    n = 0
+    for i in range(rows):
+        j = 0
+        while j < cols:
+            if interior[codes[i, j]] != 0:
+                n += 1
+                while j < cols and interior[codes[i, j]] != 0:
+                    j += 1
+            j += 1
+    run_row = np.empty(n, dtype=np.int32)
+    run_start = np.empty(n, dtype=np.int32)
+    run_end = np.empty(n, dtype=np.int32)
+    anchored = np.zeros(n, dtype=np.uint8)
+    k = 0
+    for i in range(rows):
+        j = 0
+        while j < cols:
+            if interior[codes[i, j]] != 0:
+                s = j
+                a = 0
+                while j < cols and interior[codes[i, j]] != 0:
+                    if a == 0:
+                        for side in range(4):
+                            a2 = i + (-1 if side == 0 else (1 if side == 1 else 0))
+                            b2 = j + (-1 if side == 2 else (1 if side == 3 else 0))
+                            if 0 <= a2 < rows and 0 <= b2 < cols:
+                                kx = kind[codes[a2, b2]]
+                                if kx == FIXED or kx == CONVECTION:
+                                    a = 1
+                    j += 1
+                run_row[k] = i
+                run_start[k] = s
+                run_end[k] = j
+                anchored[k] = a
+                k += 1
+            j += 1
+    return run_row, run_start, run_end, anchored
+
+
+@kernel(inline=True)
+def _find(parent, x):
+    while parent[x] != x:
+        parent[x] = parent[parent[x]]
+        x = parent[x]
+    return x
+
+
+@kernel
+def unanchored_group(run_row, run_start, run_end, anchored):
+    """Join runs that touch across rows (4-connectivity: overlapping columns).
+
+    Returns (size, row, col) of one 4-connected group of interior cells that
+    touches no fixed or convection face, or (0, -1, -1) when every group does.
+    The cell reported is the group's first cell in image order.
+    """
+    n = run_row.shape[0]
+    parent = np.arange(n)
+    # runs are sorted by row then column: merge-walk each pair of consecutive rows
+    a = 0
+    while a < n:
+        a_end = a
+        while a_end < n and run_row[a_end] == run_row[a]:
+            a_end += 1
+        b = a_end
+        b_end = b
+        while b_end < n and run_row[b_end] == run_row[b]:
+            b_end += 1
+        if b < n and run_row[b] == run_row[a] + 1:
+            p = a
+            q = b
+            while p < a_end and q < b_end:
+                if run_start[p] < run_end[q] and run_start[q] < run_end[p]:
+                    rp = _find(parent, p)
+                    rq = _find(parent, q)
+                    if rp != rq:
+                        if rp < rq:
+                            parent[rq] = rp
+                        else:
+                            parent[rp] = rq
+                if run_end[p] < run_end[q]:
+                    p += 1
+                else:
+                    q += 1
+        a = a_end
+    root_anchored = np.zeros(n, dtype=np.uint8)
+    for k in range(n):
+        if anchored[k] != 0:
+            root_anchored[_find(parent, k)] = 1
+    size = np.zeros(n, dtype=np.int64)
+    for k in range(n):
+        size[_find(parent, k)] += run_end[k] - run_start[k]
+    for k in range(n):
+        r = _find(parent, k)
+        if root_anchored[r] == 0:
+            return size[r], run_row[k], run_start[k]
+    return 0, -1, -1

@@ -1,0 +1,175 @@
+"""Kernels that read the field: residual, Jacobi operator, flows, export, start field.
+
+Same layout as :mod:`relaxtui.kernels.sweeps` (padded field ``u``, padded
+class array ``cls``, class ``table``, row segments); ``codes`` is the
+unpadded region-index picture and the per-region arrays are those of
+:func:`relaxtui.kernels.assemble.class_table`.
+"""
+
+import numpy as np
+from numba import prange
+
+from relaxtui.kernels._bits import abs_bits, from_bits
+from relaxtui.kernels._jit import kernel
+
+INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
+
+
+@kernel(inline=True)
+def _residual_bulk(up, mid, dn, wn, ws, ww, we, q, out, write, mr):
+    for k in range(up.shape[0]):
+        s = (((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]) + q
+        r = s - mid[k + 1]
+        if write:
+            out[k] = r
+        mr = max(mr, abs_bits(r))
+    return mr
+
+
+@kernel(inline=True)
+def _residual_mixed(up, mid, dn, crow, table, out, write, mr):
+    for k in range(up.shape[0]):
+        c = crow[k]
+        s = (((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]) + table[c, 4]
+        r = s - mid[k + 1]
+        r = r if c != 0 else 0.0
+        if write and c != 0:
+            out[k] = r
+        mr = max(mr, abs_bits(r))
+    return mr
+
+
+@kernel(parallel=True)
+def residual(u, cls, table, row_ptr, seg_start, seg_end, seg_class, out, write, nblk):
+    """Largest |contract residual| over the unknowns; with ``write``, also out[i - 1, j - 1] = residual.
+
+    ``out`` is (rows, cols) (or a dummy when ``write`` is False); cells that
+    are not unknowns are not written, the caller fills them with NaN first.
+    """
+    n = u.shape[0] - 2
+    blk = np.zeros(nblk, dtype=np.int64)
+    for b in prange(nblk):
+        mr = 0
+        for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            up = u[i - 1]
+            mid = u[i]
+            dn = u[i + 1]
+            crow = cls[i]
+            orow = out[i - 1] if write else out[0]
+            for s in range(row_ptr[i], row_ptr[i + 1]):
+                j0 = seg_start[s]
+                j1 = seg_end[s]
+                c = seg_class[s]
+                o = orow[j0 - 1 : j1 - 1] if write else orow
+                if c > 0:
+                    mr = _residual_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1],
+                                        table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], o, write, mr)
+                else:
+                    mr = _residual_mixed(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], crow[j0:j1], table, o, write, mr)
+        blk[b] = mr
+    return from_bits(blk.max())
+
+
+@kernel(parallel=True)
+def jacobi_apply(x, out, cls, table, row_ptr, seg_start, seg_end, seg_class, nblk):
+    """out = J x on the unknowns (J: the weights, no right-hand side); out is zero elsewhere on entry."""
+    n = x.shape[0] - 2
+    for b in prange(nblk):
+        for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            for s in range(row_ptr[i], row_ptr[i + 1]):
+                c = seg_class[s]
+                for j in range(seg_start[s], seg_end[s]):
+                    cc = c if c > 0 else cls[i, j]
+                    out[i, j] = ((table[cc, 0] * x[i - 1, j] + table[cc, 1] * x[i + 1, j]) + table[cc, 2] * x[i, j - 1]) + table[cc, 3] * x[i, j + 1]
+
+
+@kernel(parallel=True)
+def flows(codes, u, kind, conductivity, fixed_conductivity, value, flux, coefficient, ambient, source, h, nblk):
+    """Per row block: the flow into the domain through each region's faces, and the source total.
+
+    Returns (acc, src): ``acc[b, r]`` sums, over interior cells of block b and
+    their faces with region r, G (value - u_P) for a fixed r, flux h for a
+    flux r and U h (ambient - u_P) for a convection r; ``src[b]`` sums s h^2.
+    Not multiplied by the depth. ``u`` is the padded field. Blocks depend on
+    ``nblk`` only, so the caller's sum is the same for any thread count.
+    """
+    rows, cols = codes.shape
+    nreg = kind.shape[0]
+    acc = np.zeros((nblk, nreg))
+    src = np.zeros(nblk)
+    for b in prange(nblk):
+        for i in range(b * rows // nblk, (b + 1) * rows // nblk):
+            for j in range(cols):
+                rp = codes[i, j]
+                if kind[rp] != INTERIOR:
+                    continue
+                src[b] += source[rp] * h * h
+                kp = conductivity[rp]
+                up = u[i + 1, j + 1]
+                for side in range(4):
+                    a = i + (-1 if side == 0 else (1 if side == 1 else 0))
+                    c = j + (-1 if side == 2 else (1 if side == 3 else 0))
+                    if a < 0 or c < 0 or a >= rows or c >= cols:
+                        continue
+                    rx = codes[a, c]
+                    kx = kind[rx]
+                    if kx == FIXED:
+                        kn = fixed_conductivity[rx]
+                        if kn <= 0.0:
+                            kn = kp
+                        acc[b, rx] += 2.0 * kp * kn / (kp + kn) * (value[rx] - up)
+                    elif kx == FLUX:
+                        acc[b, rx] += flux[rx] * h
+                    elif kx == CONVECTION:
+                        uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                        acc[b, rx] += uh * (ambient[rx] - up)
+    return acc, src
+
+
+@kernel(parallel=True)
+def export_field(codes, kind, u, out):
+    """out (rows, cols) = the padded field's interior and fixed cells, NaN elsewhere."""
+    rows, cols = codes.shape
+    for i in prange(rows):
+        for j in range(cols):
+            k = kind[codes[i, j]]
+            out[i, j] = u[i + 1, j + 1] if (k == INTERIOR or k == FIXED) else np.nan
+
+
+@kernel(parallel=True)
+def init_field(codes, kind, value, initial, use_initial, guess, u):
+    """Fill the padded field u (zeros on entry): fixed cells at their value, interior cells at
+    ``initial`` (when ``use_initial``) or ``guess``.
+
+    Returns the number of interior cells whose initial value is not finite
+    (those get ``guess``); the caller rejects the field if it is not 0.
+    """
+    rows, cols = codes.shape
+    bad = np.zeros(rows, dtype=np.int64)
+    for i in prange(rows):
+        for j in range(cols):
+            r = codes[i, j]
+            k = kind[r]
+            if k == FIXED:
+                u[i + 1, j + 1] = value[r]
+            elif k == INTERIOR:
+                v = guess
+                if use_initial:
+                    x = initial[i, j]
+                    if np.isfinite(x):
+                        v = x
+                    else:
+                        bad[i] += 1
+                u[i + 1, j + 1] = v
+    return bad.sum()
+
+
+@kernel
+def first_bad_initial(codes, kind, initial):
+    """(row, col) of the first interior cell whose initial value is not finite, or (-1, -1)."""
+    rows, cols = codes.shape
+    for i in range(rows):
+        for j in range(cols):
+            if kind[codes[i, j]] == INTERIOR and not np.isfinite(initial[i, j]):
+                return i, j
+    return -1, -1

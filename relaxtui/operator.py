@@ -1,0 +1,435 @@
+"""The assembled operator: a case turned into arrays a kernel can sweep.
+
+Design
+------
+The contract's operator is piecewise constant per region, so the normalised
+equation of an interior cell P,
+
+    u_P = wN uN + wS uS + wW uW + wE uE + q_P,   w_X = G_PX / D_P,  q_P = b_P / D_P,
+
+(fixed neighbours, flux and convection faces and the source folded into q,
+weight 0 for every neighbour that is not an unknown) is a function of the
+5-tuple (region of P, regions of its 4 neighbours). Each distinct tuple is a
+*class*; the operator stores
+
+- ``cls``: one class code per cell (uint8 when there are at most 255 classes,
+  else uint16/uint32; 0 = not an unknown), padded by one cell on every side;
+- ``table``: (classes, 5) float64, the weights and q of each class; ``diag``: D;
+- row *segments*: each padded row cut into bulk runs (one class over at
+  least ``MIN_RUN`` cells: the sweep loads five scalars once and streams only
+  the field) and mixed stretches (one table gather per cell), with runs of
+  non-unknowns skipped.
+
+A uniform case therefore pays for no per-cell conductances, diagonal or
+right-hand side: a Jacobi sweep streams the field in and out (16 B per cell)
+plus the class byte of mixed cells; the working set of a solve is the padded
+field, the class array (1 B), the Jacobi buffer (8 B, Jacobi only) and the
+exported copy. Memory per cell is counted by :meth:`Operator.memory_bytes`.
+
+The working array is the field padded by one cell; cells that are not
+unknowns hold finite values (fixed cells their value, others 0), so a weight-0
+read of them is harmless and border cells need no bounds checks.
+
+Assembly (:mod:`relaxtui.kernels.assemble`) is compiled and parallel: bulk
+cells (all 5 regions equal) take their region's class at once; the others are
+keyed, the keys sorted with ``numpy.unique`` and found by binary search.
+
+Numba is imported only when an Operator is built.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from relaxtui.errors import CaseError, UsageError
+from relaxtui.methods_names import METHOD_NAMES
+from relaxtui.model import CONVECTION, FIXED, FLUX, INTERIOR, Case
+
+SWEEP_METHODS = ("jacobi", "gauss-seidel", "sor", "red-black-sor")
+MIN_RUN = 16  # shortest run of one class swept with constant weights
+PARALLEL_CELLS = 1 << 16  # below this many cells a sweep runs on one thread (no parallel start-up)
+FLOW_BLOCKS = 64  # row blocks of the flows kernel: fixed, so sums do not depend on the thread count
+
+
+def _class_dtype(classes: int):
+    if classes <= 1 << 8:
+        return np.uint8
+    if classes <= 1 << 16:
+        return np.uint16
+    return np.uint32
+
+
+class Operator:
+    """The assembled operator of a :class:`~relaxtui.model.Case` (see the module docstring).
+
+    Parameters
+    ----------
+    case : Case
+        A validated case; the operator re-checks what a kernel relies on
+        (codes, kinds, parameter ranges, every group of interior cells
+        anchored by a fixed or convection face) and raises
+        :class:`~relaxtui.errors.CaseError` otherwise.
+
+    Attributes
+    ----------
+    shape : (rows, cols)
+    unknowns : int
+        Number of interior cells.
+    cells_streamed : int
+        Cells a Jacobi or red-black sweep visits (the row segments); the
+        lexicographic sweep visits the same unknowns. For Mcell/s.
+    classes : int
+        Number of classes, including class 0.
+    """
+
+    def __init__(self, case: Case):
+        self.case = case
+        codes = case.codes
+        if not isinstance(codes, np.ndarray) or codes.ndim != 2 or codes.size == 0:
+            raise CaseError("the case's code array must be a non-empty 2-D array")
+        if codes.dtype != np.uint8:
+            if codes.dtype.kind not in "iu" or codes.min() < 0 or codes.max() > 255:
+                raise CaseError(f"the case's code array must be uint8 region indices, not {codes.dtype}")
+            codes = codes.astype(np.uint8)
+        self.codes = np.ascontiguousarray(codes)
+        regions = case.regions
+        if not regions:
+            raise CaseError("the case declares no regions")
+        if int(self.codes.max()) >= len(regions):
+            raise CaseError(f"code {int(self.codes.max())} in the picture has no region (only {len(regions)} declared)")
+        self.shape = (int(self.codes.shape[0]), int(self.codes.shape[1]))
+        self.cell_size = _positive(case.cell_size, "cell_size")
+        self.depth = _positive(case.depth, "depth")
+        self._region_arrays(regions)
+
+        from relaxtui.kernels import assemble
+
+        self._check_anchored(assemble)
+        self._assemble(assemble)
+        self._scratch = None
+
+    # --- set-up ------------------------------------------------------------------------
+
+    def _region_arrays(self, regions) -> None:
+        n = len(regions)
+        self.kind = np.array([r.kind_code for r in regions], dtype=np.int8)
+        self.interior = (self.kind == INTERIOR).astype(np.uint8)
+        self.conductivity = np.ones(n)
+        self.fixed_conductivity = np.zeros(n)
+        self.value = np.zeros(n)
+        self.flux = np.zeros(n)
+        self.coefficient = np.ones(n)
+        self.ambient = np.zeros(n)
+        self.source = np.zeros(n)
+        for i, r in enumerate(regions):
+            where = f"region {r.name!r}"
+            if r.kind == "interior":
+                if r.conductivity is not None:
+                    self.conductivity[i] = _positive(r.conductivity, f"{where}: conductivity")
+                self.source[i] = _finite(r.source, f"{where}: source")
+            elif r.kind == "fixed":
+                self.value[i] = _finite(r.value, f"{where}: value")
+                if r.conductivity is not None:
+                    self.fixed_conductivity[i] = _positive(r.conductivity, f"{where}: conductivity")
+            elif r.kind == "flux":
+                self.flux[i] = _finite(r.flux, f"{where}: flux")
+            elif r.kind == "convection":
+                self.coefficient[i] = _positive(r.coefficient, f"{where}: coefficient")
+                self.ambient[i] = _finite(r.ambient, f"{where}: ambient")
+            elif r.kind != "outside":
+                raise CaseError(f"{where}: unknown kind {r.kind!r}")
+
+    def _check_anchored(self, assemble) -> None:
+        runs = assemble.interior_runs(self.codes, self.interior, self.kind)
+        size, row, col = assemble.unanchored_group(*runs)
+        if size:
+            raise CaseError(
+                f"a group of {int(size)} interior cell{'s' if size != 1 else ''} (one at row {int(row)}, column {int(col)}) "
+                "touches no fixed or convection face, so its field is not determined"
+            )
+
+    def _assemble(self, assemble) -> None:
+        rows, cols = self.shape
+        nreg = len(self.kind)
+        border = nreg
+        base = nreg + 1
+        counts = assemble.count_edge_cells(self.codes, self.interior)
+        offsets = np.zeros(rows + 1, dtype=np.int64)
+        np.cumsum(counts, out=offsets[1:])
+        keys = np.empty(int(offsets[-1]), dtype=np.int64)
+        assemble.collect_edge_keys(self.codes, self.interior, border, offsets, keys)
+        edge_keys, edge_counts = np.unique(keys, return_counts=True)
+        del keys
+        # interior cells per region, minus the edge cells of that region, are its bulk cells
+        region_cells = np.bincount(self.codes.ravel(), minlength=nreg).astype(np.int64)
+        edge_of_region = np.bincount(edge_keys // base**4, weights=edge_counts, minlength=nreg).astype(np.int64)
+        bulk_cells = np.where(self.interior != 0, region_cells - edge_of_region, 0)
+        bulk_regions = np.flatnonzero(bulk_cells > 0)
+        bulk_class = np.zeros(nreg, dtype=np.int64)
+        bulk_class[bulk_regions] = np.arange(1, len(bulk_regions) + 1)
+        edge_base = 1 + len(bulk_regions)
+        classes = edge_base + len(edge_keys)
+        self.classes = classes
+        self.cls = np.zeros((rows + 2, cols + 2), dtype=_class_dtype(classes))
+        assemble.assign_classes(self.codes, self.interior, border, bulk_class, edge_keys, edge_base, self.cls)
+        # every class's 5-tuple key (class 0: none), and its cell count
+        self.class_keys = np.empty(classes, dtype=np.int64)
+        self.class_keys[0] = -1
+        self.class_keys[1:edge_base] = bulk_regions * (base**4 + base**3 + base**2 + base + 1)
+        self.class_keys[edge_base:] = edge_keys
+        self.class_cells = np.zeros(classes, dtype=np.int64)
+        self.class_cells[1:edge_base] = bulk_cells[bulk_regions]
+        self.class_cells[edge_base:] = edge_counts
+        self.unknowns = int(self.class_cells.sum())
+        self.table = np.zeros((classes, 5))
+        self.diag = np.zeros(classes)
+        assemble.class_table(self.class_keys, border, self.kind, self.conductivity, self.fixed_conductivity, self.value,
+                             self.flux, self.coefficient, self.ambient, self.source, self.cell_size, self.table, self.diag)
+        if classes > 1 and not np.all(self.diag[1:] > 0):  # pragma: no cover - the anchoring check catches these first
+            raise CaseError("an interior cell has neither a domain neighbour nor a convection face")
+        seg_counts = assemble.count_segments(self.cls, MIN_RUN)
+        self.row_ptr = np.zeros(rows + 3, dtype=np.int64)
+        np.cumsum(seg_counts, out=self.row_ptr[1:])
+        nseg = int(self.row_ptr[-1])
+        self.seg_start = np.empty(nseg, dtype=np.int32)
+        self.seg_end = np.empty(nseg, dtype=np.int32)
+        self.seg_class = np.empty(nseg, dtype=np.int64)
+        assemble.fill_segments(self.cls, MIN_RUN, self.row_ptr, self.seg_start, self.seg_end, self.seg_class)
+        self.cells_streamed = int((self.seg_end.astype(np.int64) - self.seg_start).sum())
+        self._segments = (self.row_ptr, self.seg_start, self.seg_end, self.seg_class)
+
+    # --- the working array -----------------------------------------------------------------
+
+    @property
+    def padded_shape(self) -> tuple[int, int]:
+        return (self.shape[0] + 2, self.shape[1] + 2)
+
+    def face_counts(self) -> np.ndarray:
+        """Number of faces between interior cells and each region (int64, one entry per region)."""
+        nreg = len(self.kind)
+        base = nreg + 1
+        out = np.zeros(nreg + 1, dtype=np.int64)
+        keys = self.class_keys[1:]
+        cells = self.class_cells[1:]
+        for _ in range(4):
+            np.add.at(out, keys % base, cells)
+            keys = keys // base
+        return out[:nreg]
+
+    def default_guess(self) -> float:
+        """The face-count-weighted mean of the fixed values and convection ambients (0 without such faces)."""
+        faces = self.face_counts().astype(np.float64)
+        weights = np.where(self.kind == FIXED, faces, 0.0) + np.where(self.kind == CONVECTION, faces, 0.0)
+        values = np.where(self.kind == FIXED, self.value, self.ambient)
+        total = weights.sum()
+        return float((weights * values).sum() / total) if total > 0 else 0.0
+
+    def new_field(self, initial: np.ndarray | None = None) -> np.ndarray:
+        """A new working array: fixed cells at their value, interior cells at ``initial`` or the default guess.
+
+        Parameters
+        ----------
+        initial : ndarray (rows, cols), optional
+            Real numbers; must be finite on interior cells (anything, NaN
+            included, elsewhere).
+
+        Returns
+        -------
+        ndarray (rows + 2, cols + 2) float64, C-contiguous: the field padded
+        by one cell; :meth:`view` gives the (rows, cols) part.
+        """
+        from relaxtui.kernels import measure
+
+        u = np.zeros(self.padded_shape)
+        if initial is None:
+            measure.init_field(self.codes, self.kind, self.value, np.zeros((1, 1)), False, self.default_guess(), u)
+            return u
+        if not isinstance(initial, np.ndarray):
+            raise UsageError("the initial field must be a numpy array")
+        if initial.shape != self.shape:
+            raise UsageError(f"the initial field has shape {initial.shape}, the case's grid is {self.shape}")
+        if initial.dtype.kind not in "fiu":
+            raise UsageError(f"the initial field must hold real numbers, not {initial.dtype}")
+        values = np.ascontiguousarray(initial, dtype=np.float64)
+        if measure.init_field(self.codes, self.kind, self.value, values, True, 0.0, u):
+            row, col = measure.first_bad_initial(self.codes, self.kind, values)
+            raise UsageError(f"the initial field is not finite at interior cell row {int(row)}, column {int(col)}")
+        return u
+
+    def view(self, u: np.ndarray) -> np.ndarray:
+        """The (rows, cols) view of a working array (no copy)."""
+        return u[1:-1, 1:-1]
+
+    def _check_field(self, u, name: str = "field") -> None:
+        if not isinstance(u, np.ndarray) or u.shape != self.padded_shape or u.dtype != np.float64 or not u.flags.c_contiguous:
+            raise UsageError(f"the {name} must be a working array of this operator (from new_field)")
+
+    # --- sweeps ------------------------------------------------------------------------------
+
+    def sweep(self, u, method: str, omega: float, sweeps: int, updates: np.ndarray, residuals: np.ndarray) -> int:
+        """Run ``sweeps`` sweeps of ``method`` on ``u`` in place.
+
+        Parameters
+        ----------
+        u : working array (from :meth:`new_field`), modified in place.
+        method : "jacobi" (weighted Jacobi, weight ``omega``), "gauss-seidel"
+            (``omega`` must be 1), "sor" (lexicographic), "red-black-sor"
+            (red-black ordering; omega 1 is red-black Gauss-Seidel).
+        omega : float in (0, 2).
+        sweeps : int >= 0.
+        updates, residuals : float64 arrays of length >= ``sweeps``, written:
+            per sweep, the largest |u_new - u_old| and the largest residual
+            (field units; see :mod:`relaxtui.kernels.sweeps`).
+
+        Returns
+        -------
+        int: sweeps done; fewer than asked when a sweep's largest update was
+        not finite (the field then holds that sweep's result).
+        """
+        self._check_field(u)
+        if method not in SWEEP_METHODS:
+            if method in METHOD_NAMES:
+                raise UsageError(f"{method!r} is not a relaxation sweep of the operator")
+            raise UsageError(f"unknown method {method!r}; choose one of {', '.join(SWEEP_METHODS)}")
+        try:
+            omega = float(omega)
+        except (TypeError, ValueError):
+            raise UsageError(f"omega must be a number, not {omega!r}") from None
+        if not (0.0 < omega < 2.0):
+            raise UsageError(f"omega must lie in (0, 2), got {omega}")
+        if method == "gauss-seidel" and omega != 1.0:
+            raise UsageError(f"gauss-seidel takes omega = 1, got {omega} (use sor)")
+        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
+            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+        sweeps = int(sweeps)
+        for name, arr in (("updates", updates), ("residuals", residuals)):
+            if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or arr.ndim != 1 or arr.shape[0] < sweeps or not arr.flags.writeable:
+                raise UsageError(f"{name} must be a writable 1-D float64 array of length >= {sweeps}")
+        if sweeps == 0:
+            return 0
+        from relaxtui.kernels import sweeps as k
+
+        parallel, nblk = self._blocks()
+        if method == "jacobi":
+            if self._scratch is None:
+                self._scratch = np.zeros(self.padded_shape)
+            if parallel:
+                return int(k.jacobi(u, self._scratch, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
+            return int(k.jacobi_serial(u, self._scratch, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
+        if method == "red-black-sor":
+            if parallel:
+                return int(k.sor_red_black(u, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
+            return int(k.sor_red_black_serial(u, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
+        return int(k.sor_lexicographic(u, self.cls, self.table, omega, sweeps, updates, residuals))
+
+    def _blocks(self) -> tuple[bool, int]:
+        import numba
+
+        threads = numba.get_num_threads()
+        if threads < 2 or self.cells_streamed < PARALLEL_CELLS:
+            return False, 1
+        return True, max(1, min(threads, self.shape[0]))
+
+    def release(self) -> None:
+        """Drop the Jacobi buffer (it is made again by the next Jacobi sweep)."""
+        self._scratch = None
+
+    # --- measures ------------------------------------------------------------------------------
+
+    def residual(self, u) -> float:
+        """Largest |contract residual| over the interior cells (0.0 without unknowns), in field units."""
+        self._check_field(u)
+        from relaxtui.kernels import measure
+
+        return float(measure.residual(u, self.cls, self.table, *self._segments, np.zeros((1, 1)), False, self._blocks()[1]))
+
+    def residual_field(self, u) -> np.ndarray:
+        """(rows, cols) float64: each interior cell's contract residual, NaN elsewhere."""
+        self._check_field(u)
+        from relaxtui.kernels import measure
+
+        out = np.full(self.shape, np.nan)
+        measure.residual(u, self.cls, self.table, *self._segments, out, True, self._blocks()[1])
+        return out
+
+    def flows(self, u) -> tuple[dict[str, float], float, float]:
+        """Flows into the domain per fixed, flux and convection region, the source total and the imbalance.
+
+        Per the contract's "Flows and balance": depth-scaled, positive into
+        the domain, 0.0 for a declared region absent from the picture;
+        imbalance = |sum of flows + source total| / (sum of |flows| + |source total|), 0 when that is 0.
+        """
+        self._check_field(u)
+        from relaxtui.kernels import measure
+
+        nblk = max(1, min(FLOW_BLOCKS, self.shape[0]))
+        acc, src = measure.flows(self.codes, u, self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux,
+                                 self.coefficient, self.ambient, self.source, self.cell_size, nblk)
+        per_region = acc.sum(axis=0) * self.depth
+        source_total = float(src.sum() * self.depth)
+        flows = {}
+        for i, r in enumerate(self.case.regions):
+            if r.kind in ("fixed", "flux", "convection"):
+                flows[r.name] = float(per_region[i])
+        total = sum(flows.values()) + source_total
+        scale = sum(abs(v) for v in flows.values()) + abs(source_total)
+        imbalance = abs(total) / scale if scale > 0 else 0.0
+        return flows, source_total, float(imbalance)
+
+    def finish(self, u) -> np.ndarray:
+        """The exported field: (rows, cols) C-contiguous float64 copy; interior and fixed cells hold values, others NaN."""
+        self._check_field(u)
+        from relaxtui.kernels import measure
+
+        out = np.empty(self.shape)
+        measure.export_field(self.codes, self.kind, u, out)
+        return out
+
+    def jacobi_apply(self, x, out) -> None:
+        """out = J x for the homogeneous Jacobi iteration matrix J = D^-1 (D - A), in the working layout.
+
+        ``x`` must be finite everywhere (zeros outside the unknowns will do);
+        ``out`` is overwritten, 0 outside the unknowns.
+        """
+        self._check_field(x, "vector x")
+        self._check_field(out, "output")
+        from relaxtui.kernels import measure
+
+        out.fill(0.0)
+        measure.jacobi_apply(x, out, self.cls, self.table, *self._segments, self._blocks()[1])
+
+    def sqrt_diag(self) -> np.ndarray:
+        """Per-cell sqrt(D) in the working layout, 0 outside the unknowns: D^(1/2) J D^(-1/2) is symmetric."""
+        return np.sqrt(self.diag)[self.cls]
+
+    def memory_bytes(self, method: str) -> int:
+        """Bytes this operator and a solve with ``method`` hold: the operator's arrays, the working
+        field, the Jacobi buffer (Jacobi only) and the exported copy made by :meth:`finish`.
+
+        Not counted: the case's own code array (owned by the case), and any
+        hierarchy a multigrid solve builds on top of this operator.
+        """
+        if method not in METHOD_NAMES:
+            raise UsageError(f"unknown method {method!r}")
+        field = 8 * self.padded_shape[0] * self.padded_shape[1]
+        held = self.cls.nbytes + self.table.nbytes + self.diag.nbytes + sum(a.nbytes for a in self._segments)
+        held += self.class_keys.nbytes + self.class_cells.nbytes
+        total = held + field + 8 * self.shape[0] * self.shape[1]
+        if method == "jacobi":
+            total += field
+        return int(total)
+
+
+def _finite(x, what: str) -> float:
+    if isinstance(x, bool) or not isinstance(x, (int, float, np.integer, np.floating)) or not math.isfinite(float(x)):
+        raise CaseError(f"{what} must be a finite number, got {x!r}")
+    return float(x)
+
+
+def _positive(x, what: str) -> float:
+    v = _finite(x, what)
+    if not v > 0:
+        raise CaseError(f"{what} must be > 0, got {x!r}")
+    return v

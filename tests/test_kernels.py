@@ -1,0 +1,260 @@
+"""Kernels against the plain-loop reference (tests/reference.py), sweep by sweep.
+
+Every method x ordering x omega (1 and not 1) x uniform / two-material case,
+on small pictures with inside and outside corners, one-cell channels,
+isolated fixed cells, flux and convection faces, and rows long enough to
+have bulk runs (constant weights) as well as mixed stretches. The reference
+builds each cell's equation from the contract's text; agreement is required
+to 1e-14 (in practice it is bit for bit).
+"""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import reference
+from cases import convection, fixed, flux, interior, make_case, outside
+from relaxtui.operator import Operator
+
+HERE = Path(__file__).resolve().parent
+
+# 16 rows x 44 columns. H hot edge, # cold edge, o isolated fixed cells, x outside
+# (holes, an inside corner, a one-cell channel in row 8), ~ a convection strip, ^ a flux strip.
+ART = [
+    "xHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHx",
+    "#..........................................#",
+    "#..........................................#",
+    "#.........................o................#",
+    "#......................................o...#",
+    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
+    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
+    "#.....................................x....#",
+    "xxxxxxxxxxxxxxxxxxxxxxxxx.xxxxxxxxxxxxxxxxxx",
+    "#..........................................~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#..........................................x",
+    "#..........................................x",
+    "^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^x",
+]
+
+
+def legend(two_materials: bool):
+    return {
+        ".": interior("plate", 1.0 if not two_materials else 3.0),
+        "b": interior("insert", 1.0 if not two_materials else 0.25, source=0.0 if not two_materials else 2.0),
+        "H": fixed("hot", 1.0),
+        "#": fixed("cold", 0.0, conductivity=None if not two_materials else 5.0),
+        "o": fixed("pin", 0.5),
+        "x": outside("void"),
+        "~": convection("air", 4.0, 0.2),
+        "^": flux("heater", 0.05),
+        "F": flux("unused", 1.0),  # declared, absent from the picture
+    }
+
+
+CASES = {
+    "uniform": make_case(ART, legend(False), cell_size=0.5),
+    "two-material": make_case(ART, legend(True), cell_size=0.5, depth=2.0),
+}
+METHODS = [("jacobi", 1.0), ("jacobi", 0.7), ("gauss-seidel", 1.0), ("sor", 1.6), ("sor", 0.8), ("red-black-sor", 1.0), ("red-black-sor", 1.6)]
+
+
+def with_fixed_values(case, field):
+    """A copy of ``field`` with every fixed cell at its region's value."""
+    out = field.copy()
+    for n, r in enumerate(case.regions):
+        if r.kind == "fixed":
+            out[case.codes == n] = r.value
+    return out
+
+
+def start_field(case, seed=3):
+    """A rough start: interior cells random in [0, 1], fixed cells at their value."""
+    rng = np.random.default_rng(seed)
+    return rng.random(case.codes.shape)
+
+
+@pytest.mark.parametrize("name", list(CASES))
+@pytest.mark.parametrize("method,omega", METHODS)
+def test_sweeps_match_reference(name, method, omega):
+    case = CASES[name]
+    op = Operator(case)
+    assert op.cells_streamed >= op.unknowns
+    assert np.any(op.seg_class > 0) and np.any(op.seg_class < 0)  # both bulk runs and mixed stretches are exercised
+    init = start_field(case)
+    u = op.new_field(init)
+    ref = with_fixed_values(case, init)
+    updates = np.zeros(4)
+    residuals = np.zeros(4)
+    for sweep in range(4):
+        done = op.sweep(u, method, omega, 1, updates[sweep:], residuals[sweep:])
+        assert done == 1
+        ref, big_u, big_r = reference.SWEEPS[method](case, ref, omega)
+        got = op.finish(u)
+        domain = ~np.isnan(got)
+        np.testing.assert_allclose(got[domain], ref[domain], rtol=0, atol=1e-14)
+        assert updates[sweep] == pytest.approx(big_u, abs=1e-14)
+        assert residuals[sweep] == pytest.approx(big_r, abs=1e-14)
+
+
+@pytest.mark.parametrize("method,omega", METHODS)
+def test_many_sweeps_in_one_call_equal_single_calls(method, omega):
+    case = CASES["two-material"]
+    op = Operator(case)
+    a = op.new_field(start_field(case))
+    b = a.copy()
+    ua, ra = np.zeros(5), np.zeros(5)
+    assert op.sweep(a, method, omega, 5, ua, ra) == 5
+    ub, rb = np.zeros(5), np.zeros(5)
+    for k in range(5):
+        op.sweep(b, method, omega, 1, ub[k:], rb[k:])
+    assert np.array_equal(a, b)  # odd counts of Jacobi sweeps end in the caller's array too
+    assert np.array_equal(ua, ub) and np.array_equal(ra, rb)
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_residual_matches_reference(name):
+    case = CASES[name]
+    op = Operator(case)
+    init = start_field(case, seed=11)
+    u = op.new_field(init)
+    field = with_fixed_values(case, init)
+    assert op.residual(u) == pytest.approx(reference.residual(case, field), abs=1e-14)
+    rf = op.residual_field(u)
+    for (i, j), (w, q) in reference.equations(case).items():
+        assert rf[i, j] == pytest.approx(reference._s(field, i, j, w, q) - field[i, j], abs=1e-14)
+    interior_cells = np.isin(case.codes, [n for n, r in enumerate(case.regions) if r.kind == "interior"])
+    assert np.all(np.isnan(rf[~interior_cells])) and not np.any(np.isnan(rf[interior_cells]))
+
+
+@pytest.mark.parametrize("nblk", [1, 2, 3, 5, 7])
+@pytest.mark.parametrize("omega", [1.0, 1.7])
+def test_fused_red_black_is_the_two_pass_schedule_bit_for_bit(nblk, omega):
+    """The fused, blocked red-black kernel against the two-pass schedule on the same class table."""
+    from relaxtui.kernels import sweeps
+
+    case = CASES["two-material"]
+    op = Operator(case)
+    u = op.new_field(start_field(case, seed=5))
+    v = u.copy()
+    upd, res = np.zeros(3), np.zeros(3)
+    sweeps.sor_red_black(u, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, omega, 3, upd, res, nblk)
+    for k in range(3):
+        big = reference.red_black_two_pass(v, op.cls, op.table, omega)
+        assert upd[k] == big
+    assert np.array_equal(u, v)
+    w = op.new_field(start_field(case, seed=5))
+    sweeps.sor_red_black_serial(w, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, omega, 3, upd, res)
+    assert np.array_equal(w, v)
+
+
+@pytest.mark.parametrize("nblk", [1, 2, 3])
+def test_parallel_jacobi_equals_serial(nblk):
+    from relaxtui.kernels import sweeps
+
+    case = CASES["uniform"]
+    op = Operator(case)
+    a = op.new_field(start_field(case))
+    b = a.copy()
+    tmp_a, tmp_b = np.zeros_like(a), np.zeros_like(a)
+    ua, ra, ub, rb = (np.zeros(3) for _ in range(4))
+    sweeps.jacobi(a, tmp_a, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, 0.9, 3, ua, ra, nblk)
+    sweeps.jacobi_serial(b, tmp_b, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, 0.9, 3, ub, rb)
+    assert np.array_equal(a, b) and np.array_equal(ua, ub) and np.array_equal(ra, rb)
+
+
+@pytest.mark.parametrize("method", ["jacobi", "gauss-seidel", "sor", "red-black-sor"])
+def test_fixed_and_outside_cells_never_change(method):
+    case = CASES["two-material"]
+    op = Operator(case)
+    u = op.new_field(start_field(case))
+    before = u.copy()
+    omega = 1.0 if method == "gauss-seidel" else 0.9
+    op.sweep(u, method, omega, 3, np.zeros(3), np.zeros(3))
+    unknown = op.cls != 0
+    assert np.array_equal(u[~unknown], before[~unknown])
+    assert not np.array_equal(u[unknown], before[unknown])
+
+
+@pytest.mark.parametrize("method", ["jacobi", "gauss-seidel", "sor", "red-black-sor"])
+def test_sweep_stops_after_a_non_finite_update(method):
+    case = CASES["uniform"]
+    op = Operator(case)
+    u = op.new_field()
+    u[3, 5] = np.inf  # an interior cell (picture row 2, column 4)
+    updates, residuals = np.zeros(6), np.zeros(6)
+    omega = 1.0 if method == "gauss-seidel" else 1.2
+    assert op.sweep(u, method, omega, 6, updates, residuals) == 1
+    assert not np.isfinite(updates[0])
+    assert np.all(updates[1:] == 0.0)
+
+
+def test_many_classes_use_a_wider_class_code():
+    """More than 255 classes: uint16 class codes, still the reference's sweeps."""
+    rng = np.random.default_rng(7)
+    rows, cols = 14, 40
+    keys = "abcdefghijkl"
+    art = ["H" * cols] + ["#" + "".join(rng.choice(list(keys), cols - 2)) + "#" for _ in range(rows - 2)] + ["#" * cols]
+    lg = {ch: interior(f"m{n}", 0.5 + n) for n, ch in enumerate(keys)}
+    lg.update({"H": fixed("hot", 2.0), "#": fixed("cold", -1.0)})
+    case = make_case(art, lg)
+    op = Operator(case)
+    assert op.classes > 256 and op.cls.dtype == np.uint16
+    u = op.new_field(start_field(case))
+    ref = with_fixed_values(case, start_field(case))
+    for method, omega in (("red-black-sor", 1.3), ("sor", 1.3), ("jacobi", 1.0)):
+        v = u.copy()
+        op.sweep(v, method, omega, 1, np.zeros(1), np.zeros(1))
+        want, _, _ = reference.SWEEPS[method](case, ref, omega)
+        got = op.finish(v)
+        domain = ~np.isnan(got)
+        np.testing.assert_allclose(got[domain], want[domain], rtol=0, atol=1e-14)
+
+
+SCRIPT = r"""
+import json, sys
+import numpy as np
+sys.path.insert(0, sys.argv[1])
+from test_kernels import CASES, start_field
+from relaxtui.operator import Operator
+out = {}
+for name, case in CASES.items():
+    op = Operator(case)
+    for method, omega in (("jacobi", 0.8), ("sor", 1.4), ("red-black-sor", 1.4), ("gauss-seidel", 1.0)):
+        u = op.new_field(start_field(case))
+        upd, res = np.zeros(3), np.zeros(3)
+        op.sweep(u, method, omega, 3, upd, res)
+        f = op.finish(u)
+        out[f"{name}/{method}"] = [np.nan_to_num(f, nan=-999.0).ravel().tolist(), upd.tolist(), res.tolist(), op.residual(u), op.flows(u)[0]]
+print(json.dumps(out))
+"""
+
+
+def _run_script(env_extra):
+    env = dict(os.environ, **env_extra)
+    proc = subprocess.run([sys.executable, "-c", SCRIPT, str(HERE)], capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    return json.loads(proc.stdout)
+
+
+def test_same_results_without_the_jit():
+    """NUMBA_DISABLE_JIT=1 runs the kernels as plain Python: the same numbers (and coverage inside kernels)."""
+    plain = _run_script({"NUMBA_DISABLE_JIT": "1"})
+    compiled = _run_script({})
+    assert plain.keys() == compiled.keys()
+    for key in plain:
+        f0, u0, r0, res0, fl0 = plain[key]
+        f1, u1, r1, res1, fl1 = compiled[key]
+        np.testing.assert_allclose(f0, f1, rtol=0, atol=1e-14)
+        np.testing.assert_allclose(u0, u1, rtol=0, atol=1e-14)
+        np.testing.assert_allclose(r0, r1, rtol=0, atol=1e-14)
+        assert res0 == pytest.approx(res1, abs=1e-14)
+        for region in fl0:
+            assert fl0[region] == pytest.approx(fl1[region], abs=1e-13)
