@@ -348,6 +348,7 @@ class RelaxApp(App):
         self.load_seconds: float | None = None
         self.last_export: list[Path] = []
         self._mounted = False
+        self.main = None  # the main screen, once mounted
 
     # -- building ----------------------------------------------------------------------
     def compose(self) -> ComposeResult:
@@ -376,32 +377,39 @@ class RelaxApp(App):
         yield Footer()
 
     def on_mount(self) -> None:
-        self.query_one("#field").border_title = "Field"
-        self.query_one("#history").border_title = "Residual history"
-        self.query_one("#runs").border_title = "Runs"
-        self.query_one("#timing").border_title = "Timing"
-        self.query_one("#params").border_title = "Next run"
-        self.query_one(FieldView).mono = self.no_color
+        # Widgets are looked up on the main screen, also while a dialog is on top.
+        self.main = self.screen
+        self.main.query_one("#field").border_title = "Field"
+        self.main.query_one("#history").border_title = "Residual history"
+        self.main.query_one("#runs").border_title = "Runs"
+        self.main.query_one("#timing").border_title = "Timing"
+        self.main.query_one("#params").border_title = "Next run"
+        self.main.query_one(FieldView).mono = self.no_color
         self._apply_layout()
         self._update_banner()
         self._update_status()
-        self.query_one(HistoryPanel).show(None)
-        self.query_one(FieldView).focus()
+        self.main.query_one(HistoryPanel).show(None)
+        self.main.query_one(FieldView).focus()
         self.set_interval(PLOT_INTERVAL, self._refresh_plot)
         self._mounted = True
         self._load()
 
     def on_resize(self) -> None:
-        self._apply_layout()
+        if not self._gone():
+            self._apply_layout()
+
+    def _gone(self) -> bool:
+        """True before mounting and while shutting down (late worker messages are dropped)."""
+        return self.main is None or not self.main.is_attached
 
     def _apply_layout(self) -> None:
         wide = self.size.width >= WIDE[0] and self.size.height >= WIDE[1]
-        self.screen.set_class(wide, "-wide")
-        self.screen.set_class(not wide, "-compact")
+        self.main.set_class(wide, "-wide")
+        self.main.set_class(not wide, "-compact")
 
     @property
     def wide(self) -> bool:
-        return self.screen.has_class("-wide")
+        return self.main is not None and self.main.has_class("-wide")
 
     # -- loading -----------------------------------------------------------------------------
     @work(thread=True, exclusive=True, group="load", name="load case")
@@ -422,10 +430,12 @@ class RelaxApp(App):
         self.post_message(self.Loaded(case, operator, layout, initial, time.perf_counter() - t0))
 
     def on_relax_app_loaded(self, msg: Loaded) -> None:
+        if self._gone():
+            return
         self.case, self.operator, self.layout, self.initial_field = msg.case, msg.operator, msg.layout, msg.initial
         self.load_seconds = msg.seconds
         case = self.case
-        params = self.query_one(ParamsPanel)
+        params = self.main.query_one(ParamsPanel)
         s = case.solver
         if self.cli["method"] is None and s.method:
             params.query_one("#param-method", Select).value = s.method
@@ -436,21 +446,25 @@ class RelaxApp(App):
         if self.cli["max_sweeps"] is None and s.max_sweeps is not None:
             params.query_one("#param-max-sweeps", Input).value = str(s.max_sweeps)
         params.set_unit(case.unit)
-        self.query_one(TimingPanel).unit = case.unit
+        self.main.query_one(TimingPanel).unit = case.unit
         self.phase = "ready"
-        self.query_one(TimingPanel).show(None, note=f"case loaded in {msg.seconds:.2f} s; s starts a run")
-        self.query_one(FieldView).set_case(case, case.unit, _boundary_range(case, self.initial_field))
+        self.main.query_one(TimingPanel).show(None, note=f"case loaded in {msg.seconds:.2f} s; s starts a run")
+        self.main.query_one(FieldView).set_case(case, case.unit, _boundary_range(case, self.initial_field))
         if self.autostart:
             self.action_start()
 
     def on_relax_app_load_failed(self, msg: LoadFailed) -> None:
+        if self._gone():
+            return
         self.phase = "load-failed"
         self.problem = msg.text
-        self.query_one(FieldView).set_placeholder("the case could not be loaded (see below); q quits")
+        self.main.query_one(FieldView).set_placeholder("the case could not be loaded (see below); q quits")
         self._update_status()
 
     # -- the field panel ---------------------------------------------------------------------
     def on_field_view_view_changed(self, msg: FieldView.ViewChanged) -> None:
+        if self._gone():
+            return
         rec = self._selected()
         if self.control is not None:
             self.control.set_view(msg.viewport)
@@ -473,7 +487,7 @@ class RelaxApp(App):
         return None, ""
 
     def _show_owned_frame(self, vp: Viewport | None = None) -> None:
-        view = self.query_one(FieldView)
+        view = self.main.query_one(FieldView)
         vp = vp or view.viewport
         if vp is None or self.layout is None:
             return
@@ -502,7 +516,7 @@ class RelaxApp(App):
 
         if not self._ready_for_run():
             return None
-        params = self.query_one(ParamsPanel)
+        params = self.main.query_one(ParamsPanel)
         kwargs = {}
         start = "the initial guess"
         if start_from is not None:
@@ -523,14 +537,14 @@ class RelaxApp(App):
         self.problem = None
         rec = RunRecord(len(self.records) + 1, run, start, options["omega"] == "auto")
         self.records.append(rec)
-        view = self.query_one(FieldView)
+        view = self.main.query_one(FieldView)
         control = SolveControl(view.viewport, paused=paused)
         if one_step:
             control.step_once()
         control.run = run
         self.active, self.control = rec, control
         self.phase = "preparing"
-        self.query_one(RunsPanel).set_row(rec.row())
+        self.main.query_one(RunsPanel).set_row(rec.row())
         self._select(rec.id)
         self._solve(rec.id, run, control)
         return rec
@@ -611,6 +625,8 @@ class RelaxApp(App):
         return self.records[run_id - 1] if 0 < run_id <= len(self.records) else None
 
     def on_relax_app_run_prepared(self, msg: RunPrepared) -> None:
+        if self._gone():
+            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -621,14 +637,18 @@ class RelaxApp(App):
         self._refresh_run(rec)
 
     def on_relax_app_run_frame(self, msg: RunFrame) -> None:
+        if self._gone():
+            return
         rec = self._record(msg.run_id)
         if rec is None or msg.frame is None:
             return
         rec.frame = msg.frame
         if rec.id == self.selected:
-            self.query_one(FieldView).show_frame(msg.frame)
+            self.main.query_one(FieldView).show_frame(msg.frame)
 
     def on_relax_app_run_progress(self, msg: RunProgress) -> None:
+        if self._gone():
+            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -638,11 +658,13 @@ class RelaxApp(App):
         if msg.frame is not None:
             rec.frame = msg.frame
             if rec.id == self.selected:
-                self.query_one(FieldView).show_frame(msg.frame)
+                self.main.query_one(FieldView).show_frame(msg.frame)
         self._plot_dirty = True
         self._refresh_run(rec)
 
     def on_relax_app_run_finished(self, msg: RunFinished) -> None:
+        if self._gone():
+            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -665,6 +687,8 @@ class RelaxApp(App):
         self.notify(f"run #{rec.id} {rec.status} after {group(rec.progress.sweeps)} sweeps", title="finished", severity=severity, timeout=4)
 
     def on_relax_app_run_failed(self, msg: RunFailed) -> None:
+        if self._gone():
+            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -677,6 +701,8 @@ class RelaxApp(App):
         self._refresh_run(rec)
 
     def on_relax_app_omega_applied(self, msg: OmegaApplied) -> None:
+        if self._gone():
+            return
         if msg.ok:
             self.notify(msg.text, title="ω changed", timeout=4)
         else:
@@ -733,6 +759,8 @@ class RelaxApp(App):
         self.phase = "stopping"
 
     def on_params_panel_omega_submitted(self, msg: ParamsPanel.OmegaSubmitted) -> None:
+        if self._gone():
+            return
         try:
             omega = parse_omega(msg.text)
         except RelaxError as exc:
@@ -750,17 +778,19 @@ class RelaxApp(App):
 
     def _select(self, run_id: int | None) -> None:
         self.selected = run_id
-        self.query_one(RunsPanel).select(run_id)
+        self.main.query_one(RunsPanel).select(run_id)
         rec = self._selected()
         if rec is not None and rec is not self.active:
             self._show_owned_frame()
         elif rec is not None and rec.frame is not None:
-            self.query_one(FieldView).show_frame(rec.frame)
+            self.main.query_one(FieldView).show_frame(rec.frame)
         self._plot_dirty = True
         self._refresh_plot()
         self._refresh_run(rec)
 
     def on_runs_panel_run_chosen(self, msg: RunsPanel.RunChosen) -> None:
+        if self._gone():
+            return
         self._ok()
         self._select(msg.run_id)
         self.notify(f"showing run #{msg.run_id}", timeout=2)
@@ -768,9 +798,9 @@ class RelaxApp(App):
     # -- refreshing panels ------------------------------------------------------------------------
     def _refresh_run(self, rec: RunRecord | None) -> None:
         if rec is not None:
-            self.query_one(RunsPanel).set_row(rec.row())
+            self.main.query_one(RunsPanel).set_row(rec.row())
         if rec is None or rec.id == self.selected:
-            timing = self.query_one(TimingPanel)
+            timing = self.main.query_one(TimingPanel)
             if rec is None:
                 timing.show(None)
             else:
@@ -780,20 +810,20 @@ class RelaxApp(App):
         self._update_banner()
 
     def _refresh_plot(self) -> None:
-        if not self._plot_dirty:
+        if self._gone() or not self._plot_dirty:
             return
         self._plot_dirty = False
         rec = self._selected()
         others = [r.series() for r in self.records if r is not rec and r.status != "failed"]
-        self.query_one(HistoryPanel).show(rec.series() if rec is not None else None, others[-5:])
+        self.main.query_one(HistoryPanel).show(rec.series() if rec is not None else None, others[-5:])
 
     def watch_phase(self, phase: str) -> None:
-        if self._mounted:
+        if self._mounted and not self._gone():
             self._update_banner()
             self._update_status()
 
     def _update_banner(self) -> None:
-        banner = self.query_one(Banner)
+        banner = self.main.query_one(Banner)
         case = self.case
         if case is None:
             text = f"{self.case_path.name}"
@@ -815,7 +845,7 @@ class RelaxApp(App):
         banner.show(text, *phase)
 
     def _update_status(self) -> None:
-        status = self.query_one(StatusStrip)
+        status = self.main.query_one(StatusStrip)
         rec = self._selected()
         if self.phase == "loading":
             status.show(f"loading {self.case_path.name}: reading the picture, assembling the operator…")
@@ -847,13 +877,13 @@ class RelaxApp(App):
     # -- panels and focus -------------------------------------------------------------------------
     def action_panel(self, name: str) -> None:
         self.panel = name
-        deck = self.query_one("#deck")
+        deck = self.main.query_one("#deck")
         for p in PANELS:
             deck.set_class(p == name, f"-show-{p}")
         target = {"field": FieldView, "history": HistoryPanel, "runs": RunsPanel}[name]
-        widget = self.query_one(target)
+        widget = self.main.query_one(target)
         if name == "runs":
-            self.query_one("#runs-table").focus()
+            self.main.query_one("#runs-table").focus()
         elif name == "field":
             widget.focus()
         else:
@@ -866,7 +896,7 @@ class RelaxApp(App):
         self.action_panel(self.panel)
 
     def action_focus_param(self, which: str) -> None:
-        self.query_one(f"#param-{which}").focus()
+        self.main.query_one(f"#param-{which}").focus()
 
     # -- export --------------------------------------------------------------------------------------
     def action_export(self) -> None:
@@ -906,6 +936,8 @@ class RelaxApp(App):
         self.post_message(self.Exported(written))
 
     def on_relax_app_exported(self, msg: Exported) -> None:
+        if self._gone():
+            return
         if msg.paths is None:
             self._refuse(f"export failed: {msg.text}")
             return

@@ -104,6 +104,7 @@ class ExportScreen(ModalScreen[dict | None]):
         self.what = what
         self.defaults = defaults
         self.check = check  # callable(**paths): raises RelaxError for a path that cannot be written
+        self.message = ""
 
     def compose(self) -> ComposeResult:
         with Vertical(id="export-box", classes="dialog") as box:
@@ -125,16 +126,19 @@ class ExportScreen(ModalScreen[dict | None]):
     def on_input_submitted(self, event: Input.Submitted) -> None:
         event.stop()
         paths = self.paths()
-        message = self.query_one("#export-message", Label)
         if not any(paths.values()):
-            message.update(Text("nothing to write: give at least one path", style="bold red"))
+            self._say("nothing to write: give at least one path")
             return
         try:
             self.check(**{k: Path(v) if v else None for k, v in paths.items()})
         except RelaxError as exc:
-            message.update(Text(str(exc), style="bold red"))
+            self._say(str(exc))
             return
         self.dismiss(paths)
+
+    def _say(self, text: str) -> None:
+        self.message = text
+        self.query_one("#export-message", Label).update(Text(text, style="bold red"))
 
     def action_cancel(self) -> None:
         self.dismiss(None)

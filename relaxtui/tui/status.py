@@ -42,10 +42,19 @@ class StatusStrip(Static):
         self.progress = None
         self.report: dict | None = None
         self.problem: str | None = None
+        self.plain = ""  # the text shown, without styles (for tests and screen readers)
 
     def show(self, headline: str, progress=None, report: dict | None = None, problem: str | None = None) -> None:
         self.headline, self.progress, self.report, self.problem = headline, progress, report, problem
-        self.update(self._content())
+        self._draw()
+
+    def _draw(self) -> None:
+        content = self._content()
+        self.plain = "\n".join(r.plain if isinstance(r, Text) else "" for r in content.renderables)
+        if self.report:
+            flows = self.report.get("flows") or {}
+            self.plain += "\n" + " ".join(f"{k} {_flow(v)}" for k, v in flows.items())
+        self.update(content)
 
     def _content(self):
         # In order of importance: a small strip shows the first lines only.
@@ -102,4 +111,4 @@ class StatusStrip(Static):
         return Group(*lines)
 
     def on_resize(self) -> None:
-        self.update(self._content())
+        self._draw()
