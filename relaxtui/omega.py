@@ -43,6 +43,21 @@ def sor_factor(mu: float, omega: float) -> float:
     return root * root
 
 
+def sor_smooth_gap(mu: float, omega: float) -> float | None:
+    """|λ - 1| of the SOR eigenvalue belonging to the Jacobi eigenvalue ``mu``
+    when it is complex (ω above the optimum), else None.
+
+    From Young's relation (λ + ω - 1)² = λ ω² μ²: with ω > ω_opt,
+    λ = (ω - 1) e^{2iφ}, cos φ = ω μ / (2 sqrt(ω - 1)).
+    """
+    if omega <= optimal_omega(mu) or omega <= 1.0:
+        return None
+    r = omega - 1.0
+    c = min(omega * mu / (2.0 * math.sqrt(r)), 1.0)
+    theta = 2.0 * math.acos(c)
+    return math.sqrt(1.0 - 2.0 * r * math.cos(theta) + r * r)
+
+
 def jacobi_factor(mu: float, weight: float = 1.0) -> float:
     """Weighted Jacobi factor on a 2-cyclic operator (spectrum in [-mu, mu])."""
     return max(abs(1.0 - weight * (1.0 - mu)), abs(1.0 - weight * (1.0 + mu)))

@@ -86,7 +86,7 @@ def _envelope_at(u: np.ndarray, idx: np.ndarray) -> np.ndarray:
     return u[cols].max(axis=1)
 
 
-def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = None):
+def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = None, prior_gap: float | None = None):
     """Bound the remaining error after each sweep ``ends`` of one run segment.
 
     Parameters
@@ -100,6 +100,12 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
     prior_factor : float, optional
         A theoretical convergence factor for the method, used as a lower bound
         on the factor (never to make the bound smaller).
+    prior_gap : float, optional
+        Theoretical |λ - 1| of the slowest *smooth* mode when the dominant
+        eigenvalues are complex (SOR above its optimal ω: all have modulus
+        ω - 1, but the smooth modes that carry the error rotate slowly, so the
+        error is |Δ|/|λ - 1|, far below |Δ|/(1 - |λ|)). Used only while the
+        measured factor agrees with ``prior_factor``.
 
     Returns
     -------
@@ -128,7 +134,15 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
         measured = np.exp(-r1)
     if prior_factor is not None:
         rho = np.maximum(rho, prior_factor)
-    gap = (1.0 - rho) / RATE_SAFETY
+    gap = 1.0 - rho
+    if prior_gap is not None and prior_factor is not None and 0.0 < prior_factor < 1.0:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            agrees = np.abs(r1 + math.log(prior_factor)) <= 0.1 * -math.log(prior_factor)
+        complex_regime = agrees & (prior_gap > gap)
+        # The factor is known exactly here (|λ| = ω - 1); only the bound's own
+        # looseness (rough modes dominate the updates) remains, so no rate safety.
+        gap = np.where(complex_regime, prior_gap * RATE_SAFETY, gap)
+    gap = gap / RATE_SAFETY
     finite = ok & np.isfinite(e_now) & np.isfinite(r1) & np.isfinite(r2) & (rate > 0.0) & (gap > 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         # the tail of the updates from this sweep on, Δ/(1 - rho) (a little looser
@@ -150,13 +164,13 @@ class Estimate:
     mature: bool  # whether the decay rate has settled enough to trust the bound
 
 
-def estimate(updates: np.ndarray, *, prior_factor: float | None = None) -> Estimate:
+def estimate(updates: np.ndarray, *, prior_factor: float | None = None, prior_gap: float | None = None) -> Estimate:
     """The estimate after the last sweep of ``updates`` (see :func:`estimates`)."""
     if len(updates) == 0:
         return Estimate(math.inf, None, None, False)
     if not math.isfinite(float(updates[-1])):
         return Estimate(math.inf, None, None, False)
-    e, f, meas, mature = estimates(updates, prior_factor=prior_factor)
+    e, f, meas, mature = estimates(updates, prior_factor=prior_factor, prior_gap=prior_gap)
     fac = None if math.isnan(f[0]) else float(f[0])
     return Estimate(float(e[0]), fac, None if math.isnan(meas[0]) else float(meas[0]), bool(mature[0]))
 
@@ -185,6 +199,7 @@ class StoppingRule:
         self.time_limit = time_limit
         self.scale = max(abs(float(scale)), np.finfo(float).tiny)
         self.prior_factor: float | None = None
+        self.prior_gap: float | None = None
         self._updates = np.empty(1024)
         self._n = 0
         self._segment = 0  # index where the current segment (same iteration) starts
@@ -209,10 +224,11 @@ class StoppingRule:
                 self._best_at = self._n + int(i)
         self._n = need
 
-    def restart(self, prior_factor: float | None = None) -> None:
+    def restart(self, prior_factor: float | None = None, prior_gap: float | None = None) -> None:
         """The iteration changed (new ω, new method): measure rates afresh from here."""
         self._segment = self._n
         self.prior_factor = prior_factor
+        self.prior_gap = prior_gap
         self._best = math.inf
         self._best_at = self._n
 
@@ -232,10 +248,10 @@ class StoppingRule:
         if count <= 0:
             return np.empty(0)
         ends = np.arange(len(seg) - count, len(seg))
-        return estimates(seg, ends, prior_factor=self.prior_factor)[0]
+        return estimates(seg, ends, prior_factor=self.prior_factor, prior_gap=self.prior_gap)[0]
 
     def estimate(self) -> Estimate:
-        return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor)
+        return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor, prior_gap=self.prior_gap)
 
     def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
         """The decision after the sweeps fed so far (``seconds`` of solving)."""

@@ -1,0 +1,329 @@
+"""``relaxtui solve`` and ``relaxtui sweep``: headless solves from the command line.
+
+Exit codes: 0 converged; 1 ran but did not converge (sweep-limit, time-limit,
+stalled, diverged); 2 bad input or options; 130 interrupted (the outputs are
+still written, with status ``cancelled``).
+"""
+
+from __future__ import annotations
+
+import math
+import signal
+import sys
+import threading
+import time
+from contextlib import contextmanager
+from pathlib import Path
+
+from relaxtui.errors import UsageError
+
+EXIT_CONVERGED, EXIT_NOT_CONVERGED, EXIT_INTERRUPTED = 0, 1, 130
+
+
+@contextmanager
+def _sigint_to(event: threading.Event):
+    """The first Ctrl-C sets ``event`` (the run ends cleanly); a second one interrupts."""
+    previous = signal.getsignal(signal.SIGINT)
+
+    def handler(signum, frame):
+        if event.is_set():
+            signal.signal(signal.SIGINT, previous)
+            raise KeyboardInterrupt
+        event.set()
+
+    try:
+        signal.signal(signal.SIGINT, handler)
+    except ValueError:  # not in the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _default_outputs(args, case):
+    """Paths of field, report and history: the ones given, else next to the current folder."""
+    given = [args.out, args.report, args.history, args.picture, args.vtk, args.bundle]
+    if any(p is not None for p in given):
+        return args.out, args.report, args.history
+    stem = case.name
+    return f"{stem}.field.npy", f"{stem}.report.json", f"{stem}.history.csv"
+
+
+def run_solve(args) -> int:
+    from relaxtui.case import load_case
+    from relaxtui.driver import Run, check_outputs
+
+    case = load_case(args.case)
+    out, report_path, history_path = _default_outputs(args, case)
+    check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
+    initial = None
+    if args.initial is not None:
+        from relaxtui.export import load_field
+
+        initial = load_field(args.initial, case.shape)
+    run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
+              time_limit=args.time_limit, initial=initial)
+    interrupted = threading.Event()
+    with _sigint_to(interrupted):
+        display = _Display(run, quiet=args.quiet)
+        display.start("preparing (assembly, omega, kernels)")
+        run.prepare()
+        while not run.done:
+            if interrupted.is_set():
+                run.cancel()
+            display.update(run.step(0.25))
+        display.stop()
+        result = run.result()
+        written = _write_all(result, args, out, report_path, history_path)
+    if not args.quiet:
+        _summary(result, written)
+    if interrupted.is_set():
+        return EXIT_INTERRUPTED
+    return EXIT_CONVERGED if result.report["status"] == "converged" else EXIT_NOT_CONVERGED
+
+
+def _write_all(result, args, out, report_path, history_path) -> list[Path]:
+    from relaxtui.driver import write_outputs
+
+    written = write_outputs(result, out=out, report=report_path, history=history_path)
+    if args.picture or args.vtk or args.bundle:
+        from relaxtui import export
+
+        if args.picture:
+            export.write_picture(args.picture, result.field, result.case, scale=args.scale, isolines=args.isolines)
+            written.append(Path(args.picture))
+        if args.vtk:
+            export.write_vtk(args.vtk, result.field, result.case)
+            written.append(Path(args.vtk))
+        if args.bundle:
+            export.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history, report=result.report)
+            written.append(Path(args.bundle))
+    return written
+
+
+def _summary(result, written) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    r = result.report
+    con = Console()
+    style = "green" if r["status"] == "converged" else "yellow"
+    con.print(f"[bold {style}]{r['status']}[/]: {r['message']}")
+    unit = r["unit"] or ""
+    con.print(f"{r['method']} omega {r['omega']:.4f} ({r['omega_note']}); {r['sweeps']} sweeps in {r['seconds']:.2f} s "
+              f"(+{r['prepare_seconds']:.2f} s set-up); largest residual {_g(r['residual'])} {unit}; "
+              f"factor {_g(r['convergence_factor'])}")
+    if r["min"] is not None:
+        a, b = r["min_at"], r["max_at"]
+        con.print(f"min {r['min']:.6g} {unit} at row {a['row']}, col {a['col']} (x {a['x']:.4g} m, y {a['y']:.4g} m); "
+                  f"max {r['max']:.6g} {unit} at row {b['row']}, col {b['col']} (x {b['x']:.4g} m, y {b['y']:.4g} m)")
+    if r["flows"]:
+        t = Table(title="flows into the domain (per the case's depth)", title_justify="left")
+        t.add_column("region")
+        t.add_column("flow", justify="right")
+        for name, v in r["flows"].items():
+            t.add_row(name, _g(v))
+        t.add_row("sources", _g(r["source_total"]))
+        t.add_row("imbalance", _g(r["imbalance"]))
+        con.print(t)
+    for p in written:
+        con.print(f"wrote {p}")
+    con.print(f"[dim]{r['caution']}[/]")
+
+
+def _g(x) -> str:
+    return "n/a" if x is None else f"{x:.4g}"
+
+
+class _Display:
+    """Rich progress on a terminal's stderr; plain lines every few seconds otherwise."""
+
+    def __init__(self, run, quiet: bool):
+        self.run = run
+        self.quiet = quiet
+        self.live = not quiet and sys.stderr.isatty()
+        self._progress = None
+        self._task = None
+        self._last_line = 0.0
+        self._e0 = None
+
+    def start(self, text: str) -> None:
+        if self.quiet:
+            return
+        if self.live:
+            from rich.console import Console
+            from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+            self._progress = Progress(
+                TextColumn("{task.description}"),
+                BarColumn(),
+                TextColumn("{task.fields[info]}"),
+                TimeElapsedColumn(),
+                console=Console(stderr=True),
+                transient=True,
+            )
+            self._progress.start()
+            self._task = self._progress.add_task(text, total=1.0, info="")
+        else:
+            print(f"relaxtui: {text}", file=sys.stderr, flush=True)
+
+    def update(self, p) -> None:
+        if self.quiet:
+            return
+        err = p.estimated_error
+        eta = "" if p.eta_seconds is None else f" ETA {p.eta_seconds:.0f} s"
+        info = (f"sweep {p.sweeps}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
+                if math.isfinite(err) else f"sweep {p.sweeps}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
+        if self.live:
+            # progress on a log scale: from the first finite estimate down to the tolerance
+            frac = 0.0
+            if math.isfinite(err) and err > 0:
+                if self._e0 is None:
+                    self._e0 = max(err, p.tolerance * 10)
+                span = math.log(self._e0 / p.tolerance)
+                frac = min(1.0, max(0.0, math.log(self._e0 / err) / span)) if span > 0 else 1.0
+            elif err == 0:
+                frac = 1.0
+            self._progress.update(self._task, completed=frac, info=info, description=f"{p.method} omega {p.omega:.4f}")
+        elif time.monotonic() - self._last_line >= 5.0 or p.status:
+            self._last_line = time.monotonic()
+            print(f"relaxtui: {info}", file=sys.stderr, flush=True)
+
+    def stop(self) -> None:
+        if self._progress is not None:
+            self._progress.stop()
+
+
+# -- relaxtui sweep -------------------------------------------------------------
+
+def parse_range(text: str) -> list[float]:
+    """``START:STOP:STEP`` (STOP included) or a comma-separated list of ω values."""
+    try:
+        if ":" in text:
+            parts = [float(x) for x in text.split(":")]
+            if len(parts) != 3:
+                raise ValueError
+            start, stop, step = parts
+            if step <= 0 or stop < start:
+                raise ValueError
+            n = int(math.floor((stop - start) / step + 1e-9)) + 1
+            values = [round(start + i * step, 12) for i in range(n)]
+        else:
+            values = [float(x) for x in text.split(",")]
+    except ValueError:
+        raise UsageError(f"--omega wants START:STOP:STEP (e.g. 1.80:1.99:0.01) or a list a,b,c; got {text!r}") from None
+    for w in values:
+        if not 0.0 < w < 2.0:
+            raise UsageError(f"omega must lie in (0, 2), got {w:g} in {text!r}")
+    if len(values) > 500:
+        raise UsageError(f"--omega {text!r} gives {len(values)} settings; at most 500")
+    return values
+
+
+def run_sweep(args) -> int:
+    from relaxtui.case import load_case
+    from relaxtui.driver import Run, check_outputs
+    from relaxtui.methods import get_method
+    from relaxtui.operator import Operator
+
+    if args.omega is None and args.methods is None:
+        raise UsageError("give --omega START:STOP:STEP (with --method) or --methods M1,M2,...")
+    if args.omega is not None and args.methods is not None:
+        raise UsageError("give either --omega or --methods, not both")
+    if args.csv:
+        check_outputs(csv=args.csv)
+    case = load_case(args.case)
+    settings: list[tuple[str, object]] = []
+    if args.omega is not None:
+        method = args.method or "red-black-sor"
+        if not get_method(method).omega_meaning or method == "jacobi":
+            raise UsageError(f"an omega scan needs sor or red-black-sor, not {method}")
+        settings = [(method, w) for w in parse_range(args.omega)] + [(method, "auto")]
+        rank_by = "sweeps"
+    else:
+        names = [m.strip() for m in args.methods.split(",") if m.strip()]
+        if not names:
+            raise UsageError("--methods needs at least one method name")
+        for name in names:
+            get_method(name)
+        settings = [(name, "auto") for name in names]
+        rank_by = "seconds"
+    # validate every setting before the first solve
+    for method, w in settings:
+        Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit)
+
+    op = Operator(case)
+    rows = []
+    interrupted = threading.Event()
+    with _sigint_to(interrupted):
+        for method, w in settings:
+            if interrupted.is_set():
+                break
+            run = Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
+                      time_limit=args.time_limit, operator=op)
+            run.prepare()
+            while not run.done:
+                if interrupted.is_set():
+                    run.cancel()
+                run.step(0.5)
+            p = run.progress
+            mcells = op.cells_streamed * p.sweeps / p.seconds / 1e6 if p.seconds > 0 else 0.0
+            rows.append({
+                "method": method,
+                "omega_setting": "auto" if w == "auto" else f"{w:g}",
+                "omega": run.omega,
+                "sweeps": p.sweeps,
+                "seconds": p.seconds,
+                "mcells_per_s": mcells,
+                "status": p.status,
+                "factor": p.factor,
+                "estimated_error": p.estimated_error,
+            })
+            if not args.quiet:
+                print(f"relaxtui sweep: {method} omega {rows[-1]['omega_setting']}: {p.status} after {p.sweeps} sweeps, {p.seconds:.2f} s",
+                      file=sys.stderr, flush=True)
+    best = _mark_best(rows, rank_by)
+    _print_table(rows, best, rank_by, case, run.tolerance if rows else None)
+    if args.csv:
+        _write_csv(args.csv, rows, best)
+    if interrupted.is_set():
+        return EXIT_INTERRUPTED
+    return EXIT_CONVERGED if rows and all(r["status"] == "converged" for r in rows) else EXIT_NOT_CONVERGED
+
+
+def _mark_best(rows, rank_by):
+    fixed = [i for i, r in enumerate(rows) if r["status"] == "converged" and r["omega_setting"] != "auto"] or \
+            [i for i, r in enumerate(rows) if r["status"] == "converged"]
+    if not fixed:
+        return None
+    return min(fixed, key=lambda i: (rows[i][rank_by], rows[i]["seconds"]))
+
+
+def _print_table(rows, best, rank_by, case, tolerance) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    unit = f" {case.unit}" if case.unit else ""
+    t = Table(title=f"{case.name}: tolerance {tolerance:g}{unit}; best by {rank_by} marked *", title_justify="left")
+    for col, just in (("", "left"), ("method", "left"), ("omega", "right"), ("sweeps", "right"), ("seconds", "right"),
+                      ("Mcell/s", "right"), ("status", "left"), ("factor", "right")):
+        t.add_column(col, justify=just)
+    for i, r in enumerate(rows):
+        mark = "*" if i == best else ""
+        omega = f"auto {r['omega']:.4f}" if r["omega_setting"] == "auto" else f"{r['omega']:.4f}"
+        t.add_row(mark, r["method"], omega, str(r["sweeps"]), f"{r['seconds']:.3f}", f"{r['mcells_per_s']:.0f}",
+                  r["status"], "n/a" if r["factor"] is None else f"{r['factor']:.6f}")
+    Console().print(t)
+
+
+def _write_csv(path, rows, best) -> None:
+    from relaxtui.output import write_text
+
+    lines = ["method,omega_setting,omega,sweeps,seconds,mcells_per_s,status,factor,best"]
+    for i, r in enumerate(rows):
+        factor = "" if r["factor"] is None else repr(r["factor"])
+        lines.append(f"{r['method']},{r['omega_setting']},{r['omega']!r},{r['sweeps']},{r['seconds']:.6f},"
+                     f"{r['mcells_per_s']:.3f},{r['status']},{factor},{int(i == best)}")
+    write_text(path, "\n".join(lines) + "\n", "table")
