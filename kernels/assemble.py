@@ -52,6 +52,23 @@ def _key(codes, i, j, border):
 
 
 @kernel(parallel=True)
+def region_cells(codes, nreg):
+    """Number of cells of each region (int64, (nreg,))."""
+    rows, cols = codes.shape
+    nblk = min(rows, 64)
+    acc = np.zeros((nblk, nreg), dtype=np.int64)
+    for b in prange(nblk):
+        for i in range(b * rows // nblk, (b + 1) * rows // nblk):
+            for j in range(cols):
+                acc[b, codes[i, j]] += 1
+    out = np.zeros(nreg, dtype=np.int64)
+    for b in range(nblk):
+        for r in range(nreg):
+            out[r] += acc[b, r]
+    return out
+
+
+@kernel(parallel=True)
 def count_edge_cells(codes, interior):
     """Per row: the number of interior cells that are not bulk (int64, (rows,))."""
     rows, cols = codes.shape

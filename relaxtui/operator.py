@@ -163,7 +163,7 @@ class Operator:
         edge_keys, edge_counts = np.unique(keys, return_counts=True)
         del keys
         # interior cells per region, minus the edge cells of that region, are its bulk cells
-        region_cells = np.bincount(self.codes.ravel(), minlength=nreg).astype(np.int64)
+        region_cells = assemble.region_cells(self.codes, nreg)
         edge_of_region = np.bincount(edge_keys // base**4, weights=edge_counts, minlength=nreg).astype(np.int64)
         bulk_cells = np.where(self.interior != 0, region_cells - edge_of_region, 0)
         bulk_regions = np.flatnonzero(bulk_cells > 0)

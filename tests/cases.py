@@ -139,3 +139,51 @@ def model_problem(n: int, hot: float = 1.0, side: str = "top", conductivity: flo
         {".": interior("plate", conductivity), "H": fixed("hot", hot), "C": fixed("cold", 0.0), "x": outside("corner")},
         name=f"model-{n}",
     )
+
+
+# 16 rows x 44 columns. H hot edge, # cold edge, o isolated fixed cells, x outside
+# (holes, an inside corner, a one-cell channel in row 8), ~ a convection strip, ^ a flux strip.
+FEATURE_ART = [
+    "xHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHx",
+    "#..........................................#",
+    "#..........................................#",
+    "#.........................o................#",
+    "#......................................o...#",
+    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
+    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
+    "#.....................................x....#",
+    "xxxxxxxxxxxxxxxxxxxxxxxxx.xxxxxxxxxxxxxxxxxx",
+    "#..........................................~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
+    "#..........................................x",
+    "#..........................................x",
+    "^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^x",
+]
+
+
+def feature_legend(two_materials: bool):
+    return {
+        ".": interior("plate", 1.0 if not two_materials else 3.0),
+        "b": interior("insert", 1.0 if not two_materials else 0.25, source=0.0 if not two_materials else 2.0),
+        "H": fixed("hot", 1.0),
+        "#": fixed("cold", 0.0, conductivity=None if not two_materials else 5.0),
+        "o": fixed("pin", 0.5),
+        "x": outside("void"),
+        "~": convection("air", 4.0, 0.2),
+        "^": flux("heater", 0.05),
+        "F": flux("unused", 1.0),  # declared, absent from the picture
+    }
+
+
+def feature_case(two_materials: bool) -> Case:
+    """A 16 x 44 picture with most of what a kernel can meet (see FEATURE_ART).
+
+    Uniform: every interior cell has k = 1, no source. Two materials: a plate
+    (k = 3) with an insert (k = 0.25, source 2), the cold edge with its own
+    conductivity (5), cell size 0.5 and depth 2.
+    """
+    if two_materials:
+        return make_case(FEATURE_ART, feature_legend(True), cell_size=0.5, depth=2.0, name="features-two")
+    return make_case(FEATURE_ART, feature_legend(False), cell_size=0.5, name="features-uniform")

@@ -18,51 +18,12 @@ import numpy as np
 import pytest
 
 import reference
-from cases import convection, fixed, flux, interior, make_case, outside
+from cases import feature_case, fixed, interior, make_case
 from relaxtui.operator import Operator
 
 HERE = Path(__file__).resolve().parent
 
-# 16 rows x 44 columns. H hot edge, # cold edge, o isolated fixed cells, x outside
-# (holes, an inside corner, a one-cell channel in row 8), ~ a convection strip, ^ a flux strip.
-ART = [
-    "xHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHHx",
-    "#..........................................#",
-    "#..........................................#",
-    "#.........................o................#",
-    "#......................................o...#",
-    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
-    "#..........xxxxxxxxxxxxxxxxxxxxxxxxx.......#",
-    "#.....................................x....#",
-    "xxxxxxxxxxxxxxxxxxxxxxxxx.xxxxxxxxxxxxxxxxxx",
-    "#..........................................~",
-    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
-    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
-    "#.......bbbbbbbbbbbbbbbbbbbbbbbbb..........~",
-    "#..........................................x",
-    "#..........................................x",
-    "^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^^x",
-]
-
-
-def legend(two_materials: bool):
-    return {
-        ".": interior("plate", 1.0 if not two_materials else 3.0),
-        "b": interior("insert", 1.0 if not two_materials else 0.25, source=0.0 if not two_materials else 2.0),
-        "H": fixed("hot", 1.0),
-        "#": fixed("cold", 0.0, conductivity=None if not two_materials else 5.0),
-        "o": fixed("pin", 0.5),
-        "x": outside("void"),
-        "~": convection("air", 4.0, 0.2),
-        "^": flux("heater", 0.05),
-        "F": flux("unused", 1.0),  # declared, absent from the picture
-    }
-
-
-CASES = {
-    "uniform": make_case(ART, legend(False), cell_size=0.5),
-    "two-material": make_case(ART, legend(True), cell_size=0.5, depth=2.0),
-}
+CASES = {"uniform": feature_case(False), "two-material": feature_case(True)}
 METHODS = [("jacobi", 1.0), ("jacobi", 0.7), ("gauss-seidel", 1.0), ("sor", 1.6), ("sor", 0.8), ("red-black-sor", 1.0), ("red-black-sor", 1.6)]
 
 
