@@ -107,21 +107,22 @@ def electrodes() -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------
-# (c) composite: a potted solenoid coil in a steel housing, bolted to a warm frame
+# (c) composite: a potted solenoid coil in a steel housing, clamped in a warm frame
 
 COMPOSITE = ["#dff3ff", "#5b6770", "#f2e6a0", "#b5651d", "#303030"]
 
 
 def composite() -> np.ndarray:
     air, steel, epoxy, winding, frame = range(5)
-    rows, cols = 320, 440  # 0.15 mm cells: 66 mm x 48 mm
+    rows, cols = 240, 330  # 0.2 mm cells: 66 mm x 48 mm
     a = np.full((rows, cols), air, np.uint8)
-    a[12:308, 12:428] = steel  # housing, 3.9 mm walls
-    a[38:282, 38:402] = epoxy  # potting
-    a[38:282, 200:240] = steel  # central core, joined to the top and bottom walls
-    a[50:270, 60:186] = winding  # the two sides of the winding
-    a[50:270, 254:380] = winding
-    a[308:320, 120:320] = frame  # mounting bracket under the housing
+    a[9:231, 9:321] = steel  # housing, about 4 mm walls
+    a[28:212, 28:302] = epoxy  # potting
+    a[28:212, 150:180] = steel  # central core, joined to the top and bottom walls
+    a[37:203, 45:140] = winding  # the two sides of the winding
+    a[37:203, 190:285] = winding
+    a[231:, 9:321] = frame  # the machine frame the housing sits on
+    a[:9, 120:210] = frame  # and the clamp bracket on top, part of the same frame
     return a
 
 

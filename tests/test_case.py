@@ -668,7 +668,9 @@ def test_import_case_does_not_load_numba_or_textual():
     assert out.split() == ["False", "False"]
 
 
-DEMOS = ["heat-spreader", "electrodes", "composite", "large-aquifer"]
+NO_JIT = os.environ.get("NUMBA_DISABLE_JIT", "0") not in ("", "0")
+DEMOS = ["heat-spreader", "electrodes", "composite",
+         pytest.param("large-aquifer", marks=pytest.mark.skipif(NO_JIT, reason="labelling 16.7 M cells in plain Python takes minutes"))]
 
 
 @pytest.mark.parametrize("name", DEMOS)
