@@ -7,6 +7,7 @@ textual. Each subcommand's handler is imported only when it runs.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 from relaxtui.errors import RelaxError, UsageError
@@ -157,6 +158,10 @@ def _handler(command: str):
 
 
 def main(argv: list[str] | None = None) -> int:
+    # numba's threads do the parallel work; a threaded BLAS beside them only
+    # spins against them on a small machine (set before numpy is imported).
+    for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(var, "1")
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] not in SUBCOMMANDS and not argv[0].startswith("-") and argv[0].endswith(".toml"):
         argv.insert(0, "open")

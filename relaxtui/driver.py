@@ -178,7 +178,8 @@ class Run:
         self.omega = 1.0 if self._omega_request == "auto" else float(self._omega_request)
         self.omega_note = "given"
         self.omega_changes: list[tuple[int, float, str]] = []
-        self.mu: float | None = None  # estimated Jacobi radius (auto omega only)
+        self.mu: float | None = None  # estimated Jacobi radius (SOR methods)
+        self._radius_note = ""
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
@@ -231,29 +232,48 @@ class Run:
                     scale = max(scale, abs(v))
         return scale or 1.0
 
+    def _radius(self) -> float:
+        """The Jacobi spectral radius of this case's operator (estimated once per operator)."""
+        if self.mu is None:
+            cached = getattr(self.operator, "_relaxtui_radius", None)
+            if cached is None:
+                from relaxtui.omega import jacobi_radius
+
+                t0 = time.perf_counter()
+                est = jacobi_radius(self.operator.jacobi_apply, self.operator.sqrt_diag())
+                cached = (est.mu, f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s)")
+                self.operator._relaxtui_radius = cached
+            self.mu, self._radius_note = cached
+        return self.mu
+
     def _choose_omega(self, request) -> None:
+        """Set ω (a number or "auto") and restart the stopping rule's measurement.
+
+        For the SOR methods the Jacobi radius is estimated even when ω is
+        given: Young's relations then give the rule a floor for the factor and,
+        above the optimal ω, the smooth modes' |λ - 1| (see stopping.estimates).
+        """
+        from relaxtui.omega import sor_smooth_gap
+
         m = self.method_info
-        prior = None
+        if m.needs_radius:
+            self._radius()
         if request == "auto":
             if m.needs_radius:
-                if self.mu is None:
-                    from relaxtui.omega import jacobi_radius
-
-                    t0 = time.perf_counter()
-                    est = jacobi_radius(self.operator.jacobi_apply, self.operator.sqrt_diag())
-                    self.mu = est.mu
-                    self.omega_note = (f"auto: Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps "
-                                       f"({time.perf_counter() - t0:.2f} s), omega = 2/(1+sqrt(1-radius^2))")
                 self.omega = m.auto(self.mu)
+                if not self.omega_note.startswith("auto: Jacobi radius raised"):
+                    self.omega_note = f"auto: {self._radius_note}, omega = 2/(1+sqrt(1-radius^2))"
             else:
                 self.omega = 1.0
                 self.omega_note = "auto: 1 (the best weight for this method on a red-black-coupled grid)"
         else:
             self.omega = float(request)
             self.omega_note = "given"
+        prior = gap = None
         if self.mu is not None:
             prior = m.factor(self.mu, self.omega)
-        self.rule.restart(prior_factor=prior)
+            gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
+        self.rule.restart(prior_factor=prior, prior_gap=gap)
         self.omega_changes.append((self.rule.sweeps, self.omega, self.omega_note))
 
     def set_omega(self, omega) -> None:
@@ -333,9 +353,11 @@ class Run:
         d = self.rule.last
         cap = MAX_CHUNK_UNSETTLED
         if d.eta_sweeps is not None and math.isfinite(d.estimated_error):
-            cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
+            # half the predicted remainder, and at most a tenth of the sweeps so far,
+            # so that a pessimistic prediction cannot make the run overshoot by much
+            cap = int(min(MAX_CHUNK, max(4, min(d.eta_sweeps / 2, 0.1 * self.rule.sweeps + 8))))
         remaining = self.max_sweeps - self.rule.sweeps
-        return max(1, min(n, cap, remaining, MAX_CHUNK))
+        return max(1, min(n, cap, int(0.1 * self.rule.sweeps) + 8, remaining, MAX_CHUNK))
 
     def _maybe_correct_omega(self) -> None:
         """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""
@@ -347,8 +369,8 @@ class Run:
         if not est.mature or meas is None or not 0.0 < meas < 1.0:
             return
         seg_len = self.rule.sweeps - self.omega_changes[-1][0]
-        if seg_len < 3.0 / max(1.0 - predicted, 1e-12):
-            return  # too early to tell from the Jordan-block transient
+        if seg_len < 10.0 / max(1.0 - predicted, 1e-12):
+            return  # too early: near the optimum SOR decays like k·(ω-1)^k for a long while
         if (1.0 - meas) >= 0.5 * (1.0 - predicted):
             return
         from relaxtui.omega import mu_from_sor_factor
@@ -359,6 +381,7 @@ class Run:
         self._corrections += 1
         old = self.mu
         self.mu = mu_new
+        self.operator._relaxtui_radius = (mu_new, f"Jacobi radius {mu_new:.6f} (raised from the observed SOR factor)")
         self.omega_note = (f"auto: Jacobi radius raised {old:.6f} -> {mu_new:.6f} from the observed SOR factor "
                            f"{meas:.6f} (Young's relation), omega = 2/(1+sqrt(1-radius^2))")
         self._choose_omega("auto")

@@ -80,7 +80,7 @@ class RadiusEstimate:
     settled: bool  # whether the estimate stopped moving before the step limit
 
 
-def jacobi_radius(apply, sqrt_d: np.ndarray, *, max_steps: int = 120, rtol: float = 0.02) -> RadiusEstimate:
+def jacobi_radius(apply, sqrt_d: np.ndarray, *, max_steps: int = 150, rtol: float = 0.01) -> RadiusEstimate:
     """Estimate ρ(J) with Lanczos on S = D^{1/2} J D^{-1/2}.
 
     Parameters
@@ -96,53 +96,42 @@ def jacobi_radius(apply, sqrt_d: np.ndarray, *, max_steps: int = 120, rtol: floa
         Stop when the gap 1 - μ changed by less than this fraction over the
         last 5 steps.
     """
-    active = sqrt_d > 0.0
+    from relaxtui.kernels import spectral
+
     inv = np.zeros_like(sqrt_d)
-    np.divide(1.0, sqrt_d, out=inv, where=active)
+    np.divide(1.0, sqrt_d, out=inv, where=sqrt_d > 0.0)
     # A smooth positive start vector overlaps strongly with the Perron vector
     # (the slowest mode), so the top Ritz value settles in few steps.
-    v = np.where(active, sqrt_d, 0.0)
-    v /= np.linalg.norm(v)
+    v = sqrt_d.copy()
+    spectral.scale_into(v, 1.0 / math.sqrt(spectral.rayleigh(v.copy(), np.ones_like(v), v)), v)
     v_prev = np.zeros_like(v)
     w = np.empty_like(v)
     tmp = np.empty_like(v)
-    alphas: list[float] = []
-    betas: list[float] = []
+    alphas = np.zeros(max_steps)
+    betas = np.zeros(max_steps)
     beta = 0.0
     history: list[float] = []
     settled = False
     steps = 0
     for steps in range(1, max_steps + 1):
-        np.multiply(v, inv, out=tmp)
+        spectral.unscale(v, inv, tmp)
         apply(tmp, w)
-        w *= sqrt_d
-        alpha = float(np.vdot(w, v))
-        w -= alpha * v
-        if beta:
-            w -= beta * v_prev
-        alphas.append(alpha)
-        beta = float(np.linalg.norm(w))
-        top = _top_ritz(alphas, betas)
+        alpha = spectral.rayleigh(w, sqrt_d, v)
+        beta_new = spectral.orthogonalise(w, v, alpha, v_prev, beta)
+        alphas[steps - 1] = alpha
+        top = float(spectral.tridiagonal_extreme(alphas, betas, steps))
         history.append(top)
         if len(history) > 5:
             old, new = 1.0 - history[-6], 1.0 - top
             if new > 0 and abs(old - new) <= rtol * new:
                 settled = True
                 break
-        if beta <= 1e-14:
+        if beta_new <= 1e-14:
             settled = True
             break
-        betas.append(beta)
+        beta = beta_new
+        betas[steps - 1] = beta
         v_prev, v = v, v_prev
-        np.divide(w, beta, out=v)
+        spectral.scale_into(w, 1.0 / beta, v)
     mu = min(max(history[-1], 0.0), 1.0 - 1e-16) if history else 0.0
     return RadiusEstimate(mu, steps, settled)
-
-
-def _top_ritz(alphas: list[float], betas: list[float]) -> float:
-    n = len(alphas)
-    if n == 1:
-        return abs(alphas[0])
-    t = np.diag(alphas) + np.diag(betas[: n - 1], 1) + np.diag(betas[: n - 1], -1)
-    ev = np.linalg.eigvalsh(t)
-    return float(max(abs(ev[0]), abs(ev[-1])))

@@ -200,6 +200,7 @@ class StoppingRule:
         self.scale = max(abs(float(scale)), np.finfo(float).tiny)
         self.prior_factor: float | None = None
         self.prior_gap: float | None = None
+        self._settled_factor: float | None = None  # last factor measured while the rate had settled
         self._updates = np.empty(1024)
         self._n = 0
         self._segment = 0  # index where the current segment (same iteration) starts
@@ -229,6 +230,7 @@ class StoppingRule:
         self._segment = self._n
         self.prior_factor = prior_factor
         self.prior_gap = prior_gap
+        self._settled_factor = None
         self._best = math.inf
         self._best_at = self._n
 
@@ -256,6 +258,14 @@ class StoppingRule:
     def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
         """The decision after the sweeps fed so far (``seconds`` of solving)."""
         est = self.estimate()
+        if est.mature and est.factor is not None:
+            self._settled_factor = est.factor
+        elif self._at_floor() and self._settled_factor is not None:
+            # Updates are rounding noise now, so their ratios say nothing; the
+            # factor measured before the floor still bounds what is left.
+            recent = float(self._updates[max(self._segment, self._n - ENVELOPE) : self._n].max())
+            gap = (1.0 - self._settled_factor) / RATE_SAFETY
+            est = Estimate(ERROR_SAFETY * recent / gap, self._settled_factor, None, True)
         eta = None
         if est.factor is not None and 0.0 < est.factor < 1.0 and math.isfinite(est.error):
             eta = max(0.0, math.log(self.tolerance / est.error) / math.log(est.factor)) if est.error > self.tolerance else 0.0
@@ -299,12 +309,17 @@ class StoppingRule:
         e_now, e_mid, e_old = _envelope_at(seg, np.array([k, k - m, k - 2 * m]))
         return e_now > e_mid > e_old and e_now > 1e3 * self._best
 
+    def _at_floor(self) -> bool:
+        """Whether the last updates are at the float64 rounding floor of the field."""
+        if self._n - self._segment < MIN_WINDOW:
+            return False
+        floor = FLOOR_ULPS * np.finfo(float).eps * self.scale
+        return float(self._updates[self._n - MIN_WINDOW : self._n].max()) <= floor
+
     def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
         if len(seg) < 2 * MIN_WINDOW:
             return False
-        floor = FLOOR_ULPS * np.finfo(float).eps * self.scale
-        recent = seg[-MIN_WINDOW:]
-        if recent.max() <= floor and est.error > self.tolerance:
+        if self._at_floor() and est.error > self.tolerance:
             return True  # rounding noise: no further progress is possible
         window = max(STALL_MIN_WINDOW, (self._n - self._segment) // 2)
         if est.factor is not None and 0.0 < est.factor < 1.0:
