@@ -503,7 +503,7 @@ def test_no_interior_cells(tmp_path):
         load_case(path)
 
 
-def test_floating_group_is_named_with_size_and_cell(tmp_path, capsys):
+def test_floating_group_is_named_with_size_and_cell(tmp_path, capsys, labelling):
     path = _domain_case(
         tmp_path,
         [
@@ -521,35 +521,69 @@ def test_floating_group_is_named_with_size_and_cell(tmp_path, capsys):
     assert main(["info", str(path)]) == 2
 
 
-def test_more_floating_groups_are_counted(tmp_path):
+def test_more_floating_groups_are_counted(tmp_path, labelling):
     path = _domain_case(tmp_path, ["FIOIOIO", "OOOOOOO", "IOOOOOI"])
     with pytest.raises(CaseError, match=r"a group of 1 interior cells \(one of them at row 0, column 3\).*; 3 more such groups"):
         load_case(path)
 
 
-def test_flux_does_not_anchor_but_convection_does(tmp_path):
+def test_flux_does_not_anchor_but_convection_does(tmp_path, labelling):
     path = _domain_case(tmp_path, ["QIIO", "OIIO"])
     with pytest.raises(CaseError, match="a group of 4 interior cells"):
         load_case(path)
     assert load_case(_domain_case(tmp_path, ["QIIC", "OIIO"])).shape == (2, 4)
 
 
-def test_diagonal_contact_does_not_anchor(tmp_path):
+def test_diagonal_contact_does_not_anchor(tmp_path, labelling):
     # 4-connectivity (the contract): the interior cell at (1,1) only meets the fixed cell at a corner
     path = _domain_case(tmp_path, ["FOO", "OIO", "OOO"])
     with pytest.raises(CaseError, match="a group of 1 interior cells"):
         load_case(path)
 
 
-def test_image_border_does_not_anchor(tmp_path):
+def test_image_border_does_not_anchor(tmp_path, labelling):
     path = _domain_case(tmp_path, ["IIO", "IIO"])
     with pytest.raises(CaseError, match="touches no fixed or convection cell"):
         load_case(path)
 
 
-def test_fixed_cells_inside_the_domain_are_fine(tmp_path):
+def test_fixed_cells_inside_the_domain_are_fine(tmp_path, labelling):
     case = load_case(_domain_case(tmp_path, ["IIIII", "IIFII", "IIIII"]))
     assert int(case.region_counts()[0]) == 14
+
+
+@pytest.fixture(params=["run-graph", "kernel"])
+def labelling(request, monkeypatch):
+    """Run a domain test through both labelling paths of the solvability check."""
+    if request.param == "kernel":
+        monkeypatch.setattr(case_module, "RUN_GRAPH_LIMIT", 0)
+    return request.param
+
+
+def _group_image(interior):
+    starts, ends, group = case_module.label_groups(interior)
+    h, w = interior.shape
+    out = np.zeros(h * (w + 2), np.int64)
+    for s, e, g in zip(starts, ends, group):
+        out[s:e] = g + 1
+    return out.reshape(h, w + 2)[:, 1:-1]
+
+
+def test_run_graph_labelling_agrees_with_scipy():
+    # Independent reference: scipy.ndimage.label (default 2-D structure = the
+    # 4-neighbour cross); both number groups in raster order of their first cell.
+    from scipy import ndimage
+
+    rng = np.random.default_rng(3)
+    for shape, p in [((1, 1), 1.0), ((1, 17), 0.6), ((23, 1), 0.6), ((31, 29), 0.45), ((40, 64), 0.6), ((64, 40), 0.7), ((50, 50), 0.9)]:
+        mask = rng.random(shape) < p
+        if not mask.any():
+            continue
+        np.testing.assert_array_equal(_group_image(mask), ndimage.label(mask)[0], err_msg=str(shape))
+    comb = np.zeros((7, 9), bool)  # teeth joined only at the bottom: merged late in raster order
+    comb[:, ::2] = True
+    comb[-1, :] = True
+    np.testing.assert_array_equal(_group_image(comb), ndimage.label(comb)[0])
 
 
 def test_label4_agrees_with_scipy():
@@ -699,3 +733,35 @@ def test_large_demo_is_large():
 
 def test_case_module_names():
     assert case_module.MAX_REGIONS == 255
+
+
+def test_solvability_check_against_scipy_on_random_domains(labelling):
+    """Random domains through build_case: the floating group reported (or none)
+    is the one an independent scipy.ndimage labelling finds first in raster order."""
+    from scipy import ndimage
+
+    regions = _regions() + [Region(name="air", color="#00ff00", kind="convection", coefficient=1.0, ambient=0.0),
+                            Region(name="in", color="#0000ff", kind="flux", flux=1.0)]
+    rng = np.random.default_rng(8)
+    cross = ndimage.generate_binary_structure(2, 1)
+    for trial in range(60):
+        shape = tuple(rng.integers(1, 14, size=2))
+        codes = rng.choice(5, size=shape, p=[0.6, 0.03, 0.25, 0.02, 0.1]).astype(np.uint8)
+        interior = codes == 0
+        if not interior.any():
+            continue
+        anchor = (codes == 1) | (codes == 3)
+        labels, n = ndimage.label(interior)
+        touching = ndimage.binary_dilation(anchor, structure=cross) & interior
+        floating = sorted(set(range(1, n + 1)) - set(np.unique(labels[touching]).tolist()))
+        if not floating:
+            build_case(codes, regions)
+            continue
+        g = floating[0]
+        r, c = np.argwhere(labels == g)[0]
+        with pytest.raises(CaseError) as err:
+            build_case(codes, regions)
+        msg = str(err.value)
+        assert f"a group of {int((labels == g).sum())} interior cells (one of them at row {r}, column {c})" in msg, (trial, msg)
+        if len(floating) > 1:
+            assert f"{len(floating) - 1} more such groups" in msg
