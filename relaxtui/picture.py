@@ -37,7 +37,7 @@ UNMATCHED = 255  # code of a pixel no region claims (regions are 0..254)
 MAX_REGIONS = 255
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 LIST_LIMIT = 20  # unmatched colours listed one by one in an error message
-_SNAP_CHUNK = 1 << 16  # unmatched colours compared with the declared ones per step
+_SNAP_CHUNK = 4096  # unmatched colours compared with the declared ones per step (U x R x 3 int64)
 
 
 def pack_rgb(r: int, g: int, b: int) -> int:
@@ -89,12 +89,6 @@ class Decoded:
     @property
     def shape(self) -> tuple[int, int]:
         return (int(self.index.shape[0]), int(self.index.shape[1]))
-
-    def packed(self) -> np.ndarray:
-        """Packed colour of every pixel (uint32, rows x cols); allocates."""
-        if self.table is None:
-            return self.index
-        return self.table[self.index]
 
     def census(self) -> tuple[np.ndarray, np.ndarray]:
         """Distinct packed colours and their pixel counts, most common first
