@@ -52,41 +52,35 @@ def _key(codes, i, j, border):
 
 
 @kernel(parallel=True)
-def region_cells(codes, nreg):
-    """Number of cells of each region (int64, (nreg,))."""
+def edge_keys(codes, interior, border):
+    """The distinct keys of the non-bulk interior cells, and counts.
+
+    Returns (keys, key_cells, region_cells): ``keys`` sorted (int64), the
+    number of cells with each key, and the number of cells of each region
+    (int64, (border,)).
+    """
     rows, cols = codes.shape
+    nreg = border
     nblk = min(rows, 64)
-    acc = np.zeros((nblk, nreg), dtype=np.int64)
+    counts = np.zeros(rows, dtype=np.int64)
+    per_block = np.zeros((nblk, nreg), dtype=np.int64)
     for b in prange(nblk):
         for i in range(b * rows // nblk, (b + 1) * rows // nblk):
+            n = 0
             for j in range(cols):
-                acc[b, codes[i, j]] += 1
-    out = np.zeros(nreg, dtype=np.int64)
+                r = codes[i, j]
+                per_block[b, r] += 1
+                if interior[r] != 0 and not _is_bulk(codes, i, j, r):
+                    n += 1
+            counts[i] = n
+    region_cells = np.zeros(nreg, dtype=np.int64)
     for b in range(nblk):
         for r in range(nreg):
-            out[r] += acc[b, r]
-    return out
-
-
-@kernel(parallel=True)
-def count_edge_cells(codes, interior):
-    """Per row: the number of interior cells that are not bulk (int64, (rows,))."""
-    rows, cols = codes.shape
-    counts = np.zeros(rows, dtype=np.int64)
-    for i in prange(rows):
-        n = 0
-        for j in range(cols):
-            r = codes[i, j]
-            if interior[r] != 0 and not _is_bulk(codes, i, j, r):
-                n += 1
-        counts[i] = n
-    return counts
-
-
-@kernel(parallel=True)
-def collect_edge_keys(codes, interior, border, offsets, keys):
-    """Write the key of every non-bulk interior cell, row by row from ``offsets[row]``."""
-    rows, cols = codes.shape
+            region_cells[r] += per_block[b, r]
+    offsets = np.zeros(rows + 1, dtype=np.int64)
+    for i in range(rows):
+        offsets[i + 1] = offsets[i] + counts[i]
+    keys = np.empty(offsets[rows], dtype=np.int64)
     for i in prange(rows):
         k = offsets[i]
         for j in range(cols):
@@ -94,6 +88,20 @@ def collect_edge_keys(codes, interior, border, offsets, keys):
             if interior[r] != 0 and not _is_bulk(codes, i, j, r):
                 keys[k] = _key(codes, i, j, border)
                 k += 1
+    keys.sort()
+    distinct = 0
+    for k in range(keys.shape[0]):
+        if k == 0 or keys[k] != keys[k - 1]:
+            distinct += 1
+    out = np.empty(distinct, dtype=np.int64)
+    cells = np.zeros(distinct, dtype=np.int64)
+    d = -1
+    for k in range(keys.shape[0]):
+        if k == 0 or keys[k] != keys[k - 1]:
+            d += 1
+            out[d] = keys[k]
+        cells[d] += 1
+    return out, cells, region_cells
 
 
 @kernel(parallel=True)
@@ -226,27 +234,33 @@ def _scan_row(cls, i, min_run, out_start, out_end, out_class, k0, write):
 
 
 @kernel(parallel=True)
-def count_segments(cls, min_run):
-    """Segments per padded row (int64, (rows + 2,)); the pad rows have none."""
+def segments(cls, min_run):
+    """Row segments of the padded class array (see :func:`_scan_row`).
+
+    Returns (row_ptr, seg_start, seg_end, seg_class): row i's segments are
+    ``row_ptr[i]:row_ptr[i + 1]`` (int64, (rows + 3,)); start and end (int32)
+    are padded column indices, class (int64) > 0 for bulk, -1 for mixed.
+    """
     n = cls.shape[0]
     counts = np.zeros(n, dtype=np.int64)
     dummy32 = np.zeros(1, dtype=np.int32)
     dummy64 = np.zeros(1, dtype=np.int64)
     for i in prange(1, n - 1):
         counts[i] = _scan_row(cls, i, min_run, dummy32, dummy32, dummy64, 0, False)
-    return counts
-
-
-@kernel(parallel=True)
-def fill_segments(cls, min_run, row_ptr, seg_start, seg_end, seg_class):
-    """Write the segments of every padded row i at ``row_ptr[i]..row_ptr[i + 1]``."""
-    n = cls.shape[0]
+    row_ptr = np.zeros(n + 1, dtype=np.int64)
+    for i in range(n):
+        row_ptr[i + 1] = row_ptr[i] + counts[i]
+    total = row_ptr[n]
+    seg_start = np.empty(total, dtype=np.int32)
+    seg_end = np.empty(total, dtype=np.int32)
+    seg_class = np.empty(total, dtype=np.int64)
     for i in prange(1, n - 1):
         _scan_row(cls, i, min_run, seg_start, seg_end, seg_class, row_ptr[i], True)
+    return row_ptr, seg_start, seg_end, seg_class
 
 
-@kernel
-def interior_runs(codes, interior, kind):
+@kernel(inline=True)
+def _interior_runs(codes, interior, kind):
     """Runs of interior cells per row, for the well-posedness check.
 
     Returns (row, start, end, anchored) arrays (int32 x 3, uint8): one entry
@@ -302,13 +316,15 @@ def _find(parent, x):
 
 
 @kernel
-def unanchored_group(run_row, run_start, run_end, anchored):
-    """Join runs that touch across rows (4-connectivity: overlapping columns).
+def unanchored_group(codes, interior, kind):
+    """Check that every 4-connected group of interior cells touches a fixed or convection face.
 
-    Returns (size, row, col) of one 4-connected group of interior cells that
-    touches no fixed or convection face, or (0, -1, -1) when every group does.
-    The cell reported is the group's first cell in image order.
+    Horizontal runs of interior cells are joined (union-find) where they
+    overlap in consecutive rows. Returns (size, row, col) of one group that
+    touches no fixed or convection face, or (0, -1, -1) when every group
+    does; the cell reported is the group's first cell in image order.
     """
+    run_row, run_start, run_end, anchored = _interior_runs(codes, interior, kind)
     n = run_row.shape[0]
     parent = np.arange(n)
     # runs are sorted by row then column: merge-walk each pair of consecutive rows

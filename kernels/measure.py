@@ -84,46 +84,52 @@ def jacobi_apply(x, out, cls, table, row_ptr, seg_start, seg_end, seg_class, nbl
 
 
 @kernel(parallel=True)
-def flows(codes, u, kind, conductivity, fixed_conductivity, value, flux, coefficient, ambient, source, h, nblk):
-    """Per row block: the flow into the domain through each region's faces, and the source total.
+def flows(codes, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind, conductivity, fixed_conductivity,
+          value, flux, coefficient, ambient, h, nblk):
+    """Per row block: the flow into the domain through each region's faces.
 
-    Returns (acc, src): ``acc[b, r]`` sums, over interior cells of block b and
-    their faces with region r, G (value - u_P) for a fixed r, flux h for a
-    flux r and U h (ambient - u_P) for a convection r; ``src[b]`` sums s h^2.
-    Not multiplied by the depth. ``u`` is the padded field. Blocks depend on
-    ``nblk`` only, so the caller's sum is the same for any thread count.
+    ``acc[b, r]`` sums, over the interior cells of row block b and their faces
+    with region r, G (value - u_P) for a fixed r, flux h for a flux r and
+    U h (ambient - u_P) for a convection r (not multiplied by the depth).
+    Only cells of classes with ``boundary[class] != 0`` (a fixed, flux or
+    convection neighbour) are visited, found through the row segments: bulk
+    runs never have such faces. ``u`` and ``cls`` are padded, ``codes`` is not.
+    Blocks depend on ``nblk`` only, so the caller's sum does not depend on
+    the thread count.
     """
     rows, cols = codes.shape
     nreg = kind.shape[0]
     acc = np.zeros((nblk, nreg))
-    src = np.zeros(nblk)
     for b in prange(nblk):
-        for i in range(b * rows // nblk, (b + 1) * rows // nblk):
-            for j in range(cols):
-                rp = codes[i, j]
-                if kind[rp] != INTERIOR:
+        for pi in range(1 + b * rows // nblk, 1 + (b + 1) * rows // nblk):
+            i = pi - 1
+            for s in range(row_ptr[pi], row_ptr[pi + 1]):
+                if seg_class[s] > 0 and boundary[seg_class[s]] == 0:
                     continue
-                src[b] += source[rp] * h * h
-                kp = conductivity[rp]
-                up = u[i + 1, j + 1]
-                for side in range(4):
-                    a = i + (-1 if side == 0 else (1 if side == 1 else 0))
-                    c = j + (-1 if side == 2 else (1 if side == 3 else 0))
-                    if a < 0 or c < 0 or a >= rows or c >= cols:
+                for pj in range(seg_start[s], seg_end[s]):
+                    if boundary[cls[pi, pj]] == 0:
                         continue
-                    rx = codes[a, c]
-                    kx = kind[rx]
-                    if kx == FIXED:
-                        kn = fixed_conductivity[rx]
-                        if kn <= 0.0:
-                            kn = kp
-                        acc[b, rx] += 2.0 * kp * kn / (kp + kn) * (value[rx] - up)
-                    elif kx == FLUX:
-                        acc[b, rx] += flux[rx] * h
-                    elif kx == CONVECTION:
-                        uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
-                        acc[b, rx] += uh * (ambient[rx] - up)
-    return acc, src
+                    j = pj - 1
+                    kp = conductivity[codes[i, j]]
+                    up = u[pi, pj]
+                    for side in range(4):
+                        a = i + (-1 if side == 0 else (1 if side == 1 else 0))
+                        c = j + (-1 if side == 2 else (1 if side == 3 else 0))
+                        if a < 0 or c < 0 or a >= rows or c >= cols:
+                            continue
+                        rx = codes[a, c]
+                        kx = kind[rx]
+                        if kx == FIXED:
+                            kn = fixed_conductivity[rx]
+                            if kn <= 0.0:
+                                kn = kp
+                            acc[b, rx] += 2.0 * kp * kn / (kp + kn) * (value[rx] - up)
+                        elif kx == FLUX:
+                            acc[b, rx] += flux[rx] * h
+                        elif kx == CONVECTION:
+                            uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                            acc[b, rx] += uh * (ambient[rx] - up)
+    return acc
 
 
 @kernel(parallel=True)

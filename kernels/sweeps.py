@@ -33,7 +33,7 @@ same loop as the update.
 Coarse grids whose weights vary per cell (multigrid) use the same kernels:
 give every cell its own class (``cls`` uint32 = 1 + cell number, ``table`` one
 row per cell, the right-hand side in column 4) and build segments with
-``assemble.count_segments``/``fill_segments``: they then come out mixed.
+``assemble.segments``: they then come out mixed.
 """
 
 import numpy as np

@@ -142,8 +142,7 @@ class Operator:
                 raise CaseError(f"{where}: unknown kind {r.kind!r}")
 
     def _check_anchored(self, assemble) -> None:
-        runs = assemble.interior_runs(self.codes, self.interior, self.kind)
-        size, row, col = assemble.unanchored_group(*runs)
+        size, row, col = assemble.unanchored_group(self.codes, self.interior, self.kind)
         if size:
             raise CaseError(
                 f"a group of {int(size)} interior cell{'s' if size != 1 else ''} (one at row {int(row)}, column {int(col)}) "
@@ -155,15 +154,8 @@ class Operator:
         nreg = len(self.kind)
         border = nreg
         base = nreg + 1
-        counts = assemble.count_edge_cells(self.codes, self.interior)
-        offsets = np.zeros(rows + 1, dtype=np.int64)
-        np.cumsum(counts, out=offsets[1:])
-        keys = np.empty(int(offsets[-1]), dtype=np.int64)
-        assemble.collect_edge_keys(self.codes, self.interior, border, offsets, keys)
-        edge_keys, edge_counts = np.unique(keys, return_counts=True)
-        del keys
+        edge_keys, edge_counts, region_cells = assemble.edge_keys(self.codes, self.interior, border)
         # interior cells per region, minus the edge cells of that region, are its bulk cells
-        region_cells = assemble.region_cells(self.codes, nreg)
         edge_of_region = np.bincount(edge_keys // base**4, weights=edge_counts, minlength=nreg).astype(np.int64)
         bulk_cells = np.where(self.interior != 0, region_cells - edge_of_region, 0)
         bulk_regions = np.flatnonzero(bulk_cells > 0)
@@ -183,20 +175,21 @@ class Operator:
         self.class_cells[1:edge_base] = bulk_cells[bulk_regions]
         self.class_cells[edge_base:] = edge_counts
         self.unknowns = int(self.class_cells.sum())
+        self.region_cells = region_cells
         self.table = np.zeros((classes, 5))
         self.diag = np.zeros(classes)
         assemble.class_table(self.class_keys, border, self.kind, self.conductivity, self.fixed_conductivity, self.value,
                              self.flux, self.coefficient, self.ambient, self.source, self.cell_size, self.table, self.diag)
         if classes > 1 and not np.all(self.diag[1:] > 0):  # pragma: no cover - the anchoring check catches these first
             raise CaseError("an interior cell has neither a domain neighbour nor a convection face")
-        seg_counts = assemble.count_segments(self.cls, MIN_RUN)
-        self.row_ptr = np.zeros(rows + 3, dtype=np.int64)
-        np.cumsum(seg_counts, out=self.row_ptr[1:])
-        nseg = int(self.row_ptr[-1])
-        self.seg_start = np.empty(nseg, dtype=np.int32)
-        self.seg_end = np.empty(nseg, dtype=np.int32)
-        self.seg_class = np.empty(nseg, dtype=np.int64)
-        assemble.fill_segments(self.cls, MIN_RUN, self.row_ptr, self.seg_start, self.seg_end, self.seg_class)
+        self.row_ptr, self.seg_start, self.seg_end, self.seg_class = assemble.segments(self.cls, MIN_RUN)
+        # classes with a fixed, flux or convection neighbour: the only cells the flows kernel visits
+        self._boundary = np.zeros(classes, dtype=np.uint8)
+        kinds_of = np.append(self.kind, np.int8(-1))  # the border index maps to "nothing"
+        keys = self.class_keys[1:]
+        for _ in range(4):
+            self._boundary[1:] |= np.isin(kinds_of[keys % base], (FIXED, FLUX, CONVECTION))
+            keys = keys // base
         self.cells_streamed = int((self.seg_end.astype(np.int64) - self.seg_start).sum())
         self._segments = (self.row_ptr, self.seg_start, self.seg_end, self.seg_class)
 
@@ -365,10 +358,12 @@ class Operator:
         from relaxtui.kernels import measure
 
         nblk = max(1, min(FLOW_BLOCKS, self.shape[0]))
-        acc, src = measure.flows(self.codes, u, self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux,
-                                 self.coefficient, self.ambient, self.source, self.cell_size, nblk)
+        acc = measure.flows(self.codes, u, self.cls, *self._segments, self._boundary, self.kind, self.conductivity,
+                            self.fixed_conductivity, self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
         per_region = acc.sum(axis=0) * self.depth
-        source_total = float(src.sum() * self.depth)
+        h2 = self.cell_size * self.cell_size
+        source_total = float(sum(self.depth * float(self.source[r]) * h2 * int(self.region_cells[r])
+                                 for r in np.flatnonzero((self.interior != 0) & (self.source != 0.0))))
         flows = {}
         for i, r in enumerate(self.case.regions):
             if r.kind in ("fixed", "flux", "convection"):
