@@ -70,17 +70,38 @@ def residual(u, cls, table, row_ptr, seg_start, seg_end, seg_class, out, write, 
     return from_bits(blk.max())
 
 
+@kernel(inline=True)
+def _apply_bulk(up, mid, dn, out, wn, ws, ww, we):
+    for k in range(out.shape[0]):
+        out[k] = ((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]
+
+
+@kernel(inline=True)
+def _apply_mixed(up, mid, dn, out, crow, table):
+    for k in range(out.shape[0]):
+        c = crow[k]
+        out[k] = ((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]
+
+
 @kernel(parallel=True)
 def jacobi_apply(x, out, cls, table, row_ptr, seg_start, seg_end, seg_class, nblk):
-    """out = J x on the unknowns (J: the weights, no right-hand side); out is zero elsewhere on entry."""
+    """out = J x on the unknowns (J: the weights, no right-hand side); out must be zero elsewhere on entry."""
     n = x.shape[0] - 2
     for b in prange(nblk):
         for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            up = x[i - 1]
+            mid = x[i]
+            dn = x[i + 1]
+            orow = out[i]
+            crow = cls[i]
             for s in range(row_ptr[i], row_ptr[i + 1]):
+                j0 = seg_start[s]
+                j1 = seg_end[s]
                 c = seg_class[s]
-                for j in range(seg_start[s], seg_end[s]):
-                    cc = c if c > 0 else cls[i, j]
-                    out[i, j] = ((table[cc, 0] * x[i - 1, j] + table[cc, 1] * x[i + 1, j]) + table[cc, 2] * x[i, j - 1]) + table[cc, 3] * x[i, j + 1]
+                if c > 0:
+                    _apply_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], orow[j0:j1], table[c, 0], table[c, 1], table[c, 2], table[c, 3])
+                else:
+                    _apply_mixed(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], orow[j0:j1], crow[j0:j1], table)
 
 
 @kernel(parallel=True)

@@ -300,17 +300,17 @@ class Operator:
         for name, arr in (("updates", updates), ("residuals", residuals)):
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or arr.ndim != 1 or arr.shape[0] < sweeps or not arr.flags.writeable:
                 raise UsageError(f"{name} must be a writable 1-D float64 array of length >= {sweeps}")
-        if sweeps == 0:
-            return 0
+        # sweeps == 0 still calls the kernel: a cheap way to load (or compile) it before a timed run
         from relaxtui.kernels import sweeps as k
 
         parallel, nblk = self._blocks()
         if method == "jacobi":
-            if self._scratch is None:
+            if self._scratch is None and sweeps > 0:
                 self._scratch = np.zeros(self.padded_shape)
+            tmp = self._scratch if self._scratch is not None else u  # unused when sweeps == 0
             if parallel:
-                return int(k.jacobi(u, self._scratch, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
-            return int(k.jacobi_serial(u, self._scratch, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
+                return int(k.jacobi(u, tmp, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
+            return int(k.jacobi_serial(u, tmp, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
         if method == "red-black-sor":
             if parallel:
                 return int(k.sor_red_black(u, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
