@@ -249,15 +249,15 @@ class Run:
     def _choose_omega(self, request) -> None:
         """Set ω (a number or "auto") and restart the stopping rule's measurement.
 
-        For the SOR methods the Jacobi radius is estimated even when ω is
-        given: Young's relations then give the rule a floor for the factor and,
-        above the optimal ω, the smooth modes' |λ - 1| (see stopping.estimates).
+        The Jacobi radius is estimated for every method, also when ω is given:
+        Young's relations then give the rule the method's asymptotic factor
+        and, above the optimal ω, the smooth modes' |λ - 1| (see
+        stopping.estimates).
         """
         from relaxtui.omega import sor_smooth_gap
 
         m = self.method_info
-        if m.needs_radius:
-            self._radius()
+        self._radius()  # Young's factor for the method is the rule's best guide
         if request == "auto":
             if m.needs_radius:
                 self.omega = m.auto(self.mu)
@@ -273,6 +273,8 @@ class Run:
         if self.mu is not None:
             prior = m.factor(self.mu, self.omega)
             gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
+            if prior >= 1.0:
+                prior = gap = None  # no convergence predicted (e.g. over-weighted Jacobi): measure only
         self.rule.restart(prior_factor=prior, prior_gap=gap)
         self.omega_changes.append((self.rule.sweeps, self.omega, self.omega_note))
 
