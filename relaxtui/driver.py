@@ -257,20 +257,22 @@ class Run:
         from relaxtui.omega import sor_smooth_gap
 
         m = self.method_info
-        self._radius()  # Young's factor for the method is the rule's best guide
+        if m.uses_radius:
+            self._radius()  # Young's factor for the method is the rule's best guide
         if request == "auto":
             if m.needs_radius:
                 self.omega = m.auto(self.mu)
                 if not self.omega_note.startswith("auto: Jacobi radius raised"):
                     self.omega_note = f"auto: {self._radius_note}, omega = 2/(1+sqrt(1-radius^2))"
             else:
-                self.omega = 1.0
-                self.omega_note = "auto: 1 (the best weight for this method on a red-black-coupled grid)"
+                self.omega = m.auto(self.mu)
+                self.omega_note = ("auto: 1 (the best weight for this method on a red-black-coupled grid)"
+                                   if m.uses_radius else f"auto: {self.omega:g} (the method's default)")
         else:
             self.omega = float(request)
             self.omega_note = "given"
         prior = gap = None
-        if self.mu is not None:
+        if self.mu is not None and m.uses_radius:
             prior = m.factor(self.mu, self.omega)
             gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
             if prior >= 1.0:
@@ -305,6 +307,11 @@ class Run:
 
     def view(self) -> np.ndarray:
         return self.operator.view(self.field)
+
+    @property
+    def stepper_info(self) -> dict | None:
+        """What the method's stepper reports about itself (e.g. multigrid levels), or None."""
+        return getattr(self._stepper, "info", None) if self._prepared else None
 
     # -- stepping --------------------------------------------------------------
     def step(self, max_seconds: float = 0.25) -> Progress:

@@ -22,8 +22,9 @@ class Method:
     omega_meaning: str  # what ω is for this method ("" when it has none)
     needs_radius: bool  # whether "auto" needs an estimate of the Jacobi radius
     auto: Callable[[float], float]  # Jacobi radius -> the automatic ω
-    factor: Callable[[float, float], float]  # (Jacobi radius, ω) -> theoretical factor
+    factor: Callable[[float, float], float] | None  # (Jacobi radius, ω) -> theoretical factor
     parallel: bool
+    make: Callable | None = None  # operator -> stepper; None: the operator's own relaxation sweep
 
     def check_omega(self, omega: float) -> float:
         omega = float(omega)
@@ -33,13 +34,27 @@ class Method:
             raise UsageError(f"{self.name} has no relaxation factor (omega must be 1); use sor or red-black-sor for omega {omega:g}")
         return omega
 
+    @property
+    def uses_radius(self) -> bool:
+        """Whether the Jacobi radius informs this method (auto ω or the stopping rule's prior)."""
+        return self.factor is not None
+
     def make_stepper(self, operator):
-        """An object with ``sweep(u, omega, sweeps, updates, residuals) -> int``."""
+        """An object with ``sweep(u, omega, sweeps, updates, residuals) -> int``.
+
+        One "sweep" of a stepper is one iteration of the method (a relaxation
+        sweep, or a multigrid cycle). A stepper may carry ``info`` (a dict
+        shown by the UI and put in the report, e.g. a level hierarchy).
+        """
+        if self.make is not None:
+            return self.make(operator)
         return _RelaxationStepper(operator, self.name)
 
 
 class _RelaxationStepper:
     """Advances a field with one of the operator's relaxation sweeps."""
+
+    info = None
 
     def __init__(self, operator, name: str):
         self.operator = operator

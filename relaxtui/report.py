@@ -90,5 +90,7 @@ def build_report(run, field: np.ndarray) -> dict:
         report["flux_max"] = {k: (_f(v) if k in ("value", "x", "y") else v) for k, v in peak_flux(field, case).items()}
     except ImportError:  # exports not installed in this build
         pass
+    if run.stepper_info:
+        report["method_info"] = run.stepper_info
     report["caution"] = CAUTION
     return report
