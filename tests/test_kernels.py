@@ -193,7 +193,11 @@ for name, case in CASES.items():
         upd, res = np.zeros(3), np.zeros(3)
         op.sweep(u, method, omega, 3, upd, res)
         f = op.finish(u)
-        out[f"{name}/{method}"] = [np.nan_to_num(f, nan=-999.0).ravel().tolist(), upd.tolist(), res.tolist(), op.residual(u), op.flows(u)[0]]
+        x = op.new_field()
+        op.jacobi_apply(u, x)
+        extra = np.concatenate([np.nan_to_num(op.residual_field(u), nan=-999.0).ravel(), x.ravel()])
+        out[f"{name}/{method}"] = [np.nan_to_num(f, nan=-999.0).ravel().tolist() + extra.tolist(), upd.tolist(), res.tolist(),
+                                   op.residual(u), op.flows(u)[0]]
 print(json.dumps(out))
 """
 
