@@ -158,10 +158,10 @@ def _handler(command: str):
 
 
 def main(argv: list[str] | None = None) -> int:
-    # numba's threads do the parallel work; a threaded BLAS beside them only
-    # spins against them on a small machine (set before numpy is imported).
-    for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ.setdefault(var, "1")
+    # numba's threads do the parallel work; OpenBLAS's own threads beside them
+    # only spin against them on a small machine (set before numpy is imported).
+    # OMP_NUM_THREADS stays alone: numba's OpenMP threading layer obeys it.
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] not in SUBCOMMANDS and not argv[0].startswith("-") and argv[0].endswith(".toml"):
         argv.insert(0, "open")

@@ -84,12 +84,9 @@ def build_report(run, field: np.ndarray) -> dict:
         "imbalance": _f(imbalance),
     }
     report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in extremes(case, field).items()})
-    try:
-        from relaxtui.export import peak_flux
+    from relaxtui.export import peak_flux
 
-        report["flux_max"] = {k: (_f(v) if k in ("value", "x", "y") else v) for k, v in peak_flux(field, case).items()}
-    except ImportError:  # exports not installed in this build
-        pass
+    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION

@@ -108,33 +108,34 @@ def _summary(result, written) -> None:
     from rich.table import Table
 
     r = result.report
-    con = Console()
+    con = Console(highlight=False)
     style = "green" if r["status"] == "converged" else "yellow"
+    unit = f" {r['unit']}" if r["unit"] else ""
     con.print(f"[bold {style}]{r['status']}[/]: {r['message']}")
-    unit = r["unit"] or ""
-    con.print(f"{r['method']} omega {r['omega']:.4f} ({r['omega_note']}); {r['sweeps']} sweeps in {r['seconds']:.2f} s "
-              f"(+{r['prepare_seconds']:.2f} s set-up); largest residual {_g(r['residual'])} {unit}; "
-              f"factor {_g(r['convergence_factor'])}")
+    con.print(f"  {r['method']}, omega {r['omega']:.4f} ({r['omega_note']})")
+    con.print(f"  {r['sweeps']} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
+              f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:
-        a, b = r["min_at"], r["max_at"]
-        con.print(f"min {r['min']:.6g} {unit} at row {a['row']}, col {a['col']} (x {a['x']:.4g} m, y {a['y']:.4g} m); "
-                  f"max {r['max']:.6g} {unit} at row {b['row']}, col {b['col']} (x {b['x']:.4g} m, y {b['y']:.4g} m)")
+        for key in ("min", "max"):
+            at = r[f"{key}_at"]
+            con.print(f"  {key} {r[key]:.6g}{unit} at row {at['row']}, col {at['col']} "
+                      f"(x {at['x']:.4g} m, y {at['y']:.4g} m)")
     if r["flows"]:
-        t = Table(title="flows into the domain (per the case's depth)", title_justify="left")
-        t.add_column("region")
+        t = Table(title="flows into the domain", title_justify="left", box=None, pad_edge=False)
+        t.add_column("  region")
         t.add_column("flow", justify="right")
         for name, v in r["flows"].items():
-            t.add_row(name, _g(v))
-        t.add_row("sources", _g(r["source_total"]))
-        t.add_row("imbalance", _g(r["imbalance"]))
+            t.add_row(f"  {name}", _g(v, 6))
+        t.add_row("  sources", _g(r["source_total"], 6))
+        t.add_row("  imbalance", _g(r["imbalance"], 3))
         con.print(t)
     for p in written:
         con.print(f"wrote {p}")
     con.print(f"[dim]{r['caution']}[/]")
 
 
-def _g(x) -> str:
-    return "n/a" if x is None else f"{x:.4g}"
+def _g(x, digits: int = 4) -> str:
+    return "n/a" if x is None else f"{x:.{digits}g}"
 
 
 class _Display:
