@@ -303,19 +303,28 @@ def _mark_best(rows, rank_by):
 
 
 def _print_table(rows, best, rank_by, case, tolerance) -> None:
+    from rich import box
     from rich.console import Console
     from rich.table import Table
 
     unit = f" {case.unit}" if case.unit else ""
-    t = Table(title=f"{case.name}: tolerance {tolerance:g}{unit}; best by {rank_by} marked *", title_justify="left")
-    for col, just in (("", "left"), ("method", "left"), ("omega", "right"), ("sweeps", "right"), ("seconds", "right"),
-                      ("Mcell/s", "right"), ("status", "left"), ("factor", "right")):
-        t.add_column(col, justify=just)
+    methods = {r["method"] for r in rows}
+    one = len(methods) == 1
+    title = f"{case.name}: tolerance {tolerance:g}{unit}" + (f", {rows[0]['method']}" if one and rows else "")
+    t = Table(title=f"{title}; * best by {rank_by}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
+              padding=(0, 1), collapse_padding=True, show_edge=False)
+    cols = [("", "left")] + ([] if one else [("method", "left")]) + [
+        ("omega", "right"), ("sweeps", "right"), ("seconds", "right"), ("Mcell/s", "right"), ("status", "left"), ("factor", "right")]
+    for col, just in cols:  # about 75 columns wide with every field: fits an 80-column terminal
+        t.add_column(col, justify=just, no_wrap=True)
     for i, r in enumerate(rows):
-        mark = "*" if i == best else ""
         omega = f"auto {r['omega']:.4f}" if r["omega_setting"] == "auto" else f"{r['omega']:.4f}"
-        t.add_row(mark, r["method"], omega, str(r["sweeps"]), f"{r['seconds']:.3f}", f"{r['mcells_per_s']:.0f}",
-                  r["status"], "n/a" if r["factor"] is None else f"{r['factor']:.6f}")
+        if r["method"] == "gauss-seidel":
+            omega = "-"
+        cells = ["*" if i == best else ""] + ([] if one else [r["method"]]) + [
+            omega, str(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
+            "n/a" if r["factor"] is None else f"{r['factor']:.5f}"]
+        t.add_row(*cells)
     Console().print(t)
 
 
