@@ -1,9 +1,13 @@
 """Vector kernels of the Lanczos estimate of the Jacobi spectral radius.
 
-numpy's ``dot``/``norm`` go through a threaded BLAS, which on a small, busy
-machine can spin against numba's own threads (measured here: 16x slower per
-call on a loaded 2-core box); these fused loops avoid BLAS and temporaries.
-Arrays are 2-D in the operator's working layout, 0 outside the unknowns.
+The Jacobi matrix J = D^-1 (D - A) is self-adjoint in the inner product
+<x, y>_D = sum D x y, so Lanczos runs on J itself with that inner product;
+the diagonal comes from the operator's class table (``diag[cls]``), so the
+estimate holds three vectors and no per-cell diagonal. numpy's ``dot``/``norm``
+would go through a threaded BLAS, which on a small, busy machine spins
+against numba's own threads (measured here: 16x slower per call on a loaded
+2-core box); these fused loops avoid BLAS and temporaries. Arrays are 2-D in
+the operator's working layout.
 """
 
 import math
@@ -14,34 +18,40 @@ from relaxtui.kernels._jit import kernel
 
 
 @kernel(parallel=True)
-def unscale(v, inv_sqrt_d, out):
-    """out = v * inv_sqrt_d (D^{-1/2} v)."""
-    for i in prange(v.shape[0]):
-        for j in range(v.shape[1]):
-            out[i, j] = v[i, j] * inv_sqrt_d[i, j]
+def start_vector(cls, diag, out):
+    """out = 1 on the unknowns (class > 0), 0 elsewhere; returns its D-norm sqrt(sum D)."""
+    s = 0.0
+    for i in prange(cls.shape[0]):
+        for j in range(cls.shape[1]):
+            c = cls[i, j]
+            out[i, j] = 1.0 if c != 0 else 0.0
+            s += diag[c] if c != 0 else 0.0
+    return math.sqrt(s)
 
 
 @kernel(parallel=True)
-def rayleigh(w, sqrt_d, v):
-    """w *= sqrt_d (D^{1/2} J D^{-1/2} v), then return alpha = <w, v>."""
-    alpha = 0.0
+def d_dot(w, v, cls, diag):
+    """<w, v>_D = sum over unknowns of D w v (D per class: diag[cls])."""
+    s = 0.0
     for i in prange(w.shape[0]):
         for j in range(w.shape[1]):
-            x = w[i, j] * sqrt_d[i, j]
-            w[i, j] = x
-            alpha += x * v[i, j]
-    return alpha
+            c = cls[i, j]
+            if c != 0:
+                s += diag[c] * w[i, j] * v[i, j]
+    return s
 
 
 @kernel(parallel=True)
-def orthogonalise(w, v, alpha, v_prev, beta):
-    """w -= alpha v + beta v_prev; return ||w||."""
+def d_orthogonalise(w, v, alpha, v_prev, beta, cls, diag):
+    """w -= alpha v + beta v_prev; return the D-norm of the result."""
     s = 0.0
     for i in prange(w.shape[0]):
         for j in range(w.shape[1]):
             x = w[i, j] - alpha * v[i, j] - beta * v_prev[i, j]
             w[i, j] = x
-            s += x * x
+            c = cls[i, j]
+            if c != 0:
+                s += diag[c] * x * x
     return math.sqrt(s)
 
 

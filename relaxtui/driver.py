@@ -30,7 +30,7 @@ from relaxtui.methods import get_method
 CHUNK_SECONDS = 0.03  # target duration of one chunk of sweeps
 MAX_CHUNK = 1000  # most sweeps in one chunk
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
-MAX_OMEGA_CORRECTIONS = 3  # re-estimates of auto omega from the observed factor per run
+MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
 
 
 @dataclass(frozen=True)
@@ -180,6 +180,7 @@ class Run:
         self.omega_changes: list[tuple[int, float, str]] = []
         self.mu: float | None = None  # estimated Jacobi radius (SOR methods)
         self._radius_note = ""
+        self._radius_settled = False  # only a settled estimate guides the stopping rule
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
@@ -239,11 +240,14 @@ class Run:
             if cached is None:
                 from relaxtui.omega import jacobi_radius
 
+                op = self.operator
                 t0 = time.perf_counter()
-                est = jacobi_radius(self.operator.jacobi_apply, self.operator.sqrt_diag())
-                cached = (est.mu, f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s)")
-                self.operator._relaxtui_radius = cached
-            self.mu, self._radius_note = cached
+                est = jacobi_radius(op.jacobi_apply, op.cls, op.diag)
+                how = "settled" if est.settled else "not settled, corrected from the observed factor"
+                cached = (est.mu, est.settled,
+                          f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s, {how})")
+                op._relaxtui_radius = cached
+            self.mu, self._radius_settled, self._radius_note = cached
         return self.mu
 
     def _choose_omega(self, request) -> None:
@@ -272,7 +276,7 @@ class Run:
             self.omega = float(request)
             self.omega_note = "given"
         prior = gap = None
-        if self.mu is not None and m.uses_radius:
+        if self.mu is not None and m.uses_radius and self._radius_settled:
             prior = m.factor(self.mu, self.omega)
             gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
             if prior >= 1.0:
@@ -390,7 +394,7 @@ class Run:
         self._corrections += 1
         old = self.mu
         self.mu = mu_new
-        self.operator._relaxtui_radius = (mu_new, f"Jacobi radius {mu_new:.6f} (raised from the observed SOR factor)")
+        self.operator._relaxtui_radius = (mu_new, False, f"Jacobi radius {mu_new:.6f} (raised from the observed SOR factor)")
         self.omega_note = (f"auto: Jacobi radius raised {old:.6f} -> {mu_new:.6f} from the observed SOR factor "
                            f"{meas:.6f} (Young's relation), omega = 2/(1+sqrt(1-radius^2))")
         self._choose_omega("auto")
