@@ -18,7 +18,7 @@ from rich.console import Console
 from relaxtui import colormap
 from relaxtui.model import FIXED, INTERIOR, OUTSIDE
 from relaxtui.tui.heatmap import EDGE_RGB, FIXED_RGB, MONO_FIXED, render_heatmap
-from relaxtui.tui.sampling import CellLayout, SamplingPlan, Viewport, centred, clamp_viewport, fit_zoom
+from relaxtui.tui.sampling import BLOCKS, CellLayout, SamplingPlan, Viewport, centred, clamp_viewport, fit_zoom
 
 
 def lines_of(renderable, width=80, color=True):
@@ -196,7 +196,7 @@ def test_zoomed_out_snapshot_is_the_exact_block_mean_of_domain_cells_for_small_b
     rng = np.random.default_rng(3)
     field = rng.uniform(size=kinds.shape)
     field[kinds == OUTSIDE] = 1e9  # must never leak into a mean
-    vp = Viewport(0, 0, 2, 16, 24)  # blocks of 4 x 4
+    vp = Viewport(0, 0, BLOCKS.index(4), 16, 24)  # blocks of 4 x 4
     values = SamplingPlan(layout, vp).sample(field)
     dom = (kinds == INTERIOR) | (kinds == FIXED)
     sums = np.where(dom, field, 0.0).reshape(16, 4, 24, 4).sum(axis=(1, 3))
@@ -213,7 +213,7 @@ def test_large_blocks_are_sampled_within_the_budget_and_thin_channels_survive():
     layout = CellLayout(kinds)
     field = np.full((rows, cols), np.nan)
     field[:, 101] = np.arange(rows, dtype=float)
-    vp = Viewport(0, 0, 5, 16, 16)  # blocks of 32 x 32
+    vp = Viewport(0, 0, BLOCKS.index(32), 16, 16)  # blocks of 32 x 32
     plan = SamplingPlan(layout, vp, budget=16 * 16 * 4)  # 2 x 2 samples per block
     assert plan.s == 2
     values = plan.sample(field)
@@ -249,28 +249,38 @@ def test_zoomed_in_pixels_repeat_their_cell_and_the_probe_uses_the_contract_posi
 def test_viewport_keeps_the_cursor_in_view_and_the_view_inside_the_grid():
     shape = (300, 500)
     fit = fit_zoom(shape, 40, 60)
-    assert fit == 4  # 300/16 = 19 <= 40 and 500/16 = 32 <= 60, 500/8 = 63 > 60
+    assert BLOCKS[fit] == 12  # 300/12 = 25 <= 40 and 500/12 = 42 <= 60; 500/8 = 63 > 60
     assert fit_zoom((30, 30), 40, 60) == 0 and fit_zoom((10, 10), 40, 60) == -3  # 4 px per cell
     vp = clamp_viewport(Viewport(0, 0, 0, 40, 60, (250, 480)), shape)
     assert vp.row0 <= 250 < vp.row0 + 40 and vp.col0 <= 480 < vp.col0 + 60
     assert vp.row0 + 40 <= 300 and vp.col0 + 60 <= 500
-    vp = clamp_viewport(Viewport(0, 0, 2, 40, 60, (299, 499)), shape)
-    assert vp.row0 % 4 == 0 and vp.col0 % 4 == 0
-    assert vp.row0 <= 299 < vp.row0 + 160 and vp.col0 <= 499 < vp.col0 + 240
+    vp = clamp_viewport(Viewport(0, 0, BLOCKS.index(6), 40, 60, (299, 499)), shape)
+    assert vp.block == 6 and vp.row0 % 6 == 0 and vp.col0 % 6 == 0
+    assert vp.row0 <= 299 < vp.row0 + 240 and vp.col0 <= 499 < vp.col0 + 360
     c = centred(Viewport(0, 0, 0, 40, 60, (150, 250)), shape)
     assert (c.row0, c.col0) == (130, 220)
     assert clamp_viewport(Viewport(0, 0, 0, 40, 60, (-5, 900)), shape).cursor == (0, 499)
 
 
-def test_layout_pyramid_marks_any_domain_and_any_fixed_cell():
-    kinds = np.full((5, 7), OUTSIDE)
-    kinds[4, 6] = FIXED
-    kinds[1, 1] = INTERIOR
+def test_layout_pyramids_mark_any_domain_and_any_fixed_cell_for_every_block_size():
+    rng = np.random.default_rng(4)
+    kinds = np.where(rng.uniform(size=(37, 53)) < 0.05, INTERIOR, OUTSIDE)
+    kinds[rng.uniform(size=kinds.shape) < 0.02] = FIXED
     layout = CellLayout(kinds)
-    assert layout.domain[1].shape == (3, 4)
-    assert layout.domain[1][0, 0] and layout.domain[1][2, 3] and layout.fixed[1][2, 3]
-    assert layout.domain[1].sum() == 2
-    top = layout.domain[-1]
-    assert top.shape == (1, 1) and top[0, 0]
-    assert layout.rep[1][0, 0] == 1 * 7 + 1
+    dom = (kinds == INTERIOR) | (kinds == FIXED)
+    assert {1, 2, 3, 4, 6, 8, 12, 16, 24, 32, 48, 64} <= set(layout.blocks)
+    for b in layout.blocks:
+        if b == 1:
+            continue
+        h, w = -(-37 // b), -(-53 // b)
+        pad = lambda a: np.pad(a, ((0, h * b - 37), (0, w * b - 53)))  # noqa: E731
+        # plain block-wise any(), computed here without the pooling chains
+        np.testing.assert_array_equal(layout.domain[b], pad(dom).reshape(h, b, w, b).any(axis=(1, 3)))
+        np.testing.assert_array_equal(layout.fixed[b], pad(kinds == FIXED).reshape(h, b, w, b).any(axis=(1, 3)))
+        rep = layout.rep[b]
+        assert ((rep >= 0) == layout.domain[b]).all()
+        rr, cc = np.divmod(rep[rep >= 0], 53)
+        assert dom[rr, cc].all()  # the representative is a domain cell ...
+        bi, bj = np.nonzero(rep >= 0)
+        assert ((rr // b == bi) & (cc // b == bj)).all()  # ... of its own block
     assert not math.isnan(layout.position(0, 0)[0])

@@ -158,7 +158,10 @@ def test_run_converge_change_omega_run_again_and_export(tmp_path):
             table.move_cursor(row=0)
             await pilot.press("enter")
             await pilot.pause(0.1)
-            assert app.selected == 1 and plot.current.run_id == 1
+            assert app.selected == 1
+            await pilot.press("2")  # at 80 columns the plot is drawn when its panel is shown
+            await pilot.pause(0.3)
+            assert plot.current.run_id == 1 and [s.run_id for s in plot.others] == [2]
             assert app.query_one(FieldView).frame.label.startswith("run 1")
 
             # export run 1 to files in tmp_path
@@ -183,9 +186,9 @@ def test_run_converge_change_omega_run_again_and_export(tmp_path):
 
 
 def test_pause_resume_single_step_and_stop(tmp_path):
-    # Jacobi on a 150 x 150 plate to 1e-6 takes about 80 000 sweeps (factor cos(pi/149) per
-    # sweep, common practice): seconds of work, long enough to steer.
-    case = make_plate(tmp_path, n=150, method="jacobi", tolerance=1e-6)
+    # Jacobi on a 300 x 300 plate to 1e-8 would take about 400 000 sweeps (factor cos(pi/299)
+    # per sweep, common practice): far more than the test lets it run before stopping it.
+    case = make_plate(tmp_path, n=300, method="jacobi", tolerance=1e-8)
 
     async def scenario():
         app = RelaxApp(case)

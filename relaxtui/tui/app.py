@@ -15,6 +15,7 @@ and history belong to the UI thread from then on.
 
 from __future__ import annotations
 
+import functools
 import math
 import threading
 import time
@@ -26,6 +27,7 @@ from textual import work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.containers import Container, Horizontal, Vertical
+from textual.css.query import NoMatches
 from textual.message import Message
 from textual.reactive import reactive
 from textual.widgets import Footer, Input, Select, Static
@@ -43,8 +45,9 @@ from relaxtui.tui.status import StatusStrip
 from relaxtui.tui.timing import TimingPanel, group
 
 STEP_SECONDS = 0.2  # one run.step() call of the worker
-FRAME_INTERVAL = 0.3  # seconds between field snapshots while running
-PLOT_INTERVAL = 0.5  # seconds between redraws of the history plot
+FRAME_INTERVAL = 0.5  # seconds between field snapshots while running
+PLOT_INTERVAL = 1.0  # seconds between redraws of the history plot while running
+TABLE_INTERVAL = 1.0  # seconds between updates of the running run's row in the runs table
 PAUSE_POLL = 0.05  # how often a paused worker looks for requests
 FIELD_BUDGET = 1 << 30  # bytes of finished fields kept for the runs table (older ones are released)
 WIDE = (120, 34)  # columns and rows from which every panel is shown at once
@@ -165,6 +168,7 @@ class RunRecord:
         self.run = None  # the finished Run (kept for the latest run only: "continue" reuses its working array)
         self.frame: Frame | None = None
         self.problem: str | None = None
+        self.source: "RunRecord | None" = None  # the run it continues from
         self.rate: float | None = None
         self._series = None
         self._series_key = None
@@ -233,6 +237,24 @@ def _boundary_range(case, initial: np.ndarray) -> tuple[float, float] | None:
     return (float(min(values)), float(max(values)))
 
 
+def _while_open(handler):
+    """Run a handler only while the main screen is up: worker messages and timers that
+    arrive before mounting or during shutdown (widgets already gone) are dropped."""
+
+    @functools.wraps(handler)
+    def wrapper(self, *args, **kwargs):
+        if self._gone():
+            return None
+        try:
+            return handler(self, *args, **kwargs)
+        except NoMatches:
+            if self._closing_down():
+                return None
+            raise
+
+    return wrapper
+
+
 # -- small widgets ----------------------------------------------------------------
 
 
@@ -250,7 +272,7 @@ class Banner(Static):
         left.append(" relaxtui ", style="bold reverse")
         left.append(" " + case_text)
         t.add_row(left, Text(phase_text + " ", style=phase_style))
-        self.update(t)
+        self.update(t, layout=False)
 
 
 # -- the app -------------------------------------------------------------------------
@@ -259,7 +281,7 @@ class Banner(Static):
 class RelaxApp(App):
     """Watch and tune steady-state field solves of one case."""
 
-    CSS_PATH = "relaxtui.tcss"
+    CSS_PATH = Path(__file__).with_name("relaxtui.tcss")
     TITLE = "relaxtui"
     ENABLE_COMMAND_PALETTE = False
 
@@ -345,10 +367,12 @@ class RelaxApp(App):
         self.problem: str | None = None
         self._plans: dict = {}
         self._plot_dirty = True
+        self._table_time = 0.0
         self.load_seconds: float | None = None
         self.last_export: list[Path] = []
         self._mounted = False
         self.main = None  # the main screen, once mounted
+        self._exit_requested = False
 
     # -- building ----------------------------------------------------------------------
     def compose(self) -> ComposeResult:
@@ -394,18 +418,26 @@ class RelaxApp(App):
         self._mounted = True
         self._load()
 
+    @_while_open
     def on_resize(self) -> None:
-        if not self._gone():
-            self._apply_layout()
+        self._apply_layout()
 
     def _gone(self) -> bool:
         """True before mounting and while shutting down (late worker messages are dropped)."""
-        return self.main is None or not self.main.is_attached
+        return self.main is None or not self.main.is_attached or self._closing_down()
+
+    def _closing_down(self) -> bool:
+        return self._exit_requested or not self.is_running
+
+    def exit(self, *args, **kwargs) -> None:
+        self._exit_requested = True
+        super().exit(*args, **kwargs)
 
     def _apply_layout(self) -> None:
         wide = self.size.width >= WIDE[0] and self.size.height >= WIDE[1]
         self.main.set_class(wide, "-wide")
         self.main.set_class(not wide, "-compact")
+        self.main.query_one(TimingPanel).note_lines = 8 if wide else 2
 
     @property
     def wide(self) -> bool:
@@ -429,9 +461,8 @@ class RelaxApp(App):
             return
         self.post_message(self.Loaded(case, operator, layout, initial, time.perf_counter() - t0))
 
+    @_while_open
     def on_relax_app_loaded(self, msg: Loaded) -> None:
-        if self._gone():
-            return
         self.case, self.operator, self.layout, self.initial_field = msg.case, msg.operator, msg.layout, msg.initial
         self.load_seconds = msg.seconds
         case = self.case
@@ -453,22 +484,20 @@ class RelaxApp(App):
         if self.autostart:
             self.action_start()
 
+    @_while_open
     def on_relax_app_load_failed(self, msg: LoadFailed) -> None:
-        if self._gone():
-            return
         self.phase = "load-failed"
         self.problem = msg.text
         self.main.query_one(FieldView).set_placeholder("the case could not be loaded (see below); q quits")
         self._update_status()
 
     # -- the field panel ---------------------------------------------------------------------
+    @_while_open
     def on_field_view_view_changed(self, msg: FieldView.ViewChanged) -> None:
-        if self._gone():
-            return
         rec = self._selected()
         if self.control is not None:
             self.control.set_view(msg.viewport)
-        if rec is not None and rec is self.active:
+        if rec is not None and rec is self.active and rec.frame is not None:
             return  # the worker answers with a frame from the live field
         self._show_owned_frame(msg.viewport)
 
@@ -484,6 +513,12 @@ class RelaxApp(App):
             return self.initial_field, "initial guess"
         if rec.result is not None and rec.result.field is not None:
             return rec.result.field, f"run {rec.id} · {rec.status} · {group(rec.progress.sweeps)} sweeps"
+        if rec.result is None and rec.frame is None:  # preparing: show where it starts from
+            src = rec.source
+            if src is None:
+                return self.initial_field, f"run {rec.id} preparing · from the initial guess"
+            if src.result is not None and src.result.field is not None:
+                return src.result.field, f"run {rec.id} preparing · from run {src.id}"
         return None, ""
 
     def _show_owned_frame(self, vp: Viewport | None = None) -> None:
@@ -536,6 +571,7 @@ class RelaxApp(App):
             return None
         self.problem = None
         rec = RunRecord(len(self.records) + 1, run, start, options["omega"] == "auto")
+        rec.source = start_from
         self.records.append(rec)
         view = self.main.query_one(FieldView)
         control = SolveControl(view.viewport, paused=paused)
@@ -624,9 +660,8 @@ class RelaxApp(App):
     def _record(self, run_id: int) -> RunRecord | None:
         return self.records[run_id - 1] if 0 < run_id <= len(self.records) else None
 
+    @_while_open
     def on_relax_app_run_prepared(self, msg: RunPrepared) -> None:
-        if self._gone():
-            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -636,9 +671,8 @@ class RelaxApp(App):
             self.phase = rec.status
         self._refresh_run(rec)
 
+    @_while_open
     def on_relax_app_run_frame(self, msg: RunFrame) -> None:
-        if self._gone():
-            return
         rec = self._record(msg.run_id)
         if rec is None or msg.frame is None:
             return
@@ -646,9 +680,8 @@ class RelaxApp(App):
         if rec.id == self.selected:
             self.main.query_one(FieldView).show_frame(msg.frame)
 
+    @_while_open
     def on_relax_app_run_progress(self, msg: RunProgress) -> None:
-        if self._gone():
-            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -660,11 +693,10 @@ class RelaxApp(App):
             if rec.id == self.selected:
                 self.main.query_one(FieldView).show_frame(msg.frame)
         self._plot_dirty = True
-        self._refresh_run(rec)
+        self._refresh_run(rec, live=True)
 
+    @_while_open
     def on_relax_app_run_finished(self, msg: RunFinished) -> None:
-        if self._gone():
-            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -684,11 +716,10 @@ class RelaxApp(App):
         if rec.id == self.selected:
             self._show_owned_frame()
         severity = "information" if rec.status == "converged" else "warning"
-        self.notify(f"run #{rec.id} {rec.status} after {group(rec.progress.sweeps)} sweeps", title="finished", severity=severity, timeout=4)
+        self._tell(f"run #{rec.id} {rec.status} after {group(rec.progress.sweeps)} sweeps", title="finished", severity=severity, timeout=4)
 
+    @_while_open
     def on_relax_app_run_failed(self, msg: RunFailed) -> None:
-        if self._gone():
-            return
         rec = self._record(msg.run_id)
         if rec is None:
             return
@@ -700,11 +731,10 @@ class RelaxApp(App):
         self._refuse(msg.text)
         self._refresh_run(rec)
 
+    @_while_open
     def on_relax_app_omega_applied(self, msg: OmegaApplied) -> None:
-        if self._gone():
-            return
         if msg.ok:
-            self.notify(msg.text, title="ω changed", timeout=4)
+            self._tell(msg.text, title="ω changed", timeout=4)
         else:
             self._refuse(msg.text)
 
@@ -739,7 +769,7 @@ class RelaxApp(App):
         if self.active is None:
             rec = self._begin(None, paused=True, one_step=True)
             if rec is not None:
-                self.notify(f"run #{rec.id} paused after one chunk: n steps again, space runs on", timeout=4)
+                self._tell(f"run #{rec.id} paused after one chunk: n steps again, space runs on", timeout=4)
             return
         self._ok()
         if not self.control.paused:
@@ -758,9 +788,8 @@ class RelaxApp(App):
         self.control.stop()
         self.phase = "stopping"
 
+    @_while_open
     def on_params_panel_omega_submitted(self, msg: ParamsPanel.OmegaSubmitted) -> None:
-        if self._gone():
-            return
         try:
             omega = parse_omega(msg.text)
         except RelaxError as exc:
@@ -770,7 +799,7 @@ class RelaxApp(App):
             self.control.request_omega(omega)
         else:
             shown = "auto" if omega == "auto" else f"{omega:g}"
-            self.notify(f"ω {shown} will be used by the next run (s starts it)", timeout=3)
+            self._tell(f"ω {shown} will be used by the next run (s starts it)", timeout=3)
 
     # -- choosing runs -------------------------------------------------------------------------
     def _selected(self) -> RunRecord | None:
@@ -780,25 +809,28 @@ class RelaxApp(App):
         self.selected = run_id
         self.main.query_one(RunsPanel).select(run_id)
         rec = self._selected()
-        if rec is not None and rec is not self.active:
-            self._show_owned_frame()
-        elif rec is not None and rec.frame is not None:
+        if rec is not None and rec is self.active and rec.frame is not None:
             self.main.query_one(FieldView).show_frame(rec.frame)
+        else:
+            self._show_owned_frame()
         self._plot_dirty = True
         self._refresh_plot()
         self._refresh_run(rec)
 
+    @_while_open
     def on_runs_panel_run_chosen(self, msg: RunsPanel.RunChosen) -> None:
-        if self._gone():
-            return
         self._ok()
         self._select(msg.run_id)
-        self.notify(f"showing run #{msg.run_id}", timeout=2)
+        self._tell(f"showing run #{msg.run_id}", timeout=2)
 
     # -- refreshing panels ------------------------------------------------------------------------
-    def _refresh_run(self, rec: RunRecord | None) -> None:
+    def _refresh_run(self, rec: RunRecord | None, live: bool = False) -> None:
+        """Show a run's state; ``live`` progress updates the table at most every TABLE_INTERVAL."""
         if rec is not None:
-            self.main.query_one(RunsPanel).set_row(rec.row())
+            now = time.monotonic()
+            if not live or now - self._table_time >= TABLE_INTERVAL:
+                self._table_time = now
+                self.main.query_one(RunsPanel).set_row(rec.row())
         if rec is None or rec.id == self.selected:
             timing = self.main.query_one(TimingPanel)
             if rec is None:
@@ -809,9 +841,13 @@ class RelaxApp(App):
             self._update_status()
         self._update_banner()
 
+    @_while_open
     def _refresh_plot(self) -> None:
-        if self._gone() or not self._plot_dirty:
+        if not self._plot_dirty:
             return
+        panel = self.main.query_one(HistoryPanel)
+        if not panel.display:
+            return  # hidden (one panel at a time at 80 columns): drawn when shown
         self._plot_dirty = False
         rec = self._selected()
         others = [r.series() for r in self.records if r is not rec and r.status != "failed"]
@@ -862,6 +898,10 @@ class RelaxApp(App):
         report = rec.result.report if rec.result is not None else None
         status.show(head, rec.progress if rec.status != "preparing" else None, report, self.problem or rec.problem)
 
+    def _tell(self, text: str, **kwargs) -> None:
+        """A toast; the text is shown as it is (paths and messages may hold brackets)."""
+        self.notify(text, markup=False, **kwargs)
+
     def _ok(self) -> None:
         """A request went through: forget the last refusal."""
         if self.problem is not None:
@@ -871,7 +911,7 @@ class RelaxApp(App):
     def _refuse(self, text: str) -> None:
         """Bad input or an impossible request: say so, in the UI, and carry on."""
         self.problem = text
-        self.notify(text, title="refused", severity="error", timeout=5)
+        self._tell(text, title="refused", severity="error", timeout=5)
         self._update_status()
 
     # -- panels and focus -------------------------------------------------------------------------
@@ -890,7 +930,7 @@ class RelaxApp(App):
             self.set_focus(None)
         if name == "history":
             self._plot_dirty = True
-            self._refresh_plot()
+            self.call_after_refresh(self._refresh_plot)
 
     def action_focus_panel(self) -> None:
         self.action_panel(self.panel)
@@ -935,16 +975,15 @@ class RelaxApp(App):
             return
         self.post_message(self.Exported(written))
 
+    @_while_open
     def on_relax_app_exported(self, msg: Exported) -> None:
-        if self._gone():
-            return
         if msg.paths is None:
             self._refuse(f"export failed: {msg.text}")
             return
         self._ok()
         names = ", ".join(str(p) for p in msg.paths)
         self.last_export = list(msg.paths)
-        self.notify(f"wrote {names}", title="exported", timeout=8)
+        self._tell(f"wrote {names}", title="exported", timeout=8)
 
     # -- help and quitting ----------------------------------------------------------------------------
     def action_help(self) -> None:

@@ -83,7 +83,7 @@ class ConfirmQuit(ModalScreen[bool]):
     def compose(self) -> ComposeResult:
         with Vertical(id="confirm-box", classes="dialog") as box:
             box.border_title = "Quit?"
-            yield Label(f"{self.what} is in progress.")
+            yield Label(Text(f"{self.what} is in progress."))
             yield Label("Quit and stop it?  [b]y[/b] quit · [b]n[/b] stay")
 
     def action_answer(self, answer: bool) -> None:

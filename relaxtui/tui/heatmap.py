@@ -36,7 +36,7 @@ from relaxtui import colormap
 
 LEGEND_LINES = 2
 FIXED_RGB = (196, 196, 190)  # held cells: light neutral grey
-EDGE_RGB = (84, 84, 88)  # blank pixels beside the domain: dim neutral grey
+EDGE_RGB = (60, 60, 66)  # blank pixels beside the domain: dim neutral grey
 MONO_FIXED = "X"  # held cells without colour (not a ramp character)
 MONO_BAD = "?"  # a non-finite value without colour
 

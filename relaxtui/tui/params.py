@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 
+from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
@@ -105,7 +106,7 @@ class ParamsPanel(Vertical):
     def set_unit(self, unit: str) -> None:
         self.unit = unit
         if unit:
-            self.query_one("#param-tolerance-label", Label).update(f"tol. [{unit}]")
+            self.query_one("#param-tolerance-label", Label).update(Text(f"tol. [{unit}]"))
 
     def read(self) -> dict:
         """The options as solver keywords; raises UsageError naming a bad field."""

@@ -96,8 +96,11 @@ class RunsPanel(Vertical):
         cells = _cells(row, row.run_id == self.selected)
         key = str(row.run_id)
         if row.run_id in self.rows:
-            for name, value in zip(COLUMNS, cells):
-                table.update_cell(key, name, value, update_width=True)
+            old = _cells(self.rows[row.run_id], row.run_id == self.selected)
+            for name, value, before in zip(COLUMNS, cells, old):
+                if str(value) != str(before):
+                    # widen a column only when the text grew (a width change re-lays the table out)
+                    table.update_cell(key, name, value, update_width=len(str(value)) > len(str(before)))
         else:
             table.add_row(*cells, key=key)
         self.rows[row.run_id] = row
@@ -118,13 +121,13 @@ class RunsPanel(Vertical):
         row = self.rows.get(self.selected) if self.selected is not None else None
         detail = self.query_one("#runs-detail", Static)
         if row is None:
-            detail.update(Text("no runs yet — s starts one", style="italic"))
+            detail.update(Text("no runs yet — s starts one", style="italic"), layout=False)
             return
         text = Text()
         text.append(f"#{row.run_id} {row.method}", style="bold")
         text.append(f" from {row.start}; ")
         text.append(row.message or row.status)
-        detail.update(text)
+        detail.update(text, layout=False)
 
     def on_data_table_row_selected(self, event: DataTable.RowSelected) -> None:
         event.stop()

@@ -6,10 +6,10 @@ character cell of the heatmap) and hands that copy to the UI thread. This
 module holds the pure numpy parts of that, importable without Textual:
 
 * :class:`CellLayout` -- which cells are in the domain and which are held
-  (fixed), with a pyramid of "any domain cell" / "any fixed cell" masks for
-  blocks of 2, 4, 8, ... cells, built once when the case is loaded;
+  (fixed), with pyramids of "any domain cell" / "any fixed cell" masks for
+  blocks of 2, 3, 4, 6, 8, 12, ... cells, built once when the case is loaded;
 * :class:`Viewport` -- what the field panel shows: a top-left cell, a zoom
-  (a block of ``2**zoom`` cells per pixel, or ``1 - zoom`` pixels per cell),
+  (a block of ``BLOCKS[zoom]`` cells per pixel, or ``1 - zoom`` pixels per cell),
   the pixel grid size and the probe cursor (a cell);
 * :class:`SamplingPlan` -- for one viewport, the cells to read; built once per
   pan/zoom, reused for every snapshot;
@@ -44,6 +44,49 @@ def _readonly(a: np.ndarray) -> np.ndarray:
     return a
 
 
+def _blocks(limit: int = 1 << 20) -> tuple[int, ...]:
+    out, b = [1], 2
+    while b <= limit:
+        out += [b, b * 3 // 2] if b >= 4 else [b] + ([3] if b == 2 else [])
+        b *= 2
+    return tuple(sorted(set(out)))
+
+
+# Block sizes (cells per pixel side) of the zoomed-out views: 1, 2, 3, 4, 6, 8, 12, 16, ...
+# so the whole grid always fills at least three quarters of the panel's width or height.
+BLOCKS = _blocks()
+
+
+def _pool(d: np.ndarray, f: np.ndarray, r: np.ndarray | None, k: int, cols: int):
+    """Pool k x k blocks: any domain, any fixed, and one domain cell's flat index per block.
+
+    ``r`` is the representative index of each input entry; ``None`` means the
+    input is the cells themselves (the index is then computed, not stored).
+    """
+    h, w = d.shape
+    ph, pw = -(-h // k) * k, -(-w // k) * k
+    if (ph, pw) != (h, w):
+        d = np.pad(d, ((0, ph - h), (0, pw - w)), constant_values=False)
+        f = np.pad(f, ((0, ph - h), (0, pw - w)), constant_values=False)
+        if r is not None:
+            r = np.pad(r, ((0, ph - h), (0, pw - w)), constant_values=-1)
+    H, W = ph // k, pw // k
+    children = d.reshape(H, k, W, k).transpose(0, 2, 1, 3).reshape(H, W, k * k)
+    dom = children.any(axis=2)
+    fix = f.reshape(H, k, W, k).any(axis=(1, 3))
+    # the first child in reading order that holds a domain cell
+    if r is None:
+        first = np.argmax(children, axis=2)
+        rows = np.arange(H)[:, None] * k + first // k
+        cols_ = np.arange(W)[None, :] * k + first % k
+        rep = np.where(dom, rows * cols + cols_, -1)
+    else:
+        reps = r.reshape(H, k, W, k).transpose(0, 2, 1, 3).reshape(H, W, k * k)
+        first = np.argmax(reps >= 0, axis=2)
+        rep = np.take_along_axis(reps, first[..., None], axis=2)[..., 0]
+    return dom, fix, rep
+
+
 class CellLayout:
     """Domain and held cells of a case, with block pyramids for zoomed-out views.
 
@@ -54,11 +97,13 @@ class CellLayout:
     cell_size : float
         Side of a cell in metres (for probe positions).
 
-    Level ``k`` of the pyramid has one entry per block of ``2**k x 2**k``
-    cells: ``domain[k]`` (any domain cell), ``fixed[k]`` (any fixed cell) and
-    ``rep[k]`` (the flat index of one domain cell of the block, -1 if none).
-    Level 0 is the cells themselves. Every array is read-only, so a layout can
-    be shared between the UI thread and the solve worker.
+    For every block size ``b`` of :data:`BLOCKS` up to the grid's size there
+    is one entry per ``b x b`` block of cells (blocks start at row and column
+    0): ``domain[b]`` (any domain cell), ``fixed[b]`` (any fixed cell) and,
+    for ``b > 1``, ``rep[b]`` (the flat index of one domain cell of the
+    block, -1 if none). Two chains build them exactly: 2, 4, 8, ... by 2 x 2
+    pooling of the cells, 3, 6, 12, ... by 3 x 3 pooling first. Every array is
+    read-only, so a layout can be shared by the UI thread and the solve worker.
     """
 
     def __init__(self, kinds: np.ndarray, cell_size: float = 1.0) -> None:
@@ -67,29 +112,25 @@ class CellLayout:
             raise ValueError("kinds must be a non-empty 2-D array")
         self.shape = (int(kinds.shape[0]), int(kinds.shape[1]))
         self.cell_size = float(cell_size)
+        rows, cols = self.shape
         domain = (kinds == INTERIOR) | (kinds == FIXED)
         fixed = kinds == FIXED
-        rows, cols = self.shape
+        self.domain: dict[int, np.ndarray] = {1: _readonly(domain)}
+        self.fixed: dict[int, np.ndarray] = {1: _readonly(fixed)}
+        self.rep: dict[int, np.ndarray] = {}
         index_type = np.int32 if rows * cols < 2**31 else np.int64
-        rep = np.where(domain, np.arange(rows * cols, dtype=index_type).reshape(rows, cols), -1).astype(index_type)
-        self.domain: list[np.ndarray] = [_readonly(domain)]
-        self.fixed: list[np.ndarray] = [_readonly(fixed)]
-        self.rep: list[np.ndarray] = [_readonly(rep)]
-        while max(self.domain[-1].shape) > 1:
-            d, f, r = self.domain[-1], self.fixed[-1], self.rep[-1]
-            h, w = d.shape
-            ph, pw = h + (h & 1), w + (w & 1)
-            if (ph, pw) != (h, w):
-                d = np.pad(d, ((0, ph - h), (0, pw - w)), constant_values=False)
-                f = np.pad(f, ((0, ph - h), (0, pw - w)), constant_values=False)
-                r = np.pad(r, ((0, ph - h), (0, pw - w)), constant_values=-1)
-            d4 = d.reshape(ph // 2, 2, pw // 2, 2)
-            self.domain.append(_readonly(d4.any(axis=(1, 3))))
-            self.fixed.append(_readonly(f.reshape(ph // 2, 2, pw // 2, 2).any(axis=(1, 3))))
-            # One domain cell per block: the first child (in reading order) that has one.
-            children = r.reshape(ph // 2, 2, pw // 2, 2).transpose(0, 2, 1, 3).reshape(ph // 2, pw // 2, 4)
-            first = np.argmax(children >= 0, axis=2)
-            self.rep.append(_readonly(np.take_along_axis(children, first[..., None], axis=2)[..., 0]))
+        for first in (2, 3):
+            if first > max(rows, cols) and first != 2:
+                continue
+            d, f, r = _pool(domain, fixed, None, first, cols)
+            b = first
+            while True:
+                self.domain[b], self.fixed[b] = _readonly(d), _readonly(f)
+                self.rep[b] = _readonly(r.astype(index_type))
+                if max(d.shape) <= 1:
+                    break
+                d, f, r = _pool(d, f, r, 2, cols)
+                b *= 2
 
     @classmethod
     def from_case(cls, case) -> "CellLayout":
@@ -97,8 +138,8 @@ class CellLayout:
         return cls(case.kind_codes()[case.codes], case.cell_size)
 
     @property
-    def levels(self) -> int:
-        return len(self.domain)
+    def blocks(self) -> list[int]:
+        return sorted(self.domain)
 
     def position(self, row: int, col: int) -> tuple[float, float]:
         """Centre of cell (row, col) in metres: x = (col+0.5)h, y = (rows-row-0.5)h."""
@@ -110,7 +151,7 @@ class CellLayout:
 class Viewport:
     """What the field panel shows.
 
-    ``zoom >= 0``: one pixel is a block of ``2**zoom x 2**zoom`` cells and
+    ``zoom >= 0``: one pixel is a block of ``b x b`` cells, ``b = BLOCKS[zoom]``, and
     ``row0``/``col0`` are multiples of the block. ``zoom < 0``: one cell is
     ``1 - zoom`` pixels on a side. ``height``/``width`` is the pixel grid the
     panel has room for; ``cursor`` the probed cell (row, col).
@@ -125,7 +166,7 @@ class Viewport:
 
     @property
     def block(self) -> int:
-        return 2**self.zoom if self.zoom > 0 else 1
+        return BLOCKS[self.zoom] if self.zoom > 0 else 1
 
     @property
     def magnify(self) -> int:
@@ -157,7 +198,7 @@ def fit_zoom(shape: tuple[int, int], height: int, width: int) -> int:
         m = max(1, min(height // rows, width // cols, MAX_MAGNIFY))
         return 1 - m
     z = 0
-    while -(-rows // 2**z) > height or -(-cols // 2**z) > width:
+    while -(-rows // BLOCKS[z]) > height or -(-cols // BLOCKS[z]) > width:
         z += 1
     return z
 
@@ -231,18 +272,17 @@ class SamplingPlan:
             nc = max(min(-(-vp.width // m), cols - vp.col0), 0)
             self.rows = slice(vp.row0, vp.row0 + nr)
             self.cols = slice(vp.col0, vp.col0 + nc)
-            dom = layout.domain[0][self.rows, self.cols]
-            fix = layout.fixed[0][self.rows, self.cols]
+            dom = layout.domain[1][self.rows, self.cols]
+            fix = layout.fixed[1][self.rows, self.cols]
             self.m = m
             self.domain = _readonly(self._grow(dom))
             self.fixed = _readonly(self._grow(fix))
             self.samples = None
             return
         self.m = 1
-        z = min(vp.zoom, layout.levels - 1)
-        b = 2**z
+        b = vp.block if vp.block in layout.domain else max(layout.domain)
         br0, bc0 = vp.row0 // b, vp.col0 // b
-        level_dom, level_fix = layout.domain[z], layout.fixed[z]
+        level_dom, level_fix = layout.domain[b], layout.fixed[b]
         h = max(min(vp.height, level_dom.shape[0] - br0), 0)
         w = max(min(vp.width, level_dom.shape[1] - bc0), 0)
         self.domain = _readonly(level_dom[br0 : br0 + h, bc0 : bc0 + w].copy())
@@ -253,14 +293,14 @@ class SamplingPlan:
         ci = ((bc0 + np.arange(w))[:, None] * b + offsets[None, :]).ravel()
         ok_r, ok_c = ri < rows, ci < cols
         self.ri, self.ci = np.minimum(ri, rows - 1), np.minimum(ci, cols - 1)
-        sampled = layout.domain[0][np.ix_(self.ri, self.ci)] & ok_r[:, None] & ok_c[None, :]
+        sampled = layout.domain[1][np.ix_(self.ri, self.ci)] & ok_r[:, None] & ok_c[None, :]
         self.sampled = _readonly(sampled)
         self.s, self.h, self.w = s, h, w
         self.counts = sampled.reshape(h, s, w, s).sum(axis=(1, 3))
         # Blocks with domain cells that no sample hit: read one representative cell.
         missed = self.domain & (self.counts == 0)
         self.missed = np.nonzero(missed)
-        reps = layout.rep[z][br0 : br0 + h, bc0 : bc0 + w][self.missed]
+        reps = layout.rep[b][br0 : br0 + h, bc0 : bc0 + w][self.missed]
         self.missed_cells = np.unravel_index(reps.astype(np.int64), layout.shape)
         self.samples = sampled.sum()
 
@@ -273,7 +313,7 @@ class SamplingPlan:
     def sample(self, field: np.ndarray) -> np.ndarray:
         """Pixel values of ``field`` ((rows, cols), any strides) for this viewport: a new array."""
         if self.samples is None:
-            values = np.where(self.layout.domain[0][self.rows, self.cols], field[self.rows, self.cols], np.nan)
+            values = np.where(self.layout.domain[1][self.rows, self.cols], field[self.rows, self.cols], np.nan)
             return self._grow(values.astype(np.float64, copy=False))
         h, w, s = self.h, self.w, self.s
         sub = field[np.ix_(self.ri, self.ci)]
@@ -299,7 +339,7 @@ class SamplingPlan:
     def probe(self, field: np.ndarray, values: np.ndarray, cursor: tuple[int, int], vp: Viewport) -> Probe:
         r, c = cursor
         x, y = self.layout.position(r, c)
-        inside = bool(self.layout.domain[0][r, c])
+        inside = bool(self.layout.domain[1][r, c])
         value = float(field[r, c]) if inside else None
         block_mean = None
         if vp.zoom > 0:

@@ -54,7 +54,7 @@ class StatusStrip(Static):
         if self.report:
             flows = self.report.get("flows") or {}
             self.plain += "\n" + " ".join(f"{k} {_flow(v)}" for k, v in flows.items())
-        self.update(content)
+        self.update(content, layout=False)  # fixed height (stylesheet)
 
     def _content(self):
         # In order of importance: a small strip shows the first lines only.

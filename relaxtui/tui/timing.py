@@ -51,6 +51,7 @@ class TimingPanel(Static):
         self.sweep_rate: float | None = None
         self.unit = ""
         self.note = "no run yet"
+        self.note_lines = 2  # lines of the omega note shown (the app sets it by layout)
 
     def show(self, progress, sweep_rate: float | None = None, note: str | None = None) -> None:
         """Display ``progress`` (or a note when there is none)."""
@@ -58,7 +59,7 @@ class TimingPanel(Static):
         self.sweep_rate = sweep_rate
         if note is not None:
             self.note = note
-        self.update(self._table())
+        self.update(self._table(), layout=False)  # the panel's height is fixed by the stylesheet
 
     def _table(self):
         p = self.progress
@@ -87,4 +88,19 @@ class TimingPanel(Static):
         t.add_row("error", sci(p.estimated_error, self.unit))
         from rich.console import Group
 
-        return Group(t, Text(p.omega_note, style="dim italic"))
+        return Group(t, Text(self._short(p.omega_note), style="dim italic"))
+
+    def _short(self, note: str) -> str:
+        """The note wrapped to the panel, cut to ``note_lines`` lines."""
+        import textwrap
+
+        width = max(self.content_size.width, 10)
+        lines = textwrap.wrap(note, width)
+        if len(lines) > self.note_lines:
+            lines = lines[: self.note_lines]
+            lines[-1] = lines[-1][: width - 1].rstrip() + "…"
+        return "\n".join(lines)
+
+    def on_resize(self) -> None:
+        if self.progress is not None:
+            self.update(self._table(), layout=False)
