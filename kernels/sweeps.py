@@ -30,6 +30,28 @@ after a sweep whose largest update is not finite. The maxima are integer
 reductions over bit patterns (:mod:`relaxtui.kernels._bits`), computed in the
 same loop as the update.
 
+Choices, and what was measured to make them (4096 x 4096 uniform grid, this
+project's 2-core Sapphire Rapids machine, shared with other work, so +-15 %):
+- Bulk runs with broadcast weights instead of a table gather per cell: a
+  gather per cell ran at about 550 Mcell/s on 2 threads, broadcast weights at
+  about 1600 (as fast as an unmasked 5-point loop); checking 64-cell chunks
+  for a single class at run time reached about 1300. Row segments are built
+  once, so the sweep pays nothing per cell to find its weights.
+- Maximum reductions as integer max over bit patterns (``_bits``): a float
+  ``max`` reduction keeps LLVM from vectorising the loop without fastmath
+  (about 780 Mcell/s instead of 1600).
+- Loops run over slices starting at a constant 0: with a loop start read from
+  memory numba's negative-index wraparound turned every load into a gather
+  (about 1000 instead of 1600 Mcell/s).
+- Red-black: the whole segment's s into a scratch row, then a blend that
+  writes only the colour's cells, beat both a half-width scratch row and an
+  in-place stride-2 loop (about 1090 vs 850 and 780 Mcell/s on 2 threads).
+- Lexicographic: the plain row-by-row loop waits on one dependency chain per
+  cell (about 200-280 Mcell/s); 4 rows on a skewed front with the short
+  west-neighbour chain reached about 350-390. Column strips for cache
+  blocking made Jacobi slower (460 vs 630 Mcell/s on one thread), so rows
+  are swept whole.
+
 Coarse grids whose weights vary per cell (multigrid) use the same kernels:
 give every cell its own class (``cls`` uint32 = 1 + cell number, ``table`` one
 row per cell, the right-hand side in column 4) and build segments with
