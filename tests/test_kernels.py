@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 import reference
-from cases import feature_case, fixed, interior, make_case
+from cases import feature_case, fixed, interior, make_case, outside
 from relaxtui.operator import Operator
 
 HERE = Path(__file__).resolve().parent
@@ -223,3 +223,65 @@ def test_same_results_without_the_jit():
         assert res0 == pytest.approx(res1, abs=1e-14)
         for region in fl0:
             assert fl0[region] == pytest.approx(fl1[region], abs=1e-13)
+
+
+def _random_case(seed, rows=23, cols=57):
+    rng = np.random.default_rng(seed)
+    # two materials and fixed cells scattered at random, a long uniform band (bulk runs), a fixed row
+    pick = rng.choice(list("..bbx"), size=(rows, cols))
+    pick[rng.random((rows, cols)) < 0.01] = "H"
+    pick[:, 20:45] = "."
+    pick[rows // 2, :] = "x"
+    lg = {".": interior("plate", 2.0), "b": interior("core", 0.5, source=1.0), "x": fixed("wall", 0.0), "H": fixed("hot", 1.0)}
+    return make_case(["".join(r) for r in pick], lg)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_segments_cover_every_unknown_once(seed):
+    op = Operator(_random_case(seed))
+    covered = np.zeros(op.cls.shape, dtype=np.int64)
+    for i in range(op.cls.shape[0]):
+        for s in range(op.row_ptr[i], op.row_ptr[i + 1]):
+            a, e, c = op.seg_start[s], op.seg_end[s], op.seg_class[s]
+            assert 1 <= a < e <= op.cls.shape[1] - 1
+            covered[i, a:e] += 1
+            if c > 0:
+                assert e - a >= 16 and np.all(op.cls[i, a:e] == c)  # bulk runs: one class, long enough
+            else:
+                assert np.any(op.cls[i, a:e] != 0)  # mixed stretches hold an unknown
+    assert np.all(covered[op.cls != 0] == 1)
+    assert covered.max() <= 1
+    assert op.cells_streamed == covered.sum()
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_group_check_agrees_with_scipy_labelling(seed):
+    """The run-based union-find against scipy.ndimage.label (4-connectivity) on random pictures."""
+    import scipy.ndimage
+
+    from relaxtui.errors import CaseError
+
+    rng = np.random.default_rng(100 + seed)
+    rows, cols = 19, 31
+    pick = rng.choice(list("..xx"), size=(rows, cols))
+    pick[rng.random((rows, cols)) < 0.004] = "H"
+    case = make_case(["".join(r) for r in pick], {".": interior(), "x": outside(), "H": fixed("hot", 1.0)})
+    interior_mask = pick == "."
+    labels, count = scipy.ndimage.label(interior_mask)  # default structure: 4-connectivity
+    anchored = np.zeros(count + 1, dtype=bool)
+    hot = pick == "H"
+    near_hot = np.zeros_like(hot)
+    near_hot[1:] |= hot[:-1]
+    near_hot[:-1] |= hot[1:]
+    near_hot[:, 1:] |= hot[:, :-1]
+    near_hot[:, :-1] |= hot[:, 1:]
+    anchored[np.unique(labels[interior_mask & near_hot])] = True
+    bad = [g for g in range(1, count + 1) if not anchored[g]]
+    if not bad:
+        Operator(case)
+        return
+    # the operator names the group holding the first unanchored cell in image order
+    first = min(np.argwhere(np.isin(labels, bad)).tolist())
+    size = int((labels == labels[tuple(first)]).sum())
+    with pytest.raises(CaseError, match=rf"group of {size} interior cells? \(one at row {first[0]}, column {first[1]}\)"):
+        Operator(case)
