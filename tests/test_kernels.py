@@ -285,3 +285,19 @@ def test_group_check_agrees_with_scipy_labelling(seed):
     size = int((labels == labels[tuple(first)]).sum())
     with pytest.raises(CaseError, match=rf"group of {size} interior cells? \(one at row {first[0]}, column {first[1]}\)"):
         Operator(case)
+
+
+@pytest.mark.parametrize("seed", range(3))
+@pytest.mark.parametrize("method,omega", [("jacobi", 0.9), ("sor", 1.3), ("red-black-sor", 1.3)])
+def test_random_pictures_match_reference(seed, method, omega):
+    case = _random_case(seed)
+    op = Operator(case)
+    init = start_field(case, seed)
+    u = op.new_field(init)
+    want, big_u, big_r = reference.SWEEPS[method](case, with_fixed_values(case, init), omega)
+    upd, res = np.zeros(1), np.zeros(1)
+    op.sweep(u, method, omega, 1, upd, res)
+    got = op.finish(u)
+    domain = ~np.isnan(got)
+    np.testing.assert_allclose(got[domain], want[domain], rtol=0, atol=1e-14)
+    assert upd[0] == pytest.approx(big_u, abs=1e-14) and res[0] == pytest.approx(big_r, abs=1e-14)
