@@ -80,7 +80,7 @@ class RadiusEstimate:
     settled: bool  # whether the estimate stopped moving before the step limit
 
 
-def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 80, max_steps: int = 300,
+def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 80, max_steps: int = 400,
                   budget: float = 0.3, rtol: float = 0.01) -> RadiusEstimate:
     """Estimate ρ(J) with Lanczos on J in the D-inner product (J is self-adjoint there).
 
@@ -99,7 +99,7 @@ def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 
         estimate that the observed SOR factor then refines.
     rtol : float
         The estimate has *settled* when the gap 1 - μ changed by less than this
-        fraction over the last 5 steps. An unsettled estimate errs low; the
+        fraction over the last max(20, steps/4) steps. An unsettled estimate errs low; the
         driver then corrects ω from the observed SOR factor and does not use it
         as the stopping rule's prior.
     """
@@ -127,8 +127,9 @@ def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 
         alphas[steps - 1] = alpha
         top = float(spectral.tridiagonal_extreme(alphas, betas, steps))
         history.append(top)
-        if len(history) > 5:
-            old, new = 1.0 - history[-6], 1.0 - top
+        back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
+        if len(history) > back:
+            old, new = 1.0 - history[-1 - back], 1.0 - top
             if new > 0 and abs(old - new) <= rtol * new:
                 settled = True
                 break
