@@ -236,13 +236,19 @@ class Run:
     def _radius(self) -> float:
         """The Jacobi spectral radius of this case's operator (estimated once per operator)."""
         if self.mu is None:
+            m = self.method_info
             cached = getattr(self.operator, "_relaxtui_radius", None)
-            if cached is None:
+            if cached is None or (not cached[1] and not m.needs_radius):
+                # (an unsettled estimate made for SOR is redone for the slow methods,
+                # whose longer solves afford the steps to settle it)
                 from relaxtui.omega import jacobi_radius
+
+                def method_sweeps(mu):
+                    return 9.2 / max(1.0 - m.factor(mu, m.auto(mu)), 1e-300)
 
                 op = self.operator
                 t0 = time.perf_counter()
-                est = jacobi_radius(op.jacobi_apply, op.cls, op.diag)
+                est = jacobi_radius(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
                 how = "settled" if est.settled else "not settled, corrected from the observed factor"
                 cached = (est.mu, est.settled,
                           f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s, {how})")

@@ -80,8 +80,13 @@ class RadiusEstimate:
     settled: bool  # whether the estimate stopped moving before the step limit
 
 
-def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 80, max_steps: int = 400,
-                  budget: float = 0.3, rtol: float = 0.01) -> RadiusEstimate:
+def _sor_sweeps(mu: float) -> float:
+    """Sweeps SOR at the optimal ω needs for four decades: ln(1e4) / (2 - ω_opt)."""
+    return 9.2 / max(2.0 - optimal_omega(mu), 1e-300)
+
+
+def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 100, max_steps: int = 600,
+                  budget: float = 0.6, rtol: float = 0.01, method_sweeps=_sor_sweeps) -> RadiusEstimate:
     """Estimate ρ(J) with Lanczos on J in the D-inner product (J is self-adjoint there).
 
     Parameters
@@ -91,12 +96,13 @@ def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 
         the shape of ``cls`` (0 outside the unknowns).
     cls, diag : ndarray
         The operator's class per cell (0: not an unknown) and the diagonal per class.
-    min_steps, max_steps, budget : int, int, float
+    min_steps, max_steps, budget, method_sweeps
         Steps (operator applications, each costing about two sweeps) are
         spent until the estimate settles, but not beyond ``budget`` times the
-        sweeps SOR would need at the current estimate (at least
-        ``min_steps``, at most ``max_steps``): a large grid gets a rough
-        estimate that the observed SOR factor then refines.
+        sweeps the method would need at the current estimate
+        (``method_sweeps(mu)``, SOR at its optimum by default; at least
+        ``min_steps``, at most ``max_steps``): a large grid solved by SOR gets
+        a rough estimate that the observed SOR factor then refines.
     rtol : float
         The estimate has *settled* when the gap 1 - μ changed by less than this
         fraction over the last max(20, steps/4) steps. An unsettled estimate errs low; the
@@ -133,9 +139,7 @@ def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, *, min_steps: int = 
             if new > 0 and abs(old - new) <= rtol * new:
                 settled = True
                 break
-            # SOR at the optimum needs about ln(1e4) / (2 sqrt(2 (1 - μ))) sweeps
-            sor_sweeps = 9.2 / (2.0 * math.sqrt(2.0 * max(new, 1e-300)))
-            if steps >= max(min_steps, budget * sor_sweeps):
+            if steps >= max(min_steps, budget * method_sweeps(top)):
                 break
         if beta_new <= 1e-14:
             settled = True
