@@ -101,7 +101,23 @@ METHODS: dict[str, Method] = {
         factor=young.sor_factor,
         parallel=True,
     ),
+    "multigrid": Method(
+        "multigrid",
+        "multigrid cycles: red-black smoothing, Galerkin 9-point coarse levels, parallel",
+        "smoother's relaxation factor",
+        needs_radius=False,
+        auto=lambda mu: _multigrid().DEFAULT_OMEGA,
+        factor=None,  # no Jacobi-radius estimate: the stopping rule measures the cycle's own factor
+        parallel=True,
+        make=lambda operator: _multigrid().MultigridStepper(operator),
+    ),
 }
+
+
+def _multigrid():
+    from relaxtui import multigrid  # numba only when a multigrid stepper is made
+
+    return multigrid
 
 
 def get_method(name: str) -> Method:

@@ -1,0 +1,856 @@
+"""Multigrid kernels: interpolation, Galerkin coarse operators, transfers, coarse smoother, coarsest solve.
+
+Levels
+------
+Level 0 is the operator's own grid (padded field ``u``, padded class array
+``cls``, class ``table`` of wN, wS, wW, wE, q and class diagonal ``diag``; see
+:mod:`relaxtui.kernels.sweeps`). A coarse level l >= 1 is a (R + 2, C + 2)
+padded grid with R = (R_fine + 1) // 2, C = (C_fine + 1) // 2, and holds the
+*unnormalised* symmetric 9-point Galerkin operator in five planes
+
+    A[0] centre,  A[1] east (i, j+1),  A[2] south (i+1, j),
+    A[3] south-east (i+1, j+1),  A[4] south-west (i+1, j-1),
+
+every other coupling read from a neighbour by symmetry (west of (i, j) is
+``A[1, i, j-1]``, north ``A[2, i-1, j]``, north-west ``A[3, i-1, j-1]``,
+north-east ``A[4, i-1, j+1]``). A cell is an unknown iff its centre is > 0;
+padding and non-unknowns are 0 in every plane.
+
+Coarsening and interpolation
+----------------------------
+Coarse cell (I, J) sits on fine cell (2I, 2J) (unpadded indices): the fine
+grid's cells are nodes of a graph and every other node in each direction is
+kept, as in vertex-centred multigrid. Fine cells of block (I, J) are the
+*C* cell (2I, 2J), the *row* cell (2I, 2J+1) between C cells (I, J) and
+(I, J+1), the *column* cell (2I+1, 2J) between (I, J) and (I+1, J), and the
+*centre* cell (2I+1, 2J+1). Interpolation is operator-dependent (the
+collapsed-stencil rule of Dendy's black-box multigrid, J. E. Dendy,
+J. Comput. Phys. 48, 1982):
+
+- row cell: collapse the 3 x 3 stencil onto its row, so e = (σ_W e_W + σ_E e_E) / σ_C
+  with σ the column sums (negated off-diagonal sums); a source that is not an
+  unknown is dropped and its column folded into σ_C (its neighbours are
+  taken to move with the cell), so a constant stays a constant next to
+  insulated holes and a fixed neighbour pulls the weight below 1;
+- column cell: the same with rows and columns swapped;
+- centre cell: its own equation with the row and column cells' interpolated
+  values, e = -Σ a_q e_q / a_P (positive couplings are folded into a_P).
+
+A fine cell whose rule gives no weight (a one-cell channel on odd rows or
+columns, an isolated cell) would be invisible to every coarser level; it is
+instead *aggregated*: weight 1 to its own block's coarse cell, which then
+exists even if its C cell does not. All sources of a fine cell (i, j) are in
+the 2 x 2 coarse cells from (i // 2, j // 2), so a coarse cell's
+interpolation support stays within one fine cell of its C cell, and the
+Galerkin operator P^T A P stays a 9-point stencil on every level.
+
+The weights of the 4 non-C cells of block (I, J) are 8 numbers, stored per
+level in planes ``P[8, R + 2, C + 2]`` (block (I, J) at [I + 1, J + 1]):
+
+    P[0], P[1]  row cell     -> (I, J), (I, J+1)
+    P[2], P[3]  column cell  -> (I, J), (I+1, J)
+    P[4..7]     centre cell  -> (I, J), (I, J+1), (I+1, J), (I+1, J+1)
+
+On level 0 they are computed on the fly from the class table (per-class
+row/column weights ``ptab`` and flags ``pflag``), so the finest grid, the
+only big one, carries no interpolation arrays.
+
+Every kernel here is a pure function of arrays; ``nblk`` is the number of
+row blocks run in parallel (results do not depend on it).
+"""
+
+import numpy as np
+from numba import prange
+
+from relaxtui.kernels._bits import abs_bits, from_bits
+from relaxtui.kernels._jit import kernel
+
+CENTRE, EAST, SOUTH, SOUTH_EAST, SOUTH_WEST = 0, 1, 2, 3, 4
+ROW_LOST, COLUMN_LOST, ISOLATED = 1, 2, 4  # pflag bits (level 0) and lost-cell bits (coarse levels)
+
+
+# --- level 0: per-cell helpers --------------------------------------------------------------
+
+
+@kernel(inline=True)
+def _block0(cls, table, ptab, pflag, I, J, w):
+    """The 8 interpolation weights of block (I, J) of level 0 into w (see the module docstring)."""
+    i0 = 2 * I + 1  # padded row of fine row 2I
+    j0 = 2 * J + 1  # padded column of fine column 2J
+    ch = cls[i0, j0 + 1]
+    cv = cls[i0 + 1, j0]
+    cx = cls[i0 + 1, j0 + 1]
+    w[0] = ptab[ch, 0]
+    w[1] = ptab[ch, 1]
+    w[2] = ptab[cv, 2]
+    w[3] = ptab[cv, 3]
+    if cx == 0:
+        w[4] = 0.0
+        w[5] = 0.0
+        w[6] = 0.0
+        w[7] = 0.0
+    elif pflag[cx] & ISOLATED:
+        w[4] = 1.0
+        w[5] = 0.0
+        w[6] = 0.0
+        w[7] = 0.0
+    else:
+        tn = table[cx, 0]
+        ts = table[cx, 1]
+        tw = table[cx, 2]
+        te = table[cx, 3]
+        cs = cls[i0 + 2, j0 + 1]
+        ce = cls[i0 + 1, j0 + 2]
+        w[4] = tn * ptab[ch, 0] + tw * ptab[cv, 2]
+        w[5] = tn * ptab[ch, 1] + te * ptab[ce, 2]
+        w[6] = ts * ptab[cs, 0] + tw * ptab[cv, 3]
+        w[7] = ts * ptab[cs, 1] + te * ptab[ce, 3]
+
+
+@kernel(inline=True)
+def _residual_row0(u, cls, table, diag, i, out):
+    """out[j + 1] = unnormalised residual D (Σ w u + q - u) of fine cell (i, j) (0 off the unknowns)."""
+    cols = u.shape[1] - 2
+    out[0] = 0.0
+    out[cols + 1] = 0.0
+    if i < 0 or i >= u.shape[0] - 2:
+        for j in range(cols + 2):
+            out[j] = 0.0
+        return
+    pi = i + 1
+    up = u[pi - 1]
+    mid = u[pi]
+    dn = u[pi + 1]
+    crow = cls[pi]
+    for pj in range(1, cols + 1):
+        c = crow[pj]
+        s = (((table[c, 0] * up[pj] + table[c, 1] * dn[pj]) + table[c, 2] * mid[pj - 1]) + table[c, 3] * mid[pj + 1]) + table[c, 4]
+        out[pj] = diag[c] * (s - mid[pj]) if c != 0 else 0.0
+
+
+@kernel(parallel=True)
+def restrict0(u, cls, table, diag, ptab, pflag, fc, nblk):
+    """fc (level-1 padded) = P^T (b - A u) on the coarse cells: the restricted unnormalised residual.
+
+    Coarse rows are split into ``nblk`` blocks; within a block the fine
+    residual rows and the block weights are computed once each and rolled
+    from one coarse row to the next.
+    """
+    rc = fc.shape[0] - 2
+    cc = fc.shape[1] - 2
+    cols = u.shape[1] - 2
+    for b in prange(nblk):
+        I0 = b * rc // nblk
+        I1 = (b + 1) * rc // nblk
+        if I1 <= I0:
+            continue
+        r_prev = np.zeros(cols + 2)  # fine row 2I - 1
+        r_cur = np.zeros(cols + 2)  # fine row 2I
+        r_next = np.zeros(cols + 2)  # fine row 2I + 1
+        w_prev = np.zeros((cc + 2, 8))  # block row I - 1, block J at [J + 1]
+        w_cur = np.zeros((cc + 2, 8))
+        wb = np.zeros(8)
+        _residual_row0(u, cls, table, diag, 2 * I0 - 1, r_prev)
+        if I0 > 0:
+            for J in range(cc):
+                _block0(cls, table, ptab, pflag, I0 - 1, J, wb)
+                for k in range(8):
+                    w_prev[J + 1, k] = wb[k]
+        for I in range(I0, I1):
+            _residual_row0(u, cls, table, diag, 2 * I, r_cur)
+            _residual_row0(u, cls, table, diag, 2 * I + 1, r_next)
+            for J in range(cc):
+                _block0(cls, table, ptab, pflag, I, J, wb)
+                for k in range(8):
+                    w_cur[J + 1, k] = wb[k]
+            frow = fc[I + 1]
+            for J in range(cc):
+                j = 2 * J + 1  # padded column of fine column 2J
+                s = r_cur[j]
+                s += w_cur[J + 1, 0] * r_cur[j + 1] + w_cur[J, 1] * r_cur[j - 1]
+                s += w_cur[J + 1, 2] * r_next[j] + w_prev[J + 1, 3] * r_prev[j]
+                s += w_cur[J + 1, 4] * r_next[j + 1] + w_cur[J, 5] * r_next[j - 1]
+                s += w_prev[J + 1, 6] * r_prev[j + 1] + w_prev[J, 7] * r_prev[j - 1]
+                frow[J + 1] = s
+            r_prev, r_next = r_next, r_prev
+            w_prev, w_cur = w_cur, w_prev
+
+
+@kernel(parallel=True)
+def prolong0(u, cls, table, ptab, pflag, ec, nblk):
+    """u += P e_c on the unknowns of level 0 (u padded, ec the level-1 padded correction)."""
+    rc = ec.shape[0] - 2
+    cc = ec.shape[1] - 2
+    rows = u.shape[0] - 2
+    for b in prange(nblk):
+        wb = np.zeros(8)
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            i0 = 2 * I + 1
+            e0 = ec[I + 1]
+            e1 = ec[I + 2]
+            urow = u[i0]
+            crow = cls[i0]
+            have_odd = 2 * I + 1 < rows
+            for J in range(cc):
+                j0 = 2 * J + 1
+                _block0(cls, table, ptab, pflag, I, J, wb)
+                a = e0[J + 1]
+                bb = e0[J + 2]
+                c = e1[J + 1]
+                d = e1[J + 2]
+                if crow[j0] != 0:
+                    urow[j0] += a
+                if crow[j0 + 1] != 0:  # (padding column when 2J + 1 is past the grid)
+                    urow[j0 + 1] += wb[0] * a + wb[1] * bb
+                if have_odd:
+                    if cls[i0 + 1, j0] != 0:
+                        u[i0 + 1, j0] += wb[2] * a + wb[3] * c
+                    if cls[i0 + 1, j0 + 1] != 0:
+                        u[i0 + 1, j0 + 1] += ((wb[4] * a + wb[5] * bb) + wb[6] * c) + wb[7] * d
+
+
+@kernel(parallel=True)
+def finish0(u, u_old, cls, table, nblk):
+    """After a cycle: the largest |u - u_old| and the largest contract residual; then u_old = u.
+
+    Returns (update, residual) in field units (NaN if any update was not finite).
+    """
+    n = u.shape[0] - 2
+    cols = u.shape[1] - 2
+    bu = np.zeros(nblk, dtype=np.int64)
+    br = np.zeros(nblk, dtype=np.int64)
+    for b in prange(nblk):
+        mu = 0
+        mr = 0
+        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            up = u[pi - 1]
+            mid = u[pi]
+            dn = u[pi + 1]
+            old = u_old[pi]
+            crow = cls[pi]
+            for pj in range(1, cols + 1):
+                c = crow[pj]
+                v = mid[pj]
+                s = (((table[c, 0] * up[pj] + table[c, 1] * dn[pj]) + table[c, 2] * mid[pj - 1]) + table[c, 3] * mid[pj + 1]) + table[c, 4]
+                r = s - v if c != 0 else 0.0
+                mu = max(mu, abs_bits(v - old[pj]))
+                mr = max(mr, abs_bits(r))
+                old[pj] = v
+        bu[b] = mu
+        br[b] = mr
+    return from_bits(bu.max()), from_bits(br.max())
+
+
+@kernel(parallel=True)
+def copy_into(src, dst, nblk):
+    """dst[...] = src (2-D, same shape), row blocks in parallel."""
+    n = src.shape[0]
+    for b in prange(nblk):
+        for i in range(b * n // nblk, (b + 1) * n // nblk):
+            a = src[i]
+            o = dst[i]
+            for j in range(a.shape[0]):
+                o[j] = a[j]
+
+
+# --- per-row buffers of interpolation rows and stencils (Galerkin products) ------------------
+
+
+@kernel(inline=True)
+def _p_of_cell(w_block, i, j, live_c, out):
+    """Interpolation row of fine cell (i, j) (unpadded) toward the 2 x 2 coarse cells from (i // 2, j // 2).
+
+    ``w_block`` holds the 8 weights of block (i // 2, j // 2); ``live_c`` is
+    1 if (i, j) is an unknown C cell. out[2a + b] is the weight toward
+    (i // 2 + a, j // 2 + b).
+    """
+    out[0] = 0.0
+    out[1] = 0.0
+    out[2] = 0.0
+    out[3] = 0.0
+    ri = i & 1
+    rj = j & 1
+    if ri == 0 and rj == 0:
+        out[0] = 1.0 if live_c else 0.0
+    elif ri == 0:
+        out[0] = w_block[0]
+        out[1] = w_block[1]
+    elif rj == 0:
+        out[0] = w_block[2]
+        out[2] = w_block[3]
+    else:
+        out[0] = w_block[4]
+        out[1] = w_block[5]
+        out[2] = w_block[6]
+        out[3] = w_block[7]
+
+
+@kernel(inline=True)
+def _prow0(cls, table, ptab, pflag, i, prow, wb, cell):
+    """prow[j + 1, :] = interpolation row of level-0 cell (i, j); zeros for rows outside the grid."""
+    rows = cls.shape[0] - 2
+    cols = cls.shape[1] - 2
+    for j in range(cols + 2):
+        for k in range(4):
+            prow[j, k] = 0.0
+    if i < 0 or i >= rows:
+        return
+    for j in range(cols):
+        _block0(cls, table, ptab, pflag, i // 2, j // 2, wb)
+        _p_of_cell(wb, i, j, cls[i + 1, j + 1] != 0, cell)
+        for k in range(4):
+            prow[j + 1, k] = cell[k]
+
+
+@kernel(inline=True)
+def _arow0(cls, table, diag, i, arow):
+    """arow[j + 1, k] = A((i, j), (i, j) + OFF[k]) of level 0 (OFF: 3 x 3 offsets, row-major)."""
+    rows = cls.shape[0] - 2
+    cols = cls.shape[1] - 2
+    for j in range(cols + 2):
+        for k in range(9):
+            arow[j, k] = 0.0
+    if i < 0 or i >= rows:
+        return
+    for j in range(cols):
+        c = cls[i + 1, j + 1]
+        if c == 0:
+            continue
+        d = diag[c]
+        arow[j + 1, 1] = -table[c, 0] * d
+        arow[j + 1, 7] = -table[c, 1] * d
+        arow[j + 1, 3] = -table[c, 2] * d
+        arow[j + 1, 5] = -table[c, 3] * d
+        arow[j + 1, 4] = d
+
+
+@kernel(inline=True)
+def _prow9(P, A, i, prow, wb, cell):
+    """prow[j + 1, :] = interpolation row of cell (i, j) of a coarse level with weights P, stencil A."""
+    rows = A.shape[1] - 2
+    cols = A.shape[2] - 2
+    for j in range(cols + 2):
+        for k in range(4):
+            prow[j, k] = 0.0
+    if i < 0 or i >= rows:
+        return
+    for j in range(cols):
+        for k in range(8):
+            wb[k] = P[k, i // 2 + 1, j // 2 + 1]
+        _p_of_cell(wb, i, j, A[0, i + 1, j + 1] > 0.0, cell)
+        for k in range(4):
+            prow[j + 1, k] = cell[k]
+
+
+@kernel(inline=True)
+def _arow9(A, i, arow):
+    """arow[j + 1, k] = A((i, j), (i, j) + OFF[k]) of a coarse level (symmetric 5-plane storage)."""
+    rows = A.shape[1] - 2
+    cols = A.shape[2] - 2
+    for j in range(cols + 2):
+        for k in range(9):
+            arow[j, k] = 0.0
+    if i < 0 or i >= rows:
+        return
+    pi = i + 1
+    for j in range(cols):
+        pj = j + 1
+        if not A[0, pi, pj] > 0.0:
+            continue
+        arow[pj, 0] = A[3, pi - 1, pj - 1]
+        arow[pj, 1] = A[2, pi - 1, pj]
+        arow[pj, 2] = A[4, pi - 1, pj + 1]
+        arow[pj, 3] = A[1, pi, pj - 1]
+        arow[pj, 4] = A[0, pi, pj]
+        arow[pj, 5] = A[1, pi, pj]
+        arow[pj, 6] = A[4, pi, pj]
+        arow[pj, 7] = A[2, pi, pj]
+        arow[pj, 8] = A[3, pi, pj]
+
+
+@kernel(inline=True)
+def _galerkin_row(prows, arows, I, cols_f, Ac):
+    """Coarse row I of P^T A P into Ac (the 5 stored planes).
+
+    ``prows[m]`` is the interpolation row buffer of fine row 2I - 2 + m
+    (m = 0..4), ``arows[m]`` the stencil buffer of fine row 2I - 1 + m (m = 0..2).
+    """
+    cc = Ac.shape[2] - 2
+    for J in range(cc):
+        s0 = 0.0
+        se = 0.0
+        ss = 0.0
+        sse = 0.0
+        ssw = 0.0
+        for dpi in range(-1, 2):
+            p_i = 2 * I + dpi
+            a = 1 if dpi < 0 else 0
+            for dpj in range(-1, 2):
+                p_j = 2 * J + dpj
+                if p_j < 0 or p_j >= cols_f:
+                    continue
+                bcol = 1 if dpj < 0 else 0
+                w = prows[dpi + 2, p_j + 1, 2 * a + bcol]
+                if w == 0.0:
+                    continue
+                for k in range(9):
+                    apq = arows[dpi + 1, p_j + 1, k]
+                    if apq == 0.0:
+                        continue
+                    q_i = p_i + k // 3 - 1
+                    q_j = p_j + k % 3 - 1
+                    m = q_i - (2 * I - 2)
+                    wa = w * apq
+                    for a2 in range(2):
+                        di = (q_i >> 1) + a2 - I
+                        if di < 0:
+                            continue
+                        for b2 in range(2):
+                            wq = prows[m, q_j + 1, 2 * a2 + b2]
+                            if wq == 0.0:
+                                continue
+                            dj = (q_j >> 1) + b2 - J
+                            v = wa * wq
+                            if di == 0:
+                                if dj == 0:
+                                    s0 += v
+                                elif dj == 1:
+                                    se += v
+                            elif di == 1:
+                                if dj == 0:
+                                    ss += v
+                                elif dj == 1:
+                                    sse += v
+                                elif dj == -1:
+                                    ssw += v
+        Ac[0, I + 1, J + 1] = s0
+        Ac[1, I + 1, J + 1] = se
+        Ac[2, I + 1, J + 1] = ss
+        Ac[3, I + 1, J + 1] = sse
+        Ac[4, I + 1, J + 1] = ssw
+
+
+@kernel(parallel=True)
+def galerkin0(cls, table, diag, ptab, pflag, Ac, nblk):
+    """Ac (5, Rc + 2, Cc + 2), zero on entry: the level-1 Galerkin operator P^T A P of level 0."""
+    rc = Ac.shape[1] - 2
+    cols = cls.shape[1] - 2
+    for b in prange(nblk):
+        prows = np.zeros((5, cols + 2, 4))
+        arows = np.zeros((3, cols + 2, 9))
+        wb = np.zeros(8)
+        cell = np.zeros(4)
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            for m in range(5):
+                _prow0(cls, table, ptab, pflag, 2 * I - 2 + m, prows[m], wb, cell)
+            for m in range(3):
+                _arow0(cls, table, diag, 2 * I - 1 + m, arows[m])
+            _galerkin_row(prows, arows, I, cols, Ac)
+
+
+@kernel(parallel=True)
+def galerkin9(A, P, Ac, nblk):
+    """Ac (5, Rc + 2, Cc + 2), zero on entry: P^T A P of a coarse level (stencil A, weights P)."""
+    rc = Ac.shape[1] - 2
+    cols = A.shape[2] - 2
+    for b in prange(nblk):
+        prows = np.zeros((5, cols + 2, 4))
+        arows = np.zeros((3, cols + 2, 9))
+        wb = np.zeros(8)
+        cell = np.zeros(4)
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            for m in range(5):
+                _prow9(P, A, 2 * I - 2 + m, prows[m], wb, cell)
+            for m in range(3):
+                _arow9(A, 2 * I - 1 + m, arows[m])
+            _galerkin_row(prows, arows, I, cols, Ac)
+
+
+# --- coarse levels: interpolation weights -------------------------------------------------
+
+
+@kernel(inline=True)
+def _collapsed(sa, sc, sb, have_a, have_b, out, k):
+    """Weights of a row/column cell from its collapsed sums: side a, centre, side b (A entries).
+
+    A side is used when its source exists and its coupling is negative
+    (M-matrix-like); otherwise its sum is folded into the centre. Returns 1
+    if the cell has no usable weight (it is then aggregated: weight 1 to its block).
+    """
+    use_a = have_a and sa < 0.0
+    use_b = have_b and sb < 0.0
+    den = sc
+    if not use_a:
+        den += sa
+    if not use_b:
+        den += sb
+    if den > 0.0 and (use_a or use_b):
+        out[k] = -sa / den if use_a else 0.0
+        out[k + 1] = -sb / den if use_b else 0.0
+        return 0
+    out[k] = 1.0
+    out[k + 1] = 0.0
+    return 1
+
+
+@kernel(parallel=True)
+def interpolation9(A, P, lost, nblk):
+    """Fill P (8, Rc + 2, Cc + 2) and lost (Rc + 2, Cc + 2) uint8 (both zero on entry) for stencil A.
+
+    Pass 1: row and column cells (collapsed stencils); pass 2: centre cells
+    (their own equation with the pass-1 rows). ``lost`` gets ROW_LOST /
+    COLUMN_LOST / ISOLATED bits for cells aggregated into their block.
+    """
+    rows = A.shape[1] - 2
+    cols = A.shape[2] - 2
+    rc = P.shape[1] - 2
+    cc = P.shape[2] - 2
+    for b in prange(nblk):
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            for J in range(cc):
+                pi = 2 * I + 1
+                pj = 2 * J + 2  # row cell (2I, 2J+1), padded
+                if 2 * J + 1 < cols and A[0, pi, pj] > 0.0:
+                    sw = A[3, pi - 1, pj - 1] + A[1, pi, pj - 1] + A[4, pi, pj]  # NW + W + SW
+                    sc = A[2, pi - 1, pj] + A[0, pi, pj] + A[2, pi, pj]  # N + C + S
+                    se = A[4, pi - 1, pj + 1] + A[1, pi, pj] + A[3, pi, pj]  # NE + E + SE
+                    have_w = A[0, pi, pj - 1] > 0.0
+                    have_e = 2 * J + 2 < cols and A[0, pi, pj + 1] > 0.0
+                    if _collapsed(sw, sc, se, have_w, have_e, P[:, I + 1, J + 1], 0):
+                        lost[I + 1, J + 1] |= 1
+                pi = 2 * I + 2
+                pj = 2 * J + 1  # column cell (2I+1, 2J), padded
+                if 2 * I + 1 < rows and A[0, pi, pj] > 0.0:
+                    sn = A[3, pi - 1, pj - 1] + A[2, pi - 1, pj] + A[4, pi - 1, pj + 1]  # NW + N + NE
+                    sc = A[1, pi, pj - 1] + A[0, pi, pj] + A[1, pi, pj]  # W + C + E
+                    ss = A[4, pi, pj] + A[2, pi, pj] + A[3, pi, pj]  # SW + S + SE
+                    have_n = A[0, pi - 1, pj] > 0.0
+                    have_s = 2 * I + 2 < rows and A[0, pi + 1, pj] > 0.0
+                    if _collapsed(sn, sc, ss, have_n, have_s, P[:, I + 1, J + 1], 2):
+                        lost[I + 1, J + 1] |= 2
+    for b in prange(nblk):
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            for J in range(cc):
+                pi = 2 * I + 2
+                pj = 2 * J + 2  # centre cell (2I+1, 2J+1), padded
+                if 2 * I + 1 >= rows or 2 * J + 1 >= cols or not A[0, pi, pj] > 0.0:
+                    continue
+                d = A[0, pi, pj]
+                anw = A[3, pi - 1, pj - 1]
+                an = A[2, pi - 1, pj]
+                ane = A[4, pi - 1, pj + 1]
+                aw = A[1, pi, pj - 1]
+                ae = A[1, pi, pj]
+                asw = A[4, pi, pj]
+                a_s = A[2, pi, pj]
+                ase = A[3, pi, pj]
+                # positive couplings are folded into the diagonal (no negative weights)
+                if anw > 0.0:
+                    d += anw
+                    anw = 0.0
+                if an > 0.0:
+                    d += an
+                    an = 0.0
+                if ane > 0.0:
+                    d += ane
+                    ane = 0.0
+                if aw > 0.0:
+                    d += aw
+                    aw = 0.0
+                if ae > 0.0:
+                    d += ae
+                    ae = 0.0
+                if asw > 0.0:
+                    d += asw
+                    asw = 0.0
+                if a_s > 0.0:
+                    d += a_s
+                    a_s = 0.0
+                if ase > 0.0:
+                    d += ase
+                    ase = 0.0
+                cnw = 1.0 if A[0, pi - 1, pj - 1] > 0.0 else 0.0  # C cells of the 4 corners
+                cne = 1.0 if A[0, pi - 1, pj + 1] > 0.0 else 0.0
+                csw = 1.0 if A[0, pi + 1, pj - 1] > 0.0 else 0.0
+                cse = 1.0 if A[0, pi + 1, pj + 1] > 0.0 else 0.0
+                w00 = -(anw * cnw + an * P[0, I + 1, J + 1] + aw * P[2, I + 1, J + 1]) / d
+                w01 = -(ane * cne + an * P[1, I + 1, J + 1] + ae * P[2, I + 1, J + 2]) / d
+                w10 = -(asw * csw + a_s * P[0, I + 2, J + 1] + aw * P[3, I + 1, J + 1]) / d
+                w11 = -(ase * cse + a_s * P[1, I + 2, J + 1] + ae * P[3, I + 1, J + 2]) / d
+                if w00 + w01 + w10 + w11 > 0.0:
+                    P[4, I + 1, J + 1] = w00
+                    P[5, I + 1, J + 1] = w01
+                    P[6, I + 1, J + 1] = w10
+                    P[7, I + 1, J + 1] = w11
+                else:
+                    P[4, I + 1, J + 1] = 1.0
+                    lost[I + 1, J + 1] |= 4
+
+
+# --- coarse levels: smoother, residual and transfers --------------------------------------------
+
+
+@kernel(inline=True)
+def _smooth_row(e, f, A, omega, pi, first_col):
+    """Gauss-Seidel/SOR on padded row pi: cells of column parity first_col, then the others."""
+    cols = e.shape[1] - 2
+    for par in range(2):
+        start = 1 + (first_col ^ par)
+        for pj in range(start, cols + 1, 2):
+            d = A[0, pi, pj]
+            if d > 0.0:
+                s = (A[1, pi, pj] * e[pi, pj + 1] + A[1, pi, pj - 1] * e[pi, pj - 1]
+                     + A[2, pi, pj] * e[pi + 1, pj] + A[2, pi - 1, pj] * e[pi - 1, pj]
+                     + A[3, pi, pj] * e[pi + 1, pj + 1] + A[3, pi - 1, pj - 1] * e[pi - 1, pj - 1]
+                     + A[4, pi, pj] * e[pi + 1, pj - 1] + A[4, pi - 1, pj + 1] * e[pi - 1, pj + 1])
+                x = e[pi, pj]
+                e[pi, pj] = x + omega * ((f[pi, pj] - s) / d - x)
+
+
+@kernel(parallel=True)
+def smooth9(e, f, A, omega, sweeps, reverse, nblk):
+    """``sweeps`` four-colour Gauss-Seidel/SOR sweeps of A e = f on a coarse level, in place.
+
+    Colours are (row parity, column parity); with a 9-point stencil no two
+    cells of a colour are coupled, so this is a true Gauss-Seidel. Forward
+    order: even rows (even columns, then odd), then odd rows; ``reverse``
+    runs the colours backwards (the adjoint sweep). Row blocks run in
+    parallel: each block does its first-parity rows and the second-parity
+    rows between them, then a short pass does the second-parity rows at
+    block edges; the result is that of the plain order, bit for bit.
+    """
+    rows = e.shape[0] - 2
+    fp = 1 if reverse else 0
+    fc = 1 if reverse else 0
+    for it in range(sweeps):
+        for b in prange(nblk):
+            r0 = b * rows // nblk
+            r1 = (b + 1) * rows // nblk
+            for r in range(r0, r1):
+                if (r & 1) == fp:
+                    _smooth_row(e, f, A, omega, r + 1, fc)
+                    if r - 1 > r0:
+                        _smooth_row(e, f, A, omega, r, fc)  # second-parity row r - 1 (padded r)
+        for b in prange(nblk):
+            r0 = b * rows // nblk
+            r1 = (b + 1) * rows // nblk
+            if r1 <= r0:
+                continue
+            if (r0 & 1) != fp:
+                _smooth_row(e, f, A, omega, r0 + 1, fc)
+            if r1 - 1 != r0 and ((r1 - 1) & 1) != fp:
+                _smooth_row(e, f, A, omega, r1, fc)
+
+
+@kernel(inline=True)
+def _residual_row9(e, f, A, i, out):
+    """out[j + 1] = f - A e at cell (i, j) of a coarse level (0 off the unknowns and outside the grid)."""
+    cols = e.shape[1] - 2
+    out[0] = 0.0
+    out[cols + 1] = 0.0
+    if i < 0 or i >= e.shape[0] - 2:
+        for j in range(cols + 2):
+            out[j] = 0.0
+        return
+    pi = i + 1
+    for pj in range(1, cols + 1):
+        d = A[0, pi, pj]
+        s = (d * e[pi, pj] + A[1, pi, pj] * e[pi, pj + 1] + A[1, pi, pj - 1] * e[pi, pj - 1]
+             + A[2, pi, pj] * e[pi + 1, pj] + A[2, pi - 1, pj] * e[pi - 1, pj]
+             + A[3, pi, pj] * e[pi + 1, pj + 1] + A[3, pi - 1, pj - 1] * e[pi - 1, pj - 1]
+             + A[4, pi, pj] * e[pi + 1, pj - 1] + A[4, pi - 1, pj + 1] * e[pi - 1, pj + 1])
+        out[pj] = f[pi, pj] - s if d > 0.0 else 0.0
+
+
+@kernel(parallel=True)
+def restrict9(e, f, A, P, fc, nblk):
+    """fc (next level, padded) = P^T (f - A e) of a coarse level."""
+    rc = fc.shape[0] - 2
+    cc = fc.shape[1] - 2
+    cols = e.shape[1] - 2
+    for b in prange(nblk):
+        I0 = b * rc // nblk
+        I1 = (b + 1) * rc // nblk
+        if I1 <= I0:
+            continue
+        r_prev = np.zeros(cols + 2)
+        r_cur = np.zeros(cols + 2)
+        r_next = np.zeros(cols + 2)
+        _residual_row9(e, f, A, 2 * I0 - 1, r_prev)
+        for I in range(I0, I1):
+            _residual_row9(e, f, A, 2 * I, r_cur)
+            _residual_row9(e, f, A, 2 * I + 1, r_next)
+            frow = fc[I + 1]
+            for J in range(cc):
+                j = 2 * J + 1
+                s = r_cur[j]
+                s += P[0, I + 1, J + 1] * r_cur[j + 1] + P[1, I + 1, J] * r_cur[j - 1]
+                s += P[2, I + 1, J + 1] * r_next[j] + P[3, I, J + 1] * r_prev[j]
+                s += P[4, I + 1, J + 1] * r_next[j + 1] + P[5, I + 1, J] * r_next[j - 1]
+                s += P[6, I, J + 1] * r_prev[j + 1] + P[7, I, J] * r_prev[j - 1]
+                frow[J + 1] = s
+            r_prev, r_next = r_next, r_prev
+
+
+@kernel(parallel=True)
+def prolong9(e, A, P, ec, nblk):
+    """e += P e_c on the unknowns of a coarse level."""
+    rc = ec.shape[0] - 2
+    cc = ec.shape[1] - 2
+    rows = e.shape[0] - 2
+    cols = e.shape[1] - 2
+    for b in prange(nblk):
+        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
+            i0 = 2 * I + 1
+            e0 = ec[I + 1]
+            e1 = ec[I + 2]
+            have_odd = 2 * I + 1 < rows
+            for J in range(cc):
+                j0 = 2 * J + 1
+                a = e0[J + 1]
+                bb = e0[J + 2]
+                c = e1[J + 1]
+                d = e1[J + 2]
+                if A[0, i0, j0] > 0.0:
+                    e[i0, j0] += a
+                if j0 + 1 <= cols:
+                    e[i0, j0 + 1] += P[0, I + 1, J + 1] * a + P[1, I + 1, J + 1] * bb
+                if have_odd:
+                    e[i0 + 1, j0] += P[2, I + 1, J + 1] * a + P[3, I + 1, J + 1] * c
+                    if j0 + 1 <= cols:
+                        e[i0 + 1, j0 + 1] += ((P[4, I + 1, J + 1] * a + P[5, I + 1, J + 1] * bb)
+                                              + P[6, I + 1, J + 1] * c) + P[7, I + 1, J + 1] * d
+
+
+@kernel(parallel=True)
+def zero_fill(x, nblk):
+    """x[...] = 0 (2-D), row blocks in parallel."""
+    n = x.shape[0]
+    for b in prange(nblk):
+        for i in range(b * n // nblk, (b + 1) * n // nblk):
+            row = x[i]
+            for j in range(row.shape[0]):
+                row[j] = 0.0
+
+
+# --- the coarsest level: banded Cholesky ------------------------------------------------------
+
+
+@kernel
+def band_order(A, by_rows):
+    """Number the unknowns of a coarse level (row-major if ``by_rows`` else column-major).
+
+    Returns (index (R + 2, C + 2) int64, -1 off the unknowns; cells (n, 2)
+    padded (row, col) per number; half bandwidth).
+    """
+    r2, c2 = A.shape[1], A.shape[2]
+    index = -np.ones((r2, c2), dtype=np.int64)
+    n = 0
+    for i in range(1, r2 - 1):
+        for j in range(1, c2 - 1):
+            if A[0, i, j] > 0.0:
+                n += 1
+    cells = np.zeros((n, 2), dtype=np.int64)
+    k = 0
+    if by_rows:
+        for i in range(1, r2 - 1):
+            for j in range(1, c2 - 1):
+                if A[0, i, j] > 0.0:
+                    index[i, j] = k
+                    cells[k, 0] = i
+                    cells[k, 1] = j
+                    k += 1
+    else:
+        for j in range(1, c2 - 1):
+            for i in range(1, r2 - 1):
+                if A[0, i, j] > 0.0:
+                    index[i, j] = k
+                    cells[k, 0] = i
+                    cells[k, 1] = j
+                    k += 1
+    bw = 0
+    for k in range(n):
+        i = cells[k, 0]
+        j = cells[k, 1]
+        for di in range(-1, 2):
+            for dj in range(-1, 2):
+                m = index[i + di, j + dj]
+                if m >= 0:
+                    bw = max(bw, abs(m - k))
+    return index, cells, bw
+
+
+@kernel
+def band_factor(A, index, cells, bw):
+    """Cholesky factor L of the coarsest operator in lower band storage: L[k, d] = L(k, k - d).
+
+    Returns (L, ok); ok is False if a pivot was not positive (the operator is
+    then not positive definite).
+    """
+    n = cells.shape[0]
+    L = np.zeros((n, bw + 1))
+    for k in range(n):
+        i = cells[k, 0]
+        j = cells[k, 1]
+        for di in range(-1, 2):
+            for dj in range(-1, 2):
+                m = index[i + di, j + dj]
+                if m < 0 or m > k:
+                    continue
+                if di == 0 and dj == 0:
+                    v = A[0, i, j]
+                elif di == 0 and dj == -1:
+                    v = A[1, i, j - 1]
+                elif di == 0 and dj == 1:
+                    v = A[1, i, j]
+                elif di == -1 and dj == 0:
+                    v = A[2, i - 1, j]
+                elif di == 1 and dj == 0:
+                    v = A[2, i, j]
+                elif di == -1 and dj == -1:
+                    v = A[3, i - 1, j - 1]
+                elif di == 1 and dj == 1:
+                    v = A[3, i, j]
+                elif di == -1 and dj == 1:
+                    v = A[4, i - 1, j + 1]
+                else:
+                    v = A[4, i, j]
+                L[k, k - m] = v
+    ok = True
+    for k in range(n):
+        # L(k, m) for m = k - bw .. k
+        for d in range(bw, -1, -1):
+            m = k - d
+            if m < 0:
+                continue
+            s = L[k, d]
+            lo = max(0, k - bw, m - bw)
+            for t in range(lo, m):
+                s -= L[k, k - t] * L[m, m - t]
+            if d == 0:
+                if not s > 0.0:
+                    ok = False
+                    s = 1.0
+                L[k, 0] = np.sqrt(s)
+            else:
+                L[k, d] = s / L[m, 0]
+    return L, ok
+
+
+@kernel
+def band_solve(L, cells, bw, f, e):
+    """e = A^{-1} f on the coarsest level (f, e padded grids; e is overwritten on the unknowns)."""
+    n = cells.shape[0]
+    x = np.empty(n)
+    for k in range(n):
+        s = f[cells[k, 0], cells[k, 1]]
+        for t in range(max(0, k - bw), k):
+            s -= L[k, k - t] * x[t]
+        x[k] = s / L[k, 0]
+    for k in range(n - 1, -1, -1):
+        s = x[k]
+        for t in range(k + 1, min(n, k + bw + 1)):
+            s -= L[t, t - k] * x[t]
+        x[k] = s / L[k, 0]
+    for k in range(n):
+        e[cells[k, 0], cells[k, 1]] = x[k]
