@@ -27,7 +27,7 @@ from relaxtui import stopping
 from relaxtui.errors import UsageError
 from relaxtui.methods import get_method
 
-CHUNK_SECONDS = 0.03  # target duration of one chunk of sweeps
+CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK = 1000  # most sweeps in one chunk
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
@@ -372,17 +372,16 @@ class Run:
         d = self.rule.last
         cap = MAX_CHUNK_UNSETTLED
         if d.eta_sweeps is not None and math.isfinite(d.estimated_error):
-            # half the predicted remainder, and at most a tenth of the sweeps so far,
-            # so that a pessimistic prediction cannot make the run overshoot by much
-            cap = int(min(MAX_CHUNK, max(4, min(d.eta_sweeps / 2, 0.1 * self.rule.sweeps + 8))))
+            # half the predicted remainder, so the run cannot overshoot its tolerance by much
+            cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
         remaining = self.max_sweeps - self.rule.sweeps
-        return max(1, min(n, cap, int(0.1 * self.rule.sweeps) + 8, remaining, MAX_CHUNK))
+        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, MAX_CHUNK))
 
     def _maybe_correct_omega(self) -> None:
         """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""
         if self._omega_request != "auto" or self.mu is None or self._corrections >= MAX_OMEGA_CORRECTIONS:
             return
-        est = self.rule.estimate()
+        est = self.rule.last_estimate
         predicted = self.method_info.factor(self.mu, self.omega)
         meas = est.measured
         if not est.mature or meas is None or not 0.0 < meas < 1.0:

@@ -69,6 +69,7 @@ ERROR_SAFETY = 2.0  # the geometric tail is multiplied by this
 FLOOR_ULPS = 64.0  # updates below FLOOR_ULPS * eps * scale are rounding noise
 STALL_MIN_WINDOW = 500  # sweeps without a new smallest update before "stalled"
 GROWTH_LIMIT = 1e6  # sustained growth by this factor over the best update is divergence
+_EPS = float(np.finfo(float).eps)
 
 
 @dataclass(frozen=True)
@@ -211,9 +212,11 @@ class StoppingRule:
         self._updates = np.empty(1024)
         self._n = 0
         self._segment = 0  # index where the current segment (same iteration) starts
-        self._best = math.inf
-        self._best_at = 0
+        self._best = math.inf  # smallest update of the current segment
         self.last = Decision(None, math.inf, None, None)
+        self.last_estimate = Estimate(math.inf, None, None, False)  # the raw estimate behind ``last``
+        self._latest: Estimate | None = None
+        self._chunk_errors = np.empty(0)
 
     # -- feeding ---------------------------------------------------------------
     def add(self, updates) -> None:
@@ -225,21 +228,30 @@ class StoppingRule:
             grown[: self._n] = self._updates[: self._n]
             self._updates = grown
         self._updates[self._n : need] = updates
-        # "best" moves only on a 1 % improvement; the stall test watches it
-        for i in np.flatnonzero(updates < self._best * 0.99):
-            if updates[i] < self._best * 0.99:
-                self._best = float(updates[i])
-                self._best_at = self._n + int(i)
         self._n = need
+        if len(updates):
+            self._best = min(self._best, float(np.min(updates)))
+        # one vectorised estimate per chunk: the history's per-sweep bounds and the latest one
+        seg = self._updates[self._segment : self._n]
+        k = min(len(updates), len(seg))
+        if k:
+            e, f, meas, mature = estimates(seg, np.arange(len(seg) - k, len(seg)),
+                                           prior_factor=self.prior_factor, prior_gap=self.prior_gap)
+            self._chunk_errors = e
+            last_ok = math.isfinite(float(seg[-1]))
+            self._latest = Estimate(float(e[-1]) if last_ok else math.inf,
+                                    None if math.isnan(f[-1]) or not last_ok else float(f[-1]),
+                                    None if math.isnan(meas[-1]) or not last_ok else float(meas[-1]),
+                                    bool(mature[-1]) and last_ok)
 
     def restart(self, prior_factor: float | None = None, prior_gap: float | None = None) -> None:
         """The iteration changed (new ω, new method): measure rates afresh from here."""
         self._segment = self._n
+        self._latest = None
         self.prior_factor = prior_factor
         self.prior_gap = prior_gap
         self._settled_factor = None
         self._best = math.inf
-        self._best_at = self._n
 
     @property
     def sweeps(self) -> int:
@@ -251,20 +263,18 @@ class StoppingRule:
 
     # -- deciding --------------------------------------------------------------
     def recent_errors(self, count: int) -> np.ndarray:
-        """The error bound after each of the last ``count`` sweeps (for the history)."""
-        seg = self._updates[self._segment : self._n]
-        count = min(count, len(seg))
-        if count <= 0:
-            return np.empty(0)
-        ends = np.arange(len(seg) - count, len(seg))
-        return estimates(seg, ends, prior_factor=self.prior_factor, prior_gap=self.prior_gap)[0]
+        """The error bound after each of the sweeps of the last :meth:`add` (for the history)."""
+        return self._chunk_errors[-count:] if count > 0 else np.empty(0)
 
     def estimate(self) -> Estimate:
-        return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor, prior_gap=self.prior_gap)
+        """The estimate after the latest sweep (computed once per :meth:`add`)."""
+        if self._latest is None:
+            return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor, prior_gap=self.prior_gap)
+        return self._latest
 
     def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
         """The decision after the sweeps fed so far (``seconds`` of solving)."""
-        est = self.estimate()
+        est = self.last_estimate = self.estimate()
         if est.mature and est.factor is not None:
             self._settled_factor = est.factor
         elif self._at_floor() and self._settled_factor is not None:
@@ -320,7 +330,7 @@ class StoppingRule:
         """Whether the last updates are at the float64 rounding floor of the field."""
         if self._n - self._segment < MIN_WINDOW:
             return False
-        floor = FLOOR_ULPS * np.finfo(float).eps * self.scale
+        floor = FLOOR_ULPS * _EPS * self.scale
         return float(self._updates[self._n - MIN_WINDOW : self._n].max()) <= floor
 
     def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
@@ -332,4 +342,8 @@ class StoppingRule:
         if est.factor is not None and 0.0 < est.factor < 1.0:
             # at the measured rate a 1 % improvement takes about 0.01/(1 - rho) sweeps
             window = max(window, int(5.0 / (1.0 - est.factor)))
-        return self._n - self._best_at > window
+        if len(seg) <= window:
+            return False
+        # no progress: the last `window` sweeps never beat the best before them by 1 %
+        before = float(np.min(seg[: len(seg) - window]))
+        return float(np.min(seg[len(seg) - window :])) >= 0.99 * before
