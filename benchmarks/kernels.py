@@ -296,10 +296,13 @@ def run(quick: bool = False, size: int | None = None) -> list[dict]:
     n = size or (1024 if quick else 4096)
     calls = 5 if quick else 7
     sweeps = 4
+    before = os.getloadavg()[0]
     rows = speed_rows(n, calls, sweeps)
     rows += assembly_rows(n)
     rows += memory_rows(n)
     rows += load_rows()
+    rows.append(row("load average (1 min) before / after", f"{before:.2f} / {os.getloadavg()[0]:.2f}", "",
+                    "other processes share the cores; this run's own threads add up to 2"))
     return rows
 
 
