@@ -12,8 +12,9 @@ weight 0 for every neighbour that is not an unknown) is a function of the
 5-tuple (region of P, regions of its 4 neighbours). Each distinct tuple is a
 *class*; the operator stores
 
-- ``cls``: one class code per cell (uint8 when there are at most 255 classes,
-  else uint16/uint32; 0 = not an unknown), padded by one cell on every side;
+- ``cls``: one class code per cell (0 = not an unknown; uint8 while there
+  are at most 255 other classes, else uint16/uint32), padded by one cell on
+  every side;
 - ``table``: (classes, 5) float64, the weights and q of each class; ``diag``: D;
 - row *segments*: each padded row cut into bulk runs (one class over at
   least ``MIN_RUN`` cells: the sweep loads five scalars once and streams only
@@ -32,7 +33,9 @@ read of them is harmless and border cells need no bounds checks.
 
 Assembly (:mod:`relaxtui.kernels.assemble`) is compiled and parallel: bulk
 cells (all 5 regions equal) take their region's class at once; the others are
-keyed, the keys sorted with ``numpy.unique`` and found by binary search.
+keyed, the distinct keys sorted, and each such cell finds its class by binary
+search. Every 4-connected group of interior cells is checked for a fixed or
+convection face (union-find over horizontal runs).
 
 Numba is imported only when an Operator is built.
 """
