@@ -108,28 +108,73 @@ def _block0(cls, table, ptab, pflag, I, J, w):
 
 
 @kernel(inline=True)
-def _residual_row0(u, cls, table, diag, i, out):
-    """out[j + 1] = unnormalised residual D (Σ w u + q - u) of fine cell (i, j) (0 off the unknowns)."""
-    cols = u.shape[1] - 2
-    out[0] = 0.0
-    out[cols + 1] = 0.0
+def _res_bulk(up, mid, dn, out, wn, ws, ww, we, q, d):
+    for k in range(out.shape[0]):
+        out[k] = d * (((((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]) + q) - mid[k + 1])
+
+
+@kernel(inline=True)
+def _res_mixed(up, mid, dn, out, crow, table, diag):
+    for k in range(out.shape[0]):
+        c = crow[k]
+        s = (((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]) + table[c, 4]
+        out[k] = diag[c] * (s - mid[k + 1]) if c != 0 else 0.0
+
+
+@kernel(inline=True)
+def _residual_row0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, i, out):
+    """out[j + 1] = unnormalised residual D (Σ w u + q - u) of fine cell (i, j) (0 off the unknowns).
+
+    Walks the operator's row segments (see :mod:`relaxtui.kernels.sweeps`):
+    a bulk run loads its weights once, a mixed stretch gathers them per cell.
+    """
+    for j in range(out.shape[0]):
+        out[j] = 0.0
     if i < 0 or i >= u.shape[0] - 2:
-        for j in range(cols + 2):
-            out[j] = 0.0
         return
     pi = i + 1
     up = u[pi - 1]
     mid = u[pi]
     dn = u[pi + 1]
     crow = cls[pi]
-    for pj in range(1, cols + 1):
-        c = crow[pj]
-        s = (((table[c, 0] * up[pj] + table[c, 1] * dn[pj]) + table[c, 2] * mid[pj - 1]) + table[c, 3] * mid[pj + 1]) + table[c, 4]
-        out[pj] = diag[c] * (s - mid[pj]) if c != 0 else 0.0
+    for s in range(row_ptr[pi], row_ptr[pi + 1]):
+        j0 = seg_start[s]
+        j1 = seg_end[s]
+        c = seg_class[s]
+        if c > 0:
+            _res_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], out[j0:j1],
+                      table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], diag[c])
+        else:
+            _res_mixed(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], out[j0:j1], crow[j0:j1], table, diag)
+
+
+@kernel(inline=True)
+def _gather(fc_row, rp, rc, rn, wp, wc):
+    """One coarse row of the restriction: fc_row[J + 1] = Σ P(p, (I, J)) r(p) over the 3 x 3 fine cells.
+
+    rp, rc, rn: fine residual rows 2I - 1, 2I, 2I + 1 (padded columns);
+    wp, wc: block weights of block rows I - 1 and I, planar (8, Cc + 2), block J at [J + 1].
+    """
+    cc = fc_row.shape[0] - 2
+    rc0 = rc[1::2]  # fine column 2J (C cells) at J
+    rc1 = rc[2::2]  # fine column 2J + 1 at J
+    rcm = rc[0::2]  # fine column 2J - 1 at J
+    rn0 = rn[1::2]
+    rn1 = rn[2::2]
+    rnm = rn[0::2]
+    rp0 = rp[1::2]
+    rp1 = rp[2::2]
+    rpm = rp[0::2]
+    for J in range(cc):
+        s = rc0[J] + wc[0, J + 1] * rc1[J] + wc[1, J] * rcm[J]
+        s += wc[2, J + 1] * rn0[J] + wp[3, J + 1] * rp0[J]
+        s += wc[4, J + 1] * rn1[J] + wc[5, J] * rnm[J]
+        s += wp[6, J + 1] * rp1[J] + wp[7, J] * rpm[J]
+        fc_row[J + 1] = s
 
 
 @kernel(parallel=True)
-def restrict0(u, cls, table, diag, ptab, pflag, fc, nblk):
+def restrict0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, ptab, pflag, fc, nblk):
     """fc (level-1 padded) = P^T (b - A u) on the coarse cells: the restricted unnormalised residual.
 
     Coarse rows are split into ``nblk`` blocks; within a block the fine
@@ -147,31 +192,23 @@ def restrict0(u, cls, table, diag, ptab, pflag, fc, nblk):
         r_prev = np.zeros(cols + 2)  # fine row 2I - 1
         r_cur = np.zeros(cols + 2)  # fine row 2I
         r_next = np.zeros(cols + 2)  # fine row 2I + 1
-        w_prev = np.zeros((cc + 2, 8))  # block row I - 1, block J at [J + 1]
-        w_cur = np.zeros((cc + 2, 8))
+        w_prev = np.zeros((8, cc + 2))  # block row I - 1, block J at [:, J + 1]
+        w_cur = np.zeros((8, cc + 2))
         wb = np.zeros(8)
-        _residual_row0(u, cls, table, diag, 2 * I0 - 1, r_prev)
+        _residual_row0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, 2 * I0 - 1, r_prev)
         if I0 > 0:
             for J in range(cc):
                 _block0(cls, table, ptab, pflag, I0 - 1, J, wb)
                 for k in range(8):
-                    w_prev[J + 1, k] = wb[k]
+                    w_prev[k, J + 1] = wb[k]
         for I in range(I0, I1):
-            _residual_row0(u, cls, table, diag, 2 * I, r_cur)
-            _residual_row0(u, cls, table, diag, 2 * I + 1, r_next)
+            _residual_row0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, 2 * I, r_cur)
+            _residual_row0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, 2 * I + 1, r_next)
             for J in range(cc):
                 _block0(cls, table, ptab, pflag, I, J, wb)
                 for k in range(8):
-                    w_cur[J + 1, k] = wb[k]
-            frow = fc[I + 1]
-            for J in range(cc):
-                j = 2 * J + 1  # padded column of fine column 2J
-                s = r_cur[j]
-                s += w_cur[J + 1, 0] * r_cur[j + 1] + w_cur[J, 1] * r_cur[j - 1]
-                s += w_cur[J + 1, 2] * r_next[j] + w_prev[J + 1, 3] * r_prev[j]
-                s += w_cur[J + 1, 4] * r_next[j + 1] + w_cur[J, 5] * r_next[j - 1]
-                s += w_prev[J + 1, 6] * r_prev[j + 1] + w_prev[J, 7] * r_prev[j - 1]
-                frow[J + 1] = s
+                    w_cur[k, J + 1] = wb[k]
+            _gather(fc[I + 1], r_prev, r_cur, r_next, w_prev, w_cur)
             r_prev, r_next = r_next, r_prev
             w_prev, w_cur = w_cur, w_prev
 
@@ -210,35 +247,21 @@ def prolong0(u, cls, table, ptab, pflag, ec, nblk):
 
 
 @kernel(parallel=True)
-def finish0(u, u_old, cls, table, nblk):
-    """After a cycle: the largest |u - u_old| and the largest contract residual; then u_old = u.
-
-    Returns (update, residual) in field units (NaN if any update was not finite).
-    """
-    n = u.shape[0] - 2
-    cols = u.shape[1] - 2
+def delta_copy(u, u_old, nblk):
+    """The largest |u - u_old| (NaN if any is not finite), then u_old = u; 2-D arrays of one shape."""
+    n = u.shape[0]
     bu = np.zeros(nblk, dtype=np.int64)
-    br = np.zeros(nblk, dtype=np.int64)
     for b in prange(nblk):
         mu = 0
-        mr = 0
-        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            up = u[pi - 1]
-            mid = u[pi]
-            dn = u[pi + 1]
-            old = u_old[pi]
-            crow = cls[pi]
-            for pj in range(1, cols + 1):
-                c = crow[pj]
-                v = mid[pj]
-                s = (((table[c, 0] * up[pj] + table[c, 1] * dn[pj]) + table[c, 2] * mid[pj - 1]) + table[c, 3] * mid[pj + 1]) + table[c, 4]
-                r = s - v if c != 0 else 0.0
-                mu = max(mu, abs_bits(v - old[pj]))
-                mr = max(mr, abs_bits(r))
-                old[pj] = v
+        for i in range(b * n // nblk, (b + 1) * n // nblk):
+            new = u[i]
+            old = u_old[i]
+            for j in range(new.shape[0]):
+                v = new[j]
+                mu = max(mu, abs_bits(v - old[j]))
+                old[j] = v
         bu[b] = mu
-        br[b] = mr
-    return from_bits(bu.max()), from_bits(br.max())
+    return from_bits(bu.max())
 
 
 @kernel(parallel=True)
@@ -286,8 +309,22 @@ def _p_of_cell(w_block, i, j, live_c, out):
 
 
 @kernel(inline=True)
-def _prow0(cls, table, ptab, pflag, i, prow, wb, cell):
-    """prow[j + 1, :] = interpolation row of level-0 cell (i, j); zeros for rows outside the grid."""
+def _block_row0(cls, table, ptab, pflag, I, wrow):
+    """wrow[J + 1] = the 8 weights of block (I, J) of level 0, for every J (zeros outside the grid)."""
+    cc = wrow.shape[0] - 2
+    rc = (cls.shape[0] - 1) // 2  # (rows + 1) // 2
+    for J in range(cc + 2):
+        for k in range(8):
+            wrow[J, k] = 0.0
+    if I < 0 or I >= rc:
+        return
+    for J in range(cc):
+        _block0(cls, table, ptab, pflag, I, J, wrow[J + 1])
+
+
+@kernel(inline=True)
+def _prow0(cls, wrow, i, prow, cell):
+    """prow[j + 1, :] = interpolation row of level-0 cell (i, j); wrow holds block row i // 2."""
     rows = cls.shape[0] - 2
     cols = cls.shape[1] - 2
     for j in range(cols + 2):
@@ -296,8 +333,7 @@ def _prow0(cls, table, ptab, pflag, i, prow, wb, cell):
     if i < 0 or i >= rows:
         return
     for j in range(cols):
-        _block0(cls, table, ptab, pflag, i // 2, j // 2, wb)
-        _p_of_cell(wb, i, j, cls[i + 1, j + 1] != 0, cell)
+        _p_of_cell(wrow[(j >> 1) + 1], i, j, cls[i + 1, j + 1] != 0, cell)
         for k in range(4):
             prow[j + 1, k] = cell[k]
 
@@ -336,7 +372,7 @@ def _prow9(P, A, i, prow, wb, cell):
         return
     for j in range(cols):
         for k in range(8):
-            wb[k] = P[k, i // 2 + 1, j // 2 + 1]
+            wb[k] = P[k, (i >> 1) + 1, (j >> 1) + 1]
         _p_of_cell(wb, i, j, A[0, i + 1, j + 1] > 0.0, cell)
         for k in range(4):
             prow[j + 1, k] = cell[k]
@@ -369,83 +405,93 @@ def _arow9(A, i, arow):
 
 
 @kernel(inline=True)
-def _galerkin_row(prows, arows, I, cols_f, Ac):
+def _galerkin_row(prows, arows, I, cols_f, acc, Ac, five):
     """Coarse row I of P^T A P into Ac (the 5 stored planes).
 
-    ``prows[m]`` is the interpolation row buffer of fine row 2I - 2 + m
-    (m = 0..4), ``arows[m]`` the stencil buffer of fine row 2I - 1 + m (m = 0..2).
+    Ring buffers: fine row r's interpolation rows are in ``prows[(r + 2) % 5]``
+    (rows 2I - 2 .. 2I + 2 needed), its stencil in ``arows[(r + 1) % 3]``
+    (rows 2I - 1 .. 2I + 1). ``acc`` is a (4, 4) scratch array: the
+    contribution to coarse cell (I + di, J + dj) goes to acc[di + 1, dj + 1].
+    With ``five`` the fine stencil is known to be 5-point (level 0).
     """
     cc = Ac.shape[2] - 2
+    pslot = np.empty(5, dtype=np.int64)
+    for m in range(5):
+        pslot[m] = (2 * I + m) % 5  # fine row 2I - 2 + m
     for J in range(cc):
-        s0 = 0.0
-        se = 0.0
-        ss = 0.0
-        sse = 0.0
-        ssw = 0.0
-        for dpi in range(-1, 2):
-            p_i = 2 * I + dpi
-            a = 1 if dpi < 0 else 0
-            for dpj in range(-1, 2):
-                p_j = 2 * J + dpj
+        for x in range(4):
+            for y in range(4):
+                acc[x, y] = 0.0
+        for dpi in range(3):  # fine row 2I - 1 + dpi
+            arow = arows[(2 * I + dpi) % 3]
+            prow_p = prows[pslot[dpi + 1]]
+            a = 1 if dpi == 0 else 0
+            for dpj in range(3):
+                p_j = 2 * J - 1 + dpj
                 if p_j < 0 or p_j >= cols_f:
                     continue
-                bcol = 1 if dpj < 0 else 0
-                w = prows[dpi + 2, p_j + 1, 2 * a + bcol]
+                w = prow_p[p_j + 1, 2 * a + (1 if dpj == 0 else 0)]
                 if w == 0.0:
                     continue
+                ap = arow[p_j + 1]
                 for k in range(9):
-                    apq = arows[dpi + 1, p_j + 1, k]
+                    if five and (k & 1) == 0 and k != 4:
+                        continue
+                    apq = ap[k]
                     if apq == 0.0:
                         continue
-                    q_i = p_i + k // 3 - 1
-                    q_j = p_j + k % 3 - 1
-                    m = q_i - (2 * I - 2)
+                    ki = k // 3
+                    kj = k - 3 * ki
+                    q_j = p_j + kj - 1
+                    prq = prows[pslot[dpi + ki], q_j + 1]
                     wa = w * apq
-                    for a2 in range(2):
-                        di = (q_i >> 1) + a2 - I
-                        if di < 0:
-                            continue
-                        for b2 in range(2):
-                            wq = prows[m, q_j + 1, 2 * a2 + b2]
-                            if wq == 0.0:
-                                continue
-                            dj = (q_j >> 1) + b2 - J
-                            v = wa * wq
-                            if di == 0:
-                                if dj == 0:
-                                    s0 += v
-                                elif dj == 1:
-                                    se += v
-                            elif di == 1:
-                                if dj == 0:
-                                    ss += v
-                                elif dj == 1:
-                                    sse += v
-                                elif dj == -1:
-                                    ssw += v
-        Ac[0, I + 1, J + 1] = s0
-        Ac[1, I + 1, J + 1] = se
-        Ac[2, I + 1, J + 1] = ss
-        Ac[3, I + 1, J + 1] = sse
-        Ac[4, I + 1, J + 1] = ssw
+                    di = ((2 * I - 2 + dpi + ki) >> 1) - I + 1
+                    dj = (q_j >> 1) - J + 1
+                    acc[di, dj] += wa * prq[0]
+                    acc[di, dj + 1] += wa * prq[1]
+                    acc[di + 1, dj] += wa * prq[2]
+                    acc[di + 1, dj + 1] += wa * prq[3]
+        Ac[0, I + 1, J + 1] = acc[1, 1]
+        Ac[1, I + 1, J + 1] = acc[1, 2]
+        Ac[2, I + 1, J + 1] = acc[2, 1]
+        Ac[3, I + 1, J + 1] = acc[2, 2]
+        Ac[4, I + 1, J + 1] = acc[2, 0]
 
 
 @kernel(parallel=True)
 def galerkin0(cls, table, diag, ptab, pflag, Ac, nblk):
-    """Ac (5, Rc + 2, Cc + 2), zero on entry: the level-1 Galerkin operator P^T A P of level 0."""
+    """Ac (5, Rc + 2, Cc + 2), zero on entry: the level-1 Galerkin operator P^T A P of level 0.
+
+    Each row block walks its coarse rows in order and keeps the fine rows it
+    needs in ring buffers, so every fine row is processed once per block.
+    """
     rc = Ac.shape[1] - 2
+    cc = Ac.shape[2] - 2
     cols = cls.shape[1] - 2
     for b in prange(nblk):
+        I0 = b * rc // nblk
+        I1 = (b + 1) * rc // nblk
+        if I1 <= I0:
+            continue
         prows = np.zeros((5, cols + 2, 4))
         arows = np.zeros((3, cols + 2, 9))
-        wb = np.zeros(8)
+        wrow = np.zeros((cc + 2, 8))
         cell = np.zeros(4)
-        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
-            for m in range(5):
-                _prow0(cls, table, ptab, pflag, 2 * I - 2 + m, prows[m], wb, cell)
-            for m in range(3):
-                _arow0(cls, table, diag, 2 * I - 1 + m, arows[m])
-            _galerkin_row(prows, arows, I, cols, Ac)
+        acc = np.zeros((4, 4))
+        block_row = -(1 << 30)
+        next_p = 2 * I0 - 2
+        next_a = 2 * I0 - 1
+        for I in range(I0, I1):
+            while next_p <= 2 * I + 2:
+                if (next_p >> 1) != block_row:
+                    block_row = next_p >> 1
+                    _block_row0(cls, table, ptab, pflag, block_row, wrow)
+                _prow0(cls, wrow, next_p, prows[(next_p + 2) % 5], cell)
+                next_p += 1
+            while next_a <= 2 * I + 1:
+                _arow0(cls, table, diag, next_a, arows[(next_a + 1) % 3])
+                next_a += 1
+            _galerkin_row(prows, arows, I, cols, acc, Ac, True)
 
 
 @kernel(parallel=True)
@@ -454,16 +500,25 @@ def galerkin9(A, P, Ac, nblk):
     rc = Ac.shape[1] - 2
     cols = A.shape[2] - 2
     for b in prange(nblk):
+        I0 = b * rc // nblk
+        I1 = (b + 1) * rc // nblk
+        if I1 <= I0:
+            continue
         prows = np.zeros((5, cols + 2, 4))
         arows = np.zeros((3, cols + 2, 9))
         wb = np.zeros(8)
         cell = np.zeros(4)
-        for I in range(b * rc // nblk, (b + 1) * rc // nblk):
-            for m in range(5):
-                _prow9(P, A, 2 * I - 2 + m, prows[m], wb, cell)
-            for m in range(3):
-                _arow9(A, 2 * I - 1 + m, arows[m])
-            _galerkin_row(prows, arows, I, cols, Ac)
+        acc = np.zeros((4, 4))
+        next_p = 2 * I0 - 2
+        next_a = 2 * I0 - 1
+        for I in range(I0, I1):
+            while next_p <= 2 * I + 2:
+                _prow9(P, A, next_p, prows[(next_p + 2) % 5], wb, cell)
+                next_p += 1
+            while next_a <= 2 * I + 1:
+                _arow9(A, next_a, arows[(next_a + 1) % 3])
+                next_a += 1
+            _galerkin_row(prows, arows, I, cols, acc, Ac, False)
 
 
 # --- coarse levels: interpolation weights -------------------------------------------------
@@ -643,30 +698,35 @@ def smooth9(e, f, A, omega, sweeps, reverse, nblk):
 
 
 @kernel(inline=True)
+def _res9(a0, ae, aw, a_s, an, ase, anw, asw, ane, up, mid, dn, f, out):
+    # a*, f and out are the row's cells; up/mid/dn carry one halo cell at each end; west/north-west
+    # couplings (aw = ae shifted, anw) and north-east (ane) are read from neighbours' planes
+    for k in range(out.shape[0]):
+        d = a0[k]
+        s = ((d * mid[k + 1] + ae[k] * mid[k + 2]) + aw[k] * mid[k]) + ((a_s[k] * dn[k + 1] + an[k] * up[k + 1])
+             + ((ase[k] * dn[k + 2] + anw[k] * up[k]) + (asw[k] * dn[k] + ane[k] * up[k + 2])))
+        out[k] = f[k] - s if d > 0.0 else 0.0
+
+
+@kernel(inline=True)
 def _residual_row9(e, f, A, i, out):
     """out[j + 1] = f - A e at cell (i, j) of a coarse level (0 off the unknowns and outside the grid)."""
     cols = e.shape[1] - 2
-    out[0] = 0.0
-    out[cols + 1] = 0.0
+    for j in range(out.shape[0]):
+        out[j] = 0.0
     if i < 0 or i >= e.shape[0] - 2:
-        for j in range(cols + 2):
-            out[j] = 0.0
         return
     pi = i + 1
-    for pj in range(1, cols + 1):
-        d = A[0, pi, pj]
-        s = (d * e[pi, pj] + A[1, pi, pj] * e[pi, pj + 1] + A[1, pi, pj - 1] * e[pi, pj - 1]
-             + A[2, pi, pj] * e[pi + 1, pj] + A[2, pi - 1, pj] * e[pi - 1, pj]
-             + A[3, pi, pj] * e[pi + 1, pj + 1] + A[3, pi - 1, pj - 1] * e[pi - 1, pj - 1]
-             + A[4, pi, pj] * e[pi + 1, pj - 1] + A[4, pi - 1, pj + 1] * e[pi - 1, pj + 1])
-        out[pj] = f[pi, pj] - s if d > 0.0 else 0.0
+    n = cols
+    _res9(A[0, pi, 1 : n + 1], A[1, pi, 1 : n + 1], A[1, pi, 0:n], A[2, pi, 1 : n + 1], A[2, pi - 1, 1 : n + 1],
+          A[3, pi, 1 : n + 1], A[3, pi - 1, 0:n], A[4, pi, 1 : n + 1], A[4, pi - 1, 2 : n + 2],
+          e[pi - 1], e[pi], e[pi + 1], f[pi, 1 : n + 1], out[1 : n + 1])
 
 
 @kernel(parallel=True)
 def restrict9(e, f, A, P, fc, nblk):
     """fc (next level, padded) = P^T (f - A e) of a coarse level."""
     rc = fc.shape[0] - 2
-    cc = fc.shape[1] - 2
     cols = e.shape[1] - 2
     for b in prange(nblk):
         I0 = b * rc // nblk
@@ -680,15 +740,7 @@ def restrict9(e, f, A, P, fc, nblk):
         for I in range(I0, I1):
             _residual_row9(e, f, A, 2 * I, r_cur)
             _residual_row9(e, f, A, 2 * I + 1, r_next)
-            frow = fc[I + 1]
-            for J in range(cc):
-                j = 2 * J + 1
-                s = r_cur[j]
-                s += P[0, I + 1, J + 1] * r_cur[j + 1] + P[1, I + 1, J] * r_cur[j - 1]
-                s += P[2, I + 1, J + 1] * r_next[j] + P[3, I, J + 1] * r_prev[j]
-                s += P[4, I + 1, J + 1] * r_next[j + 1] + P[5, I + 1, J] * r_next[j - 1]
-                s += P[6, I, J + 1] * r_prev[j + 1] + P[7, I, J] * r_prev[j - 1]
-                frow[J + 1] = s
+            _gather(fc[I + 1], r_prev, r_cur, r_next, P[:, I], P[:, I + 1])
             r_prev, r_next = r_next, r_prev
 
 

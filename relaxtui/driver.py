@@ -214,7 +214,9 @@ class Run:
         self._res = np.empty(MAX_CHUNK)
         # compile (or load from cache) before the clock starts
         self._stepper.sweep(self._u, self.omega if self._omega_request != "auto" else 1.0, 0, self._upd, self._res)
-        self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale())
+        # a stepper may ask for its own rate window and envelope (multigrid: see relaxtui.multigrid)
+        self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale(),
+                                          **getattr(self._stepper, "rule_options", {}))
         self._choose_omega(self._omega_request)
         self._prepared = True
         self.prepare_seconds = time.perf_counter() - t0
@@ -375,7 +377,9 @@ class Run:
             # half the predicted remainder, so the run cannot overshoot its tolerance by much
             cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
         remaining = self.max_sweeps - self.rule.sweeps
-        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, MAX_CHUNK))
+        # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
+        most = getattr(self._stepper, "max_chunk", MAX_CHUNK)
+        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, most))
 
     def _maybe_correct_omega(self) -> None:
         """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""

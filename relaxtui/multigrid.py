@@ -131,6 +131,9 @@ class Hierarchy:
 class MultigridStepper:
     """``sweep`` runs multigrid cycles on the operator's working field (one cycle = one "sweep")."""
 
+    rule_options = {"min_window": 2, "envelope": 1}
+    max_chunk = 1
+
     def __init__(self, operator, *, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS, gamma: int = 1,
                  coarsest: int = COARSEST_UNKNOWNS):
         self.operator = operator
@@ -159,17 +162,16 @@ class MultigridStepper:
             return
         op.sweep(u, "red-black-sor", omega, self.pre, self._scratch, self._scratch2)
         L1 = h.levels[0]
-        mg.restrict0(u, op.cls, op.table, op.diag, h.ptab, h.pflag, L1.f, L1.nblk if False else h.nblk0)
+        mg.restrict0(u, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
+                     L1.f, h.nblk0)
         mg.zero_fill(L1.e, L1.nblk)
         h.cycle_coarse(0, omega, self.pre, self.post, self.gamma)
         mg.prolong0(u, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
-        if self.post:
-            op.sweep(u, "red-black-sor", omega, self.post, self._scratch, self._scratch2)
+        op.sweep(u, "red-black-sor", omega, max(self.post, 1), self._scratch, self._scratch2)
 
     def sweep(self, u, omega, sweeps, updates, residuals) -> int:
         from relaxtui.kernels import multigrid as mg
 
-        op = self.operator
         key = (u.__array_interface__["data"][0], u.shape)
         if self._synced != key:
             mg.copy_into(u, self.u_old, self.h.nblk0)
@@ -177,9 +179,9 @@ class MultigridStepper:
         done = 0
         for k in range(sweeps):
             self.cycle(u, omega)
-            du, res = mg.finish0(u, self.u_old, op.cls, op.table, self.h.nblk0)
+            du = mg.delta_copy(u, self.u_old, self.h.nblk0)
             updates[k] = du
-            residuals[k] = res
+            residuals[k] = self._scratch2[max(self.post, 1) - 1]  # the last relaxation sweep's largest residual
             done = k + 1
             if not math.isfinite(du):
                 break

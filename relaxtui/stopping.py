@@ -80,14 +80,15 @@ class Decision:
     eta_sweeps: float | None  # sweeps still needed to reach the tolerance at the current factor
 
 
-def _envelope_at(u: np.ndarray, idx: np.ndarray) -> np.ndarray:
-    """Running maximum of ``u`` over the ENVELOPE entries ending at each index."""
-    offsets = np.arange(-(ENVELOPE - 1), 1)
+def _envelope_at(u: np.ndarray, idx: np.ndarray, envelope: int = ENVELOPE) -> np.ndarray:
+    """Running maximum of ``u`` over the ``envelope`` entries ending at each index."""
+    offsets = np.arange(-(envelope - 1), 1)
     cols = np.clip(idx[:, None] + offsets[None, :], 0, None)
     return u[cols].max(axis=1)
 
 
-def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = None, prior_gap: float | None = None):
+def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = None, prior_gap: float | None = None,
+              min_window: int = MIN_WINDOW, envelope: int = ENVELOPE):
     """Bound the remaining error after each sweep ``ends`` of one run segment.
 
     Parameters
@@ -108,6 +109,13 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
         ω - 1, but the smooth modes that carry the error rotate slowly, so the
         error is |Δ|/|λ - 1|, far below |Δ|/(1 - |λ|)). Used only while the
         measured factor agrees with ``prior_factor``.
+    min_window, envelope : int, optional
+        The shortest rate window and the running-maximum length (defaults
+        MIN_WINDOW and ENVELOPE, made for relaxation sweeps). An iteration
+        whose updates fall monotonically by a large factor per step (a
+        multigrid cycle) may ask for shorter ones: it then needs fewer steps
+        before the first estimate, and its bound is not inflated by the
+        updates of steps long past.
 
     Returns
     -------
@@ -120,13 +128,13 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
     u = np.asarray(updates, dtype=np.float64)
     n = len(u)
     k = np.atleast_1d(np.asarray(n - 1 if ends is None else ends, dtype=np.int64))
-    m = np.maximum(MIN_WINDOW, (WINDOW_FRACTION * (k + 1)).astype(np.int64))
+    m = np.maximum(min_window, (WINDOW_FRACTION * (k + 1)).astype(np.int64))
     ok = k - 2 * m >= 0
     k0 = np.where(ok, k, 0)
     m0 = np.where(ok, m, 0)
-    e_now = _envelope_at(u, k0)
-    e_mid = _envelope_at(u, k0 - m0)
-    e_old = _envelope_at(u, k0 - 2 * m0)
+    e_now = _envelope_at(u, k0, envelope)
+    e_mid = _envelope_at(u, k0 - m0, envelope)
+    e_old = _envelope_at(u, k0 - 2 * m0, envelope)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         r1 = (np.log(e_mid) - np.log(e_now)) / np.maximum(m0, 1)  # recent decay rate per sweep
         r2 = (np.log(e_old) - np.log(e_mid)) / np.maximum(m0, 1)  # the window before
@@ -172,13 +180,15 @@ class Estimate:
     mature: bool  # whether the decay rate has settled enough to trust the bound
 
 
-def estimate(updates: np.ndarray, *, prior_factor: float | None = None, prior_gap: float | None = None) -> Estimate:
+def estimate(updates: np.ndarray, *, prior_factor: float | None = None, prior_gap: float | None = None,
+             min_window: int = MIN_WINDOW, envelope: int = ENVELOPE) -> Estimate:
     """The estimate after the last sweep of ``updates`` (see :func:`estimates`)."""
     if len(updates) == 0:
         return Estimate(math.inf, None, None, False)
     if not math.isfinite(float(updates[-1])):
         return Estimate(math.inf, None, None, False)
-    e, f, meas, mature = estimates(updates, prior_factor=prior_factor, prior_gap=prior_gap)
+    e, f, meas, mature = estimates(updates, prior_factor=prior_factor, prior_gap=prior_gap,
+                                   min_window=min_window, envelope=envelope)
     fac = None if math.isnan(f[0]) else float(f[0])
     return Estimate(float(e[0]), fac, None if math.isnan(meas[0]) else float(meas[0]), bool(mature[0]))
 
@@ -197,11 +207,19 @@ class StoppingRule:
     scale : float
         Magnitude of the field (largest |value| among boundary values and the
         initial field); sets the floating-point floor of the updates.
+    min_window, envelope : int
+        Shortest rate window and running-maximum length of the estimate (see
+        :func:`estimates`); a stepper may ask for its own (``rule_options``).
     """
 
-    def __init__(self, tolerance: float, max_sweeps: int, time_limit: float | None = None, scale: float = 1.0):
+    def __init__(self, tolerance: float, max_sweeps: int, time_limit: float | None = None, scale: float = 1.0,
+                 min_window: int = MIN_WINDOW, envelope: int = ENVELOPE):
         if not tolerance > 0.0:
             raise ValueError("tolerance must be > 0")
+        if int(min_window) < 1 or int(envelope) < 1:
+            raise ValueError("min_window and envelope must be >= 1")
+        self.min_window = int(min_window)
+        self.envelope = int(envelope)
         self.tolerance = float(tolerance)
         self.max_sweeps = int(max_sweeps)
         self.time_limit = time_limit
@@ -236,7 +254,8 @@ class StoppingRule:
         k = min(len(updates), len(seg))
         if k:
             e, f, meas, mature = estimates(seg, np.arange(len(seg) - k, len(seg)),
-                                           prior_factor=self.prior_factor, prior_gap=self.prior_gap)
+                                           prior_factor=self.prior_factor, prior_gap=self.prior_gap,
+                                           min_window=self.min_window, envelope=self.envelope)
             self._chunk_errors = e
             last_ok = math.isfinite(float(seg[-1]))
             self._latest = Estimate(float(e[-1]) if last_ok else math.inf,
@@ -269,7 +288,8 @@ class StoppingRule:
     def estimate(self) -> Estimate:
         """The estimate after the latest sweep (computed once per :meth:`add`)."""
         if self._latest is None:
-            return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor, prior_gap=self.prior_gap)
+            return estimate(self._updates[self._segment : self._n], prior_factor=self.prior_factor, prior_gap=self.prior_gap,
+                            min_window=self.min_window, envelope=self.envelope)
         return self._latest
 
     def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
@@ -280,7 +300,7 @@ class StoppingRule:
         elif self._at_floor() and self._settled_factor is not None:
             # Updates are rounding noise now, so their ratios say nothing; the
             # factor measured before the floor still bounds what is left.
-            recent = float(self._updates[max(self._segment, self._n - ENVELOPE) : self._n].max())
+            recent = float(self._updates[max(self._segment, self._n - self.envelope) : self._n].max())
             gap = (1.0 - self._settled_factor) / RATE_SAFETY
             est = Estimate(ERROR_SAFETY * recent / gap, self._settled_factor, None, True)
         eta = None
@@ -312,29 +332,29 @@ class StoppingRule:
         return None
 
     def _diverging(self, seg: np.ndarray) -> bool:
-        if len(seg) < 2 * MIN_WINDOW:
+        if len(seg) < 2 * self.min_window:
             return False
         last = seg[-1]
         if last > GROWTH_LIMIT * max(self.scale, self._best):
             return True
         # Sustained growth: the update envelope rose over each of the last two windows
         # and now exceeds the best update by a large factor.
-        m = max(MIN_WINDOW, int(WINDOW_FRACTION * len(seg)))
+        m = max(self.min_window, int(WINDOW_FRACTION * len(seg)))
         if len(seg) - 1 < 2 * m:
             return False
         k = len(seg) - 1
-        e_now, e_mid, e_old = _envelope_at(seg, np.array([k, k - m, k - 2 * m]))
+        e_now, e_mid, e_old = _envelope_at(seg, np.array([k, k - m, k - 2 * m]), self.envelope)
         return e_now > e_mid > e_old and e_now > 1e3 * self._best
 
     def _at_floor(self) -> bool:
         """Whether the last updates are at the float64 rounding floor of the field."""
-        if self._n - self._segment < MIN_WINDOW:
+        if self._n - self._segment < self.min_window:
             return False
         floor = FLOOR_ULPS * _EPS * self.scale
-        return float(self._updates[self._n - MIN_WINDOW : self._n].max()) <= floor
+        return float(self._updates[self._n - self.min_window : self._n].max()) <= floor
 
     def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
-        if len(seg) < 2 * MIN_WINDOW:
+        if len(seg) < 2 * self.min_window:
             return False
         if self._at_floor() and est.error > self.tolerance:
             return True  # rounding noise: no further progress is possible
