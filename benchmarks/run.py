@@ -12,8 +12,8 @@ starts one more child per measurement):
 4. threads    Mcell/s at 1 and 2 numba threads
 5. startup    `relaxtui solve` on a tiny case (cold and warm numba cache), `relaxtui --help`
 6. memory     peak resident memory per cell of `relaxtui solve` on the large demo
-+  kernels    benchmarks/kernels.py (the kernel developer's checks), full run only
 +  multigrid  benchmarks/multigrid.py, when that file exists
+   kernels    benchmarks/kernels.py (the kernel developer's checks): only with --only kernels
 
 Timings are medians of 5 repeats after a warm-up, with min–max; where a single
 run is long the repeats are reduced and the table says n=. ``--quick`` uses
@@ -42,7 +42,9 @@ import common  # noqa: E402
 SECTIONS = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "kernels", "multigrid")
 MODULES = {"roofline": "roofline", "tolerance": "tolerance", "scaling": "scaling", "threads": "threads",
            "startup": "startup", "memory": "footprint"}
-QUICK_SKIP = ("kernels",)  # benchmarks/kernels.py runs its own subprocesses for minutes; full run only
+DEFAULT = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "multigrid")
+# benchmarks/kernels.py (its own 4096² speed table, memory and kernel-loading checks in a few dozen
+# subprocesses) repeats much of section 1 and takes minutes: run it with --only kernels.
 
 
 # --- CPU used by others (the machine is shared) -------------------------------------------
@@ -228,14 +230,12 @@ def main(argv=None) -> int:
         Path(args.result).write_text(json.dumps(result))
         return 0
 
-    names = SECTIONS if not args.only else tuple(s.strip() for s in args.only.split(",") if s.strip())
+    names = DEFAULT if not args.only else tuple(s.strip() for s in args.only.split(",") if s.strip())
     unknown = [s for s in names if s not in SECTIONS]
     if unknown:
         p.error(f"unknown section(s) {', '.join(unknown)}; choose from {', '.join(SECTIONS)}")
     if args.markdown and not Path(args.markdown).resolve().parent.is_dir():
         p.error(f"folder of {args.markdown} does not exist")
-    if args.quick:
-        names = tuple(s for s in names if s not in QUICK_SKIP)
     meta = {"date": dt.datetime.now().astimezone().strftime("%Y-%m-%d %H:%M %Z"), "quick": args.quick,
             "command": "python benchmarks/run.py" + (" --quick" if args.quick else "") + (f" --only {args.only}" if args.only else ""),
             "machine": common.machine()}
