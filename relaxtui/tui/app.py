@@ -30,11 +30,12 @@ from textual.containers import Container, Horizontal, Vertical
 from textual.css.query import NoMatches
 from textual.message import Message
 from textual.reactive import reactive
-from textual.widgets import Footer, Input, Select, Static
+from textual.widgets import Footer, Input, Select
 from textual.worker import get_current_worker
 
 from relaxtui import model
 from relaxtui.errors import CaseError, RelaxError
+from relaxtui.tui.banner import Banner
 from relaxtui.tui.dialogs import ConfirmQuit, ExportScreen, HelpScreen
 from relaxtui.tui.fieldview import FieldView
 from relaxtui.tui.history import HistoryPanel, make_series
@@ -256,23 +257,6 @@ def _while_open(handler):
 
 
 # -- small widgets ----------------------------------------------------------------
-
-
-class Banner(Static):
-    """The top line: the case and what the session is doing."""
-
-    def show(self, case_text: str, phase_text: str, phase_style: str = "bold") -> None:
-        from rich.table import Table
-        from rich.text import Text
-
-        t = Table.grid(expand=True)
-        t.add_column(no_wrap=True, overflow="ellipsis", ratio=1)
-        t.add_column(no_wrap=True, justify="right")
-        left = Text()
-        left.append(" relaxtui ", style="bold reverse")
-        left.append(" " + case_text)
-        t.add_row(left, Text(phase_text + " ", style=phase_style))
-        self.update(t, layout=False)
 
 
 # -- the app -------------------------------------------------------------------------
@@ -920,6 +904,7 @@ class RelaxApp(App):
         deck = self.main.query_one("#deck")
         for p in PANELS:
             deck.set_class(p == name, f"-show-{p}")
+        self.main.query_one("#body").set_class(name == "runs", "-runs-view")
         target = {"field": FieldView, "history": HistoryPanel, "runs": RunsPanel}[name]
         widget = self.main.query_one(target)
         if name == "runs":

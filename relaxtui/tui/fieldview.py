@@ -74,7 +74,7 @@ class FieldView(Widget, can_focus=True):
         self.scale_range: tuple[float, float] | None = None  # values the scale always covers
         self.frame: Frame | None = None
         self.viewport: Viewport | None = None
-        self._fitted = False
+        self._auto_fit = True  # refit the whole grid on resize until the user zooms
 
     # -- attributes down --------------------------------------------------------
     def set_case(self, case, unit: str, scale_range: tuple[float, float] | None) -> None:
@@ -85,7 +85,7 @@ class FieldView(Widget, can_focus=True):
         self.scale_range = scale_range
         self.frame = None
         self.viewport = None
-        self._fitted = False
+        self._auto_fit = True
         self._update_viewport(fit=True)
 
     def show_frame(self, frame: Frame | None) -> None:
@@ -121,12 +121,11 @@ class FieldView(Widget, can_focus=True):
         if old == new:
             return
         self.viewport = new
-        self._fitted = self._fitted or fit
         self.post_message(self.ViewChanged(self, new, old is None or old.plan_key != new.plan_key))
         self.refresh()
 
     def on_resize(self) -> None:
-        self._update_viewport(fit=not self._fitted)
+        self._update_viewport(fit=self._auto_fit)
 
     # -- actions -------------------------------------------------------------------
     def _step(self) -> int:
@@ -160,9 +159,11 @@ class FieldView(Widget, can_focus=True):
         if zoom == vp.zoom:
             self.app.bell()
             return
+        self._auto_fit = False
         self._update_viewport(new=centred(Viewport(0, 0, zoom, vp.height, vp.width, vp.cursor), self.shape))
 
     def action_fit(self) -> None:
+        self._auto_fit = True
         self._update_viewport(fit=True)
 
     # -- drawing --------------------------------------------------------------------
