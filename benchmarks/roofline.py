@@ -96,9 +96,19 @@ def _measure_case(kind: str, n: int, repeats: int, quick: bool) -> dict:
     if "numpy-jacobi" in times:
         out["rates"]["numpy-jacobi"] = stats([numpy_cells / t / 1e6 for t in times["numpy-jacobi"]])
         out["bytes"]["numpy-jacobi"] = None
+    out["per_round"] = {}
+    for name in times:
+        count = {"copy_all": par_sweeps * a.size, "copy_1": par_sweeps * a.size, "jacobi": par_sweeps * cells,
+                 "red-black-sor": par_sweeps * cells, "gauss-seidel": lex_sweeps * unknowns, "sor": lex_sweeps * unknowns,
+                 "numpy-jacobi": numpy_cells}[name]
+        out["per_round"][name] = [count / t / 1e6 for t in times[name]]
     out["copy_gbs"] = {name: stats([copy_bytes * par_sweeps / t / 1e9 for t in times[name]]) for name in ("copy_all", "copy_1")}
     op.release()
     return out
+
+
+def _median_ratio(a, b) -> float:
+    return float(np.median(np.array(a) / np.array(b)))
 
 
 LABEL = {"copy_all": "copy kernel", "copy_1": "copy kernel", "jacobi": "Jacobi", "red-black-sor": "red-black SOR (fused)",
@@ -126,23 +136,30 @@ def run(quick: bool) -> dict:
                 gbs = fmt_stats(rate, 3, model / 1e3)
                 frac = f"{rate['median'] * model / copy:.0%}"
             rows.append([LABEL[name], r["kind"], str(t), fmt_stats(rate, 3), "" if model is None else f"{model:.2f}", gbs, frac])
-        jac = r["rates"]["jacobi"]["median"]
-        copy_all = r["rates"]["copy_all"]["median"] * 16.0
-        frac = jac * r["bytes"]["jacobi"] / copy_all
+        # ratios per round (the figures of one round were measured seconds apart), then their median:
+        # more robust against bursts of load from other users than a ratio of medians
+        pr = r["per_round"]
+        jac_copy = _median_ratio([j * r["bytes"]["jacobi"] for j in pr["jacobi"]], [c * 16.0 for c in pr["copy_all"]])
+        rb_jac = _median_ratio(pr["red-black-sor"], pr["jacobi"])
         targets.append({"target": f"Jacobi >= 75 % of copy bandwidth ({r['kind']}, {n}², {threads} threads)",
-                        "measured": f"{frac:.0%}", "ok": frac >= 0.75})
-        rb = r["rates"]["red-black-sor"]["median"]
-        targets.append({"target": f"red-black SOR >= 75 % of Jacobi ({r['kind']}, {n}²)", "measured": f"{rb / jac:.0%}", "ok": rb / jac >= 0.75})
-        if "numpy-jacobi" in r["rates"]:
-            npj = r["rates"]["numpy-jacobi"]["median"]
-            targets.append({"target": f"Jacobi kernel >= 3x numpy Jacobi ({r['kind']}, {n}²)", "measured": f"{jac / npj:.1f}x", "ok": jac / npj >= 3})
-            targets.append({"target": f"red-black SOR >= 3x numpy Jacobi ({r['kind']}, {n}²)", "measured": f"{rb / npj:.1f}x", "ok": rb / npj >= 3})
+                        "measured": f"{jac_copy:.0%} (median of per-round ratios)", "ok": jac_copy >= 0.75})
+        targets.append({"target": f"red-black SOR >= 75 % of Jacobi ({r['kind']}, {n}²)", "measured": f"{rb_jac:.0%} (median of per-round ratios)",
+                        "ok": rb_jac >= 0.75})
+        if "numpy-jacobi" in pr:
+            jn = _median_ratio(pr["jacobi"], pr["numpy-jacobi"])
+            rn = _median_ratio(pr["red-black-sor"], pr["numpy-jacobi"])
+            targets.append({"target": f"Jacobi kernel >= 3x numpy Jacobi ({r['kind']}, {n}²)", "measured": f"{jn:.1f}x", "ok": jn >= 3})
+            targets.append({"target": f"red-black SOR >= 3x numpy Jacobi ({r['kind']}, {n}²)", "measured": f"{rn:.1f}x", "ok": rn >= 3})
         notes.append(f"{r['kind']} {n}²: {r['unknowns']:,} unknowns, {r['cells']:,} cells streamed by Jacobi/red-black, "
                      f"{r['classes']} classes, {r['segments']:,} row segments, {r['mixed']:,} cells in mixed stretches.")
     notes.append("Mcell/s counts the cells a sweep streams (Jacobi, red-black) or the unknowns it updates (lexicographic); "
                  "the copy kernel's Mcell/s is float64 elements copied. Copy figures per case were measured in that case's round-robin.")
     notes.append("The % of copy compares the modelled GB/s with the copy kernel at the same thread count "
-                 "(Gauss-Seidel and SOR are serial: 1 thread).")
+                 "(Gauss-Seidel and SOR are serial: 1 thread); the table shows the ratio of medians, the targets the "
+                 "median of the per-round ratios (figures of one round are measured seconds apart, so a burst of "
+                 "load from other users cancels better).")
+    notes.append("The virtual machine reports a 480 MiB L3 cache (lscpu); the two 134 MB arrays of a 4096² copy may partly "
+                 "stay in it, so 'copy bandwidth' is the streaming rate this working set gets, from whichever level serves it.")
     return {
         "title": f"1. Roofline ({n}², every method, uniform and two-material)",
         "tables": [{"columns": ["kernel", "case", "threads", "Mcell/s median (min–max)", "model B/cell", "GB/s at the model", "% of copy"],

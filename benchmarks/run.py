@@ -171,6 +171,7 @@ def render_markdown(sections: list[dict], meta: dict) -> str:
     out.append(f"- software: Python {m['python']}, numpy {m['numpy']}, numba {m['numba']}, scipy {m['scipy']}, pyamg {m['pyamg']}")
     out.append(f"- total time: {meta['seconds'] / 60:.1f} min")
     out.append(f"- machine shared: {meta['shared']}")
+    out.append("- sections: " + ", ".join(f"{s['title'].split(' (')[0]} {s.get('seconds', 0) / 60:.1f} min" for s in sections))
     out.append("")
     for sec in sections:
         out.append(f"## {sec['title']}")
