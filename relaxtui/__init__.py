@@ -12,7 +12,17 @@ The small Python API::
 Importing this package is cheap: numba is loaded only when a solve starts.
 """
 
+import os as _os
+
 from relaxtui.errors import CaseError, OutputError, RelaxError, UsageError
+
+# Installed, the kernels live in relaxtui/kernels (pyproject maps the top-level
+# kernels/ folder there). Run from a source checkout (``python -m relaxtui`` or
+# ``python -m pytest`` in the repository root, where the source tree shadows the
+# installed package), they are found in the repository's kernels/ instead.
+_root = _os.path.dirname(_os.path.dirname(_os.path.abspath(__file__)))
+if not _os.path.isdir(_os.path.join(__path__[0], "kernels")) and _os.path.isfile(_os.path.join(_root, "kernels", "__init__.py")):
+    __path__.append(_root)
 
 __all__ = ["load_case", "solve", "CaseError", "OutputError", "RelaxError", "UsageError"]
 
