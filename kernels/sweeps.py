@@ -143,7 +143,7 @@ def _blend_mixed(cells, t, crow, parity, omega, mu):
 # --- rows ----------------------------------------------------------------------------------
 
 
-@kernel(inline=True)
+@kernel
 def _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0, r1):
     mu = 0
     mr = 0
@@ -165,7 +165,7 @@ def _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, o
     return mu, mr
 
 
-@kernel(inline=True)
+@kernel
 def _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, colour, tmp, mu):
     """Update the cells of one colour in row i (in place): s for the whole segment into tmp, then blend."""
     up = u[i - 1]
@@ -192,22 +192,25 @@ def _rb_block_inner(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega
     """Phase 1 of a fused red-black sweep over rows r0..r1-1: every red row, and every black
     row except the block's first and last (those read red rows of the neighbouring blocks).
 
-    Red row i + 1 goes first, then black row i: both colours in one pass over the rows.
+    The order is red r0, red r0+1, red r0+2, black r0+1, red r0+3, black r0+2, ...: red row
+    i + 1 and then black row i, both colours in one pass over the rows.
     """
-    mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0, RED, tmp, 0)
-    for i in range(r0, r1 - 1):
-        mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i + 1, RED, tmp, mu)
-        if i > r0:
-            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, BLACK, tmp, mu)
+    mu = 0
+    for t in range(2 * (r1 - r0)):
+        if t % 2 == 0:
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2, RED, tmp, mu)
+        elif r0 < r0 + t // 2 - 1 < r1 - 1:
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2 - 1, BLACK, tmp, mu)
     return mu
 
 
 @kernel(inline=True)
 def _rb_block_edges(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0, r1, tmp):
-    """Phase 2: the black rows at the block's edges, once every red row is done."""
-    mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0, BLACK, tmp, 0)
-    if r1 - 1 > r0:
-        mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r1 - 1, BLACK, tmp, mu)
+    """Phase 2: the black rows at the block's edges (r0 and r1 - 1), once every red row is done."""
+    mu = 0
+    for t in range(2):
+        if t == 0 or r1 - 1 > r0:
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 if t == 0 else r1 - 1, BLACK, tmp, mu)
     return mu
 
 
