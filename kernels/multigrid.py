@@ -107,6 +107,19 @@ def _block0(cls, table, ptab, pflag, I, J, w):
         w[7] = ts * ptab[cs, 1] + te * ptab[ce, 3]
 
 
+@kernel(parallel=True)
+def block_weights0(cls, table, ptab, pflag, P):
+    """P (8, Rc + 2, Cc + 2): level 0's interpolation weights in the planes coarse levels store."""
+    rc = P.shape[1] - 2
+    cc = P.shape[2] - 2
+    for I in prange(rc):
+        wb = np.zeros(8)
+        for J in range(cc):
+            _block0(cls, table, ptab, pflag, I, J, wb)
+            for k in range(8):
+                P[k, I + 1, J + 1] = wb[k]
+
+
 @kernel(inline=True)
 def _res_bulk(up, mid, dn, out, wn, ws, ww, we, q, d):
     for k in range(out.shape[0]):
@@ -213,37 +226,60 @@ def restrict0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, ptab,
             w_prev, w_cur = w_cur, w_prev
 
 
+@kernel(inline=True)
+def _add_c(u, c, ec0, w):
+    # C cells: u += e_c on the unknowns (w unused: weight 1)
+    for J in range(u.shape[0]):
+        x = u[J]
+        u[J] = x + ec0[J] if c[J] != 0 else x
+
+
+@kernel(inline=True)
+def _add2(u, c, wa, wb, ea, eb):
+    # row or column cells: u += wa ea + wb eb on the unknowns
+    for J in range(u.shape[0]):
+        x = u[J]
+        u[J] = x + (wa[J] * ea[J] + wb[J] * eb[J]) if c[J] != 0 else x
+
+
+@kernel(inline=True)
+def _add4(u, c, w0, w1, w2, w3, e0, e1, e2, e3):
+    # centre cells: u += Σ w e over the 4 coarse cells
+    for J in range(u.shape[0]):
+        x = u[J]
+        u[J] = x + (((w0[J] * e0[J] + w1[J] * e1[J]) + w2[J] * e2[J]) + w3[J] * e3[J]) if c[J] != 0 else x
+
+
 @kernel(parallel=True)
 def prolong0(u, cls, table, ptab, pflag, ec, nblk):
-    """u += P e_c on the unknowns of level 0 (u padded, ec the level-1 padded correction)."""
+    """u += P e_c on the unknowns of level 0 (u padded, ec the level-1 padded correction).
+
+    Per coarse row the block weights are computed once (planar), then the
+    four kinds of fine cells are updated by strided, vectorisable loops.
+    """
     rc = ec.shape[0] - 2
     cc = ec.shape[1] - 2
     rows = u.shape[0] - 2
+    cols = u.shape[1] - 2
+    nc = (cols + 1) // 2  # fine columns 2J (C and column cells)
+    nr = cols // 2  # fine columns 2J + 1 (row and centre cells)
     for b in prange(nblk):
         wb = np.zeros(8)
+        w = np.zeros((8, cc + 2))
         for I in range(b * rc // nblk, (b + 1) * rc // nblk):
-            i0 = 2 * I + 1
-            e0 = ec[I + 1]
-            e1 = ec[I + 2]
-            urow = u[i0]
-            crow = cls[i0]
-            have_odd = 2 * I + 1 < rows
             for J in range(cc):
-                j0 = 2 * J + 1
                 _block0(cls, table, ptab, pflag, I, J, wb)
-                a = e0[J + 1]
-                bb = e0[J + 2]
-                c = e1[J + 1]
-                d = e1[J + 2]
-                if crow[j0] != 0:
-                    urow[j0] += a
-                if crow[j0 + 1] != 0:  # (padding column when 2J + 1 is past the grid)
-                    urow[j0 + 1] += wb[0] * a + wb[1] * bb
-                if have_odd:
-                    if cls[i0 + 1, j0] != 0:
-                        u[i0 + 1, j0] += wb[2] * a + wb[3] * c
-                    if cls[i0 + 1, j0 + 1] != 0:
-                        u[i0 + 1, j0 + 1] += ((wb[4] * a + wb[5] * bb) + wb[6] * c) + wb[7] * d
+                for k in range(8):
+                    w[k, J] = wb[k]
+            i0 = 2 * I + 1
+            e0 = ec[I + 1, 1:]  # coarse (I, J) at [J]
+            e1 = ec[I + 2, 1:]  # coarse (I + 1, J) at [J]
+            _add_c(u[i0, 1 : 2 * nc : 2], cls[i0, 1 : 2 * nc : 2], e0, w[0])
+            _add2(u[i0, 2 : 2 * nr + 1 : 2], cls[i0, 2 : 2 * nr + 1 : 2], w[0], w[1], e0, e0[1:])
+            if 2 * I + 1 < rows:
+                _add2(u[i0 + 1, 1 : 2 * nc : 2], cls[i0 + 1, 1 : 2 * nc : 2], w[2], w[3], e0, e1)
+                _add4(u[i0 + 1, 2 : 2 * nr + 1 : 2], cls[i0 + 1, 2 : 2 * nr + 1 : 2], w[4], w[5], w[6], w[7],
+                      e0, e0[1:], e1, e1[1:])
 
 
 @kernel(parallel=True)
@@ -405,20 +441,23 @@ def _arow9(A, i, arow):
 
 
 @kernel(inline=True)
-def _galerkin_row(prows, arows, I, cols_f, acc, Ac, five):
+def _galerkin_row(prows, arows, I, cols_f, acc, Ac, five, skip):
     """Coarse row I of P^T A P into Ac (the 5 stored planes).
 
     Ring buffers: fine row r's interpolation rows are in ``prows[(r + 2) % 5]``
     (rows 2I - 2 .. 2I + 2 needed), its stencil in ``arows[(r + 1) % 3]``
     (rows 2I - 1 .. 2I + 1). ``acc`` is a (4, 4) scratch array: the
     contribution to coarse cell (I + di, J + dj) goes to acc[di + 1, dj + 1].
-    With ``five`` the fine stencil is known to be 5-point (level 0).
+    With ``five`` the fine stencil is known to be 5-point (level 0). Cells
+    with ``skip[J + 1]`` nonzero are left alone (filled from a bulk table).
     """
     cc = Ac.shape[2] - 2
     pslot = np.empty(5, dtype=np.int64)
     for m in range(5):
         pslot[m] = (2 * I + m) % 5  # fine row 2I - 2 + m
     for J in range(cc):
+        if skip[J + 1] != 0:
+            continue
         for x in range(4):
             for y in range(4):
                 acc[x, y] = 0.0
@@ -458,12 +497,73 @@ def _galerkin_row(prows, arows, I, cols_f, acc, Ac, five):
         Ac[4, I + 1, J + 1] = acc[2, 0]
 
 
+@kernel(inline=True)
+def _bulk_row0(cls, bulk, I, Ac, tag):
+    """Coarse cells of row I whose 5 x 5 fine neighbourhood is one bulk class c with a
+    known stencil ``bulk[c]`` (centre > 0) get it, and tag c; the others tag 0."""
+    rows = cls.shape[0] - 2
+    cols = cls.shape[1] - 2
+    cc = Ac.shape[2] - 2
+    trow = tag[I + 1]
+    for J in range(cc + 2):
+        trow[J] = 0
+    if 2 * I - 2 < 0 or 2 * I + 2 >= rows:
+        return
+    for J in range(1, cc):
+        if 2 * J + 2 >= cols:
+            break
+        c = cls[2 * I + 1, 2 * J + 1]
+        if c == 0 or not bulk[c, 0] > 0.0:
+            continue
+        same = True
+        for x in range(2 * I - 1, 2 * I + 4):
+            for y in range(2 * J - 1, 2 * J + 4):
+                if cls[x, y] != c:
+                    same = False
+        if same:
+            trow[J + 1] = c
+            for k in range(5):
+                Ac[k, I + 1, J + 1] = bulk[c, k]
+
+
+@kernel(inline=True)
+def _bulk_row9(tag_f, bulk, I, Ac, tag):
+    """As :func:`_bulk_row0` on a coarse level: the 5 x 5 fine cells all carry one bulk tag."""
+    rows = tag_f.shape[0] - 2
+    cols = tag_f.shape[1] - 2
+    cc = Ac.shape[2] - 2
+    trow = tag[I + 1]
+    for J in range(cc + 2):
+        trow[J] = 0
+    if 2 * I - 2 < 0 or 2 * I + 2 >= rows:
+        return
+    for J in range(1, cc):
+        if 2 * J + 2 >= cols:
+            break
+        c = tag_f[2 * I + 1, 2 * J + 1]
+        if c == 0 or not bulk[c, 0] > 0.0:
+            continue
+        same = True
+        for x in range(2 * I - 1, 2 * I + 4):
+            for y in range(2 * J - 1, 2 * J + 4):
+                if tag_f[x, y] != c:
+                    same = False
+        if same:
+            trow[J + 1] = c
+            for k in range(5):
+                Ac[k, I + 1, J + 1] = bulk[c, k]
+
+
 @kernel(parallel=True)
-def galerkin0(cls, table, diag, ptab, pflag, Ac, nblk):
+def galerkin0(cls, table, diag, ptab, pflag, bulk, Ac, tag, nblk):
     """Ac (5, Rc + 2, Cc + 2), zero on entry: the level-1 Galerkin operator P^T A P of level 0.
 
-    Each row block walks its coarse rows in order and keeps the fine rows it
-    needs in ring buffers, so every fine row is processed once per block.
+    A coarse cell whose 5 x 5 fine neighbourhood is a single class c (which
+    alone decides its stencil) takes ``bulk[c]`` when that is known
+    (centre > 0) and is tagged c in ``tag`` (Rc + 2, Cc + 2, uint32);
+    others are computed. Each row block walks its coarse rows in order and
+    keeps the fine rows it needs in ring buffers, so every fine row is
+    processed once per block.
     """
     rc = Ac.shape[1] - 2
     cc = Ac.shape[2] - 2
@@ -491,12 +591,18 @@ def galerkin0(cls, table, diag, ptab, pflag, Ac, nblk):
             while next_a <= 2 * I + 1:
                 _arow0(cls, table, diag, next_a, arows[(next_a + 1) % 3])
                 next_a += 1
-            _galerkin_row(prows, arows, I, cols, acc, Ac, True)
+            _bulk_row0(cls, bulk, I, Ac, tag)
+            _galerkin_row(prows, arows, I, cols, acc, Ac, True, tag[I + 1])
 
 
 @kernel(parallel=True)
-def galerkin9(A, P, Ac, nblk):
-    """Ac (5, Rc + 2, Cc + 2), zero on entry: P^T A P of a coarse level (stencil A, weights P)."""
+def galerkin9(A, P, tag_f, bulk, Ac, tag, nblk):
+    """Ac (5, Rc + 2, Cc + 2), zero on entry: P^T A P of a coarse level (stencil A, weights P).
+
+    ``tag_f`` are the bulk tags of this level's cells, ``bulk[t]`` the next
+    level's stencil of a cell whose 5 x 5 neighbourhood all carries tag t
+    (see :func:`galerkin0`); ``tag`` receives the next level's tags.
+    """
     rc = Ac.shape[1] - 2
     cols = A.shape[2] - 2
     for b in prange(nblk):
@@ -518,7 +624,8 @@ def galerkin9(A, P, Ac, nblk):
             while next_a <= 2 * I + 1:
                 _arow9(A, next_a, arows[(next_a + 1) % 3])
                 next_a += 1
-            _galerkin_row(prows, arows, I, cols, acc, Ac, False)
+            _bulk_row9(tag_f, bulk, I, Ac, tag)
+            _galerkin_row(prows, arows, I, cols, acc, Ac, False, tag[I + 1])
 
 
 # --- coarse levels: interpolation weights -------------------------------------------------
@@ -646,55 +753,76 @@ def interpolation9(A, P, lost, nblk):
 
 
 @kernel(inline=True)
-def _smooth_row(e, f, A, omega, pi, first_col):
-    """Gauss-Seidel/SOR on padded row pi: cells of column parity first_col, then the others."""
-    cols = e.shape[1] - 2
+def _offsum9(ae, aw, a_s, an, ase, anw, asw, ane, up, mid, dn, t):
+    # t[k] = Σ over the 8 neighbours of a_q e_q for the row's cells k (up/mid/dn carry one halo cell each end)
+    for k in range(t.shape[0]):
+        t[k] = (((ae[k] * mid[k + 2] + aw[k] * mid[k]) + (a_s[k] * dn[k + 1] + an[k] * up[k + 1]))
+                + ((ase[k] * dn[k + 2] + anw[k] * up[k]) + (asw[k] * dn[k] + ane[k] * up[k + 2])))
+
+
+@kernel(inline=True)
+def _blend9(cells, t, dinv, f, parity, omega):
+    # Gauss-Seidel/SOR update of the row's cells k with (k & 1) == parity from the off-centre sums t
+    for k in range(t.shape[0]):
+        x = cells[k]
+        di = dinv[k]
+        v = x + omega * ((f[k] - t[k]) * di - x)
+        cells[k] = v if ((k & 1) == parity and di > 0.0) else x
+
+
+@kernel(inline=True)
+def _smooth_row(e, f, A, Dinv, omega, pi, first_col, t):
+    """Gauss-Seidel/SOR on padded row pi: cells of column parity first_col, then the others.
+
+    Each half computes the off-centre sums of the whole row (a vectorisable
+    loop) and updates the cells of its parity; ``t`` is scratch (>= cols).
+    """
+    n = e.shape[1] - 2
+    tt = t[:n]
     for par in range(2):
-        start = 1 + (first_col ^ par)
-        for pj in range(start, cols + 1, 2):
-            d = A[0, pi, pj]
-            if d > 0.0:
-                s = (A[1, pi, pj] * e[pi, pj + 1] + A[1, pi, pj - 1] * e[pi, pj - 1]
-                     + A[2, pi, pj] * e[pi + 1, pj] + A[2, pi - 1, pj] * e[pi - 1, pj]
-                     + A[3, pi, pj] * e[pi + 1, pj + 1] + A[3, pi - 1, pj - 1] * e[pi - 1, pj - 1]
-                     + A[4, pi, pj] * e[pi + 1, pj - 1] + A[4, pi - 1, pj + 1] * e[pi - 1, pj + 1])
-                x = e[pi, pj]
-                e[pi, pj] = x + omega * ((f[pi, pj] - s) / d - x)
+        _offsum9(A[1, pi, 1 : n + 1], A[1, pi, 0:n], A[2, pi, 1 : n + 1], A[2, pi - 1, 1 : n + 1],
+                 A[3, pi, 1 : n + 1], A[3, pi - 1, 0:n], A[4, pi, 1 : n + 1], A[4, pi - 1, 2 : n + 2],
+                 e[pi - 1], e[pi], e[pi + 1], tt)
+        _blend9(e[pi, 1 : n + 1], tt, Dinv[pi, 1 : n + 1], f[pi, 1 : n + 1], first_col ^ par, omega)
 
 
 @kernel(parallel=True)
-def smooth9(e, f, A, omega, sweeps, reverse, nblk):
+def smooth9(e, f, A, Dinv, omega, sweeps, reverse, nblk):
     """``sweeps`` four-colour Gauss-Seidel/SOR sweeps of A e = f on a coarse level, in place.
 
     Colours are (row parity, column parity); with a 9-point stencil no two
     cells of a colour are coupled, so this is a true Gauss-Seidel. Forward
     order: even rows (even columns, then odd), then odd rows; ``reverse``
-    runs the colours backwards (the adjoint sweep). Row blocks run in
-    parallel: each block does its first-parity rows and the second-parity
-    rows between them, then a short pass does the second-parity rows at
-    block edges; the result is that of the plain order, bit for bit.
+    runs the colours backwards (the adjoint sweep). ``Dinv`` is 1 / A[0] on
+    the unknowns, 0 elsewhere. Row blocks run in parallel: each block does
+    its first-parity rows and the second-parity rows between them, then a
+    short pass does the second-parity rows at block edges; the result is
+    that of the plain order, bit for bit.
     """
     rows = e.shape[0] - 2
+    width = e.shape[1]
     fp = 1 if reverse else 0
     fc = 1 if reverse else 0
     for it in range(sweeps):
         for b in prange(nblk):
+            t = np.empty(width)
             r0 = b * rows // nblk
             r1 = (b + 1) * rows // nblk
             for r in range(r0, r1):
                 if (r & 1) == fp:
-                    _smooth_row(e, f, A, omega, r + 1, fc)
+                    _smooth_row(e, f, A, Dinv, omega, r + 1, fc, t)
                     if r - 1 > r0:
-                        _smooth_row(e, f, A, omega, r, fc)  # second-parity row r - 1 (padded r)
+                        _smooth_row(e, f, A, Dinv, omega, r, fc, t)  # second-parity row r - 1 (padded r)
         for b in prange(nblk):
+            t = np.empty(width)
             r0 = b * rows // nblk
             r1 = (b + 1) * rows // nblk
             if r1 <= r0:
                 continue
             if (r0 & 1) != fp:
-                _smooth_row(e, f, A, omega, r0 + 1, fc)
+                _smooth_row(e, f, A, Dinv, omega, r0 + 1, fc, t)
             if r1 - 1 != r0 and ((r1 - 1) & 1) != fp:
-                _smooth_row(e, f, A, omega, r1, fc)
+                _smooth_row(e, f, A, Dinv, omega, r1, fc, t)
 
 
 @kernel(inline=True)
@@ -906,3 +1034,117 @@ def band_solve(L, cells, bw, f, e):
         x[k] = s / L[k, 0]
     for k in range(n):
         e[cells[k, 0], cells[k, 1]] = x[k]
+
+
+# --- level 0 as planes (direct solve of small problems) ----------------------------------------
+
+
+@kernel(parallel=True)
+def planes0(cls, table, diag, A, b):
+    """Level 0 as the 5-plane symmetric storage of coarse levels: A (5, rows + 2, cols + 2) and the
+    unnormalised right-hand side b (rows + 2, cols + 2); both zero on entry."""
+    n = cls.shape[0] - 2
+    m = cls.shape[1] - 2
+    for i in prange(1, n + 1):
+        for j in range(1, m + 1):
+            c = cls[i, j]
+            if c == 0:
+                continue
+            d = diag[c]
+            A[0, i, j] = d
+            A[1, i, j] = -table[c, 3] * d
+            A[2, i, j] = -table[c, 1] * d
+            b[i, j] = table[c, 4] * d
+
+
+# --- flexible conjugate gradients on level 0 --------------------------------------------------
+# Vectors are working arrays of the operator (padded, zero outside the unknowns except x, the
+# field, which holds the fixed values); A is the unnormalised operator D (I - W) on the unknowns.
+
+
+@kernel(inline=True)
+def _apply0(v, cls, table, diag, pi, pj):
+    """(A v) at padded cell (pi, pj): the homogeneous operator (0 off the unknowns)."""
+    c = cls[pi, pj]
+    s = ((table[c, 0] * v[pi - 1, pj] + table[c, 1] * v[pi + 1, pj]) + table[c, 2] * v[pi, pj - 1]) + table[c, 3] * v[pi, pj + 1]
+    return diag[c] * (v[pi, pj] - s) if c != 0 else 0.0
+
+
+@kernel(parallel=True)
+def fcg_beta(w, x, p, cls, table, diag, nblk):
+    """Σ p · A (w - x): the coupling of the new preconditioned residual z = w - x with the last direction."""
+    n = x.shape[0] - 2
+    m = x.shape[1] - 2
+    acc = np.zeros(nblk)
+    for b in prange(nblk):
+        s = 0.0
+        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            for pj in range(1, m + 1):
+                if cls[pi, pj] != 0:
+                    az = _apply0(w, cls, table, diag, pi, pj) - _apply0(x, cls, table, diag, pi, pj)
+                    s += p[pi, pj] * az
+        acc[b] = s
+    return acc.sum()
+
+
+@kernel(parallel=True)
+def fcg_direction(w, x, p, beta, nblk):
+    """p = (w - x) + beta p (the new direction from the preconditioned residual w - x)."""
+    n = x.shape[0]
+    for b in prange(nblk):
+        for i in range(b * n // nblk, (b + 1) * n // nblk):
+            wr = w[i]
+            xr = x[i]
+            pr = p[i]
+            for j in range(xr.shape[0]):
+                pr[j] = (wr[j] - xr[j]) + beta * pr[j]
+
+
+@kernel(parallel=True)
+def fcg_dots(x, p, cls, table, diag, nblk):
+    """(p · A p, p · r(x), largest contract residual of x) with r(x) = b - A x (unnormalised)."""
+    n = x.shape[0] - 2
+    m = x.shape[1] - 2
+    a1 = np.zeros(nblk)
+    a2 = np.zeros(nblk)
+    mr = np.zeros(nblk, dtype=np.int64)
+    for b in prange(nblk):
+        s1 = 0.0
+        s2 = 0.0
+        r_max = 0
+        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            for pj in range(1, m + 1):
+                c = cls[pi, pj]
+                if c == 0:
+                    continue
+                s1 += p[pi, pj] * _apply0(p, cls, table, diag, pi, pj)
+                s = (((table[c, 0] * x[pi - 1, pj] + table[c, 1] * x[pi + 1, pj]) + table[c, 2] * x[pi, pj - 1])
+                     + table[c, 3] * x[pi, pj + 1]) + table[c, 4]
+                r = s - x[pi, pj]
+                s2 += p[pi, pj] * (diag[c] * r)
+                r_max = max(r_max, abs_bits(r))
+        a1[b] = s1
+        a2[b] = s2
+        mr[b] = r_max
+    return a1.sum(), a2.sum(), from_bits(mr.max())
+
+
+@kernel(parallel=True)
+def fcg_update(x, p, alpha, w, nblk):
+    """x += alpha p; w = x; returns the largest |alpha p| (NaN if not finite)."""
+    n = x.shape[0]
+    mu = np.zeros(nblk, dtype=np.int64)
+    for b in prange(nblk):
+        m = 0
+        for i in range(b * n // nblk, (b + 1) * n // nblk):
+            xr = x[i]
+            pr = p[i]
+            wr = w[i]
+            for j in range(xr.shape[0]):
+                d = alpha * pr[j]
+                v = xr[j] + d
+                xr[j] = v
+                wr[j] = v
+                m = max(m, abs_bits(d))
+        mu[b] = m
+    return from_bits(mu.max())

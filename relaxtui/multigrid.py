@@ -9,7 +9,9 @@ import numpy as np
 
 from relaxtui.errors import UsageError
 
-DEFAULT_OMEGA = 1.0
+DEFAULT_OMEGA = 1.2
+GAMMA = 2
+KRYLOV = True
 PRE_SWEEPS = 2
 POST_SWEEPS = 1
 COARSEST_UNKNOWNS = 2048
@@ -57,6 +59,50 @@ def level0_tables(table: np.ndarray):
     return np.ascontiguousarray(ptab), pflag
 
 
+BULK_PATCH = 9  # side of the synthetic grids the bulk stencils are computed on (coarse cell (2, 2) at its centre)
+
+
+def bulk_table0(operator, ptab, pflag) -> np.ndarray:
+    """(classes, 5): the level-1 stencil of a coarse cell whose 5 x 5 fine neighbourhood is all class c.
+
+    Computed with the general Galerkin kernel on a 9 x 9 grid of class c;
+    rows of classes that cannot fill such a neighbourhood (a neighbour that
+    is not an unknown) stay 0 (no shortcut).
+    """
+    from relaxtui.kernels import multigrid as mg
+
+    table = np.zeros((operator.classes, 5))
+    n = BULK_PATCH
+    rc = (n + 1) // 2
+    for c in np.flatnonzero(np.all(operator.table[:, :4] > 0.0, axis=1)):
+        cls = np.zeros((n + 2, n + 2), dtype=operator.cls.dtype)
+        cls[1:-1, 1:-1] = c
+        A = np.zeros((5, rc + 2, rc + 2))
+        mg.galerkin0(cls, operator.table, operator.diag, ptab, pflag, np.zeros_like(table), A,
+                     np.zeros((rc + 2, rc + 2), dtype=np.uint32), 1)
+        table[c] = A[:, 3, 3]
+    return table
+
+
+def bulk_table9(previous: np.ndarray) -> np.ndarray:
+    """The next level's bulk stencils from this level's (same tags): Galerkin on a 9 x 9 grid of each."""
+    from relaxtui.kernels import multigrid as mg
+
+    table = np.zeros_like(previous)
+    n = BULK_PATCH
+    rc = (n + 1) // 2
+    for t in np.flatnonzero(previous[:, 0] > 0.0):
+        A = np.zeros((5, n + 2, n + 2))
+        A[:, 1:-1, 1:-1] = previous[t][:, None, None]
+        P = np.zeros((8, rc + 2, rc + 2))
+        mg.interpolation9(A, P, np.zeros((rc + 2, rc + 2), dtype=np.uint8), 1)
+        Ac = np.zeros((5, rc + 2, rc + 2))
+        mg.galerkin9(A, P, np.zeros((n + 2, n + 2), dtype=np.uint32), np.zeros_like(table), Ac,
+                     np.zeros((rc + 2, rc + 2), dtype=np.uint32), 1)
+        table[t] = Ac[:, 3, 3]
+    return table
+
+
 class Level:
     """A coarse level: stencil planes A (5, R + 2, C + 2), correction e, right-hand side f,
     and (unless coarsest) interpolation planes P (8, Rc + 2, Cc + 2) to the next level."""
@@ -65,6 +111,8 @@ class Level:
         self.A = A
         self.shape = (A.shape[1] - 2, A.shape[2] - 2)
         self.unknowns = int(np.count_nonzero(A[0] > 0.0))
+        self.Dinv = np.zeros(A.shape[1:])
+        np.divide(1.0, A[0], out=self.Dinv, where=A[0] > 0.0)
         self.e = np.zeros(A.shape[1:])
         self.f = np.zeros(A.shape[1:])
         self.P = None
@@ -76,7 +124,7 @@ def _coarse_shape(shape):
 
 
 class Hierarchy:
-    def __init__(self, operator, coarsest: int = COARSEST_UNKNOWNS):
+    def __init__(self, operator, coarsest: int = COARSEST_UNKNOWNS, bulk: bool = True):
         from relaxtui.kernels import multigrid as mg
 
         t0 = time.perf_counter()
@@ -86,9 +134,11 @@ class Hierarchy:
         self.nblk0 = _nblk(rows * cols, rows)
         self.levels: list[Level] = []
         if operator.unknowns > coarsest and (rows > 1 or cols > 1):
+            table = bulk_table0(operator, self.ptab, self.pflag) if bulk else np.zeros((operator.classes, 5))
             rc, cc = _coarse_shape(operator.shape)
             A = np.zeros((5, rc + 2, cc + 2))
-            mg.galerkin0(operator.cls, operator.table, operator.diag, self.ptab, self.pflag, A, _nblk(rc * cc, rc))
+            tag = np.zeros((rc + 2, cc + 2), dtype=np.uint32)
+            mg.galerkin0(operator.cls, operator.table, operator.diag, self.ptab, self.pflag, table, A, tag, _nblk(rc * cc, rc))
             self.levels.append(Level(A))
             while True:
                 L = self.levels[-1]
@@ -98,8 +148,11 @@ class Hierarchy:
                 P = np.zeros((8, rc + 2, cc + 2))
                 lost = np.zeros((rc + 2, cc + 2), dtype=np.uint8)
                 mg.interpolation9(L.A, P, lost, L.nblk)
+                table = bulk_table9(table) if bulk else table
                 A = np.zeros((5, rc + 2, cc + 2))
-                mg.galerkin9(L.A, P, A, _nblk(rc * cc, rc))
+                tag_c = np.zeros((rc + 2, cc + 2), dtype=np.uint32)
+                mg.galerkin9(L.A, P, tag, table, A, tag_c, _nblk(rc * cc, rc))
+                tag = tag_c
                 L.P = P
                 self.levels.append(Level(A))
         if self.levels:
@@ -111,6 +164,80 @@ class Hierarchy:
                 raise UsageError("multigrid: the coarsest operator is not positive definite")
         self.setup_seconds = time.perf_counter() - t0
 
+    def interpolation(self, l: int):
+        """Interpolation from level l + 1 to level l as triplets (fine index, coarse index, weight).
+
+        Indices number the unknowns of each level in row-major order (as
+        :meth:`unknown_index`); for tests and inspection (numpy only).
+        """
+        from relaxtui.kernels import multigrid as mg
+
+        if l == 0:
+            op = self.operator
+            rc, cc = _coarse_shape(op.shape)
+            P = np.zeros((8, rc + 2, cc + 2))
+            mg.block_weights0(op.cls, op.table, self.ptab, self.pflag, P)
+            live_f = op.cls[1:-1, 1:-1] != 0
+        else:
+            P = self.levels[l - 1].P
+            live_f = self.levels[l - 1].A[0, 1:-1, 1:-1] > 0.0
+        live_c = self.levels[l].A[0, 1:-1, 1:-1] > 0.0
+        fi = self.unknown_index(l)
+        ci = self.unknown_index(l + 1)
+        rows, cols = live_f.shape
+        out_f, out_c, out_w = [], [], []
+        for i in range(rows):
+            for j in range(cols):
+                if not live_f[i, j]:
+                    continue
+                I, J = i // 2, j // 2
+                if i % 2 == 0 and j % 2 == 0:
+                    terms = [(I, J, 1.0)]
+                elif i % 2 == 0:
+                    terms = [(I, J, P[0, I + 1, J + 1]), (I, J + 1, P[1, I + 1, J + 1])]
+                elif j % 2 == 0:
+                    terms = [(I, J, P[2, I + 1, J + 1]), (I + 1, J, P[3, I + 1, J + 1])]
+                else:
+                    terms = [(I, J, P[4, I + 1, J + 1]), (I, J + 1, P[5, I + 1, J + 1]),
+                             (I + 1, J, P[6, I + 1, J + 1]), (I + 1, J + 1, P[7, I + 1, J + 1])]
+                for a, b, w in terms:
+                    if w != 0.0:
+                        if not (0 <= a < live_c.shape[0] and 0 <= b < live_c.shape[1] and live_c[a, b]):
+                            raise AssertionError(f"level {l} cell ({i}, {j}) interpolates from a missing coarse cell ({a}, {b})")
+                        out_f.append(fi[i, j])
+                        out_c.append(ci[a, b])
+                        out_w.append(w)
+        return np.array(out_f, dtype=np.int64), np.array(out_c, dtype=np.int64), np.array(out_w)
+
+    def unknown_index(self, l: int) -> np.ndarray:
+        """(rows, cols) int64 of level l: the unknown's number in row-major order, -1 elsewhere."""
+        live = self.operator.cls[1:-1, 1:-1] != 0 if l == 0 else self.levels[l - 1].A[0, 1:-1, 1:-1] > 0.0
+        index = np.full(live.shape, -1, dtype=np.int64)
+        index[live] = np.arange(int(live.sum()))
+        return index
+
+    def stencil_entries(self, l: int):
+        """The symmetric 9-point operator of coarse level l >= 1 as triplets (row, col, value), both triangles."""
+        A = self.levels[l - 1].A
+        idx = self.unknown_index(l)
+        rows, cols = idx.shape
+        pad = np.full((rows + 2, cols + 2), -1, dtype=np.int64)
+        pad[1:-1, 1:-1] = idx
+        out_r, out_c, out_v = [], [], []
+        for k, (di, dj) in ((0, (0, 0)), (1, (0, 1)), (2, (1, 0)), (3, (1, 1)), (4, (1, -1))):
+            src = pad[1:-1, 1:-1]
+            dst = pad[1 + di : rows + 1 + di, 1 + dj : cols + 1 + dj]
+            val = A[k, 1:-1, 1:-1]
+            ok = (src >= 0) & (dst >= 0) & (val != 0.0)
+            out_r.append(src[ok])
+            out_c.append(dst[ok])
+            out_v.append(val[ok])
+            if k:
+                out_r.append(dst[ok])
+                out_c.append(src[ok])
+                out_v.append(val[ok])
+        return np.concatenate(out_r), np.concatenate(out_c), np.concatenate(out_v)
+
     def cycle_coarse(self, l: int, omega: float, pre: int, post: int, gamma: int) -> None:
         from relaxtui.kernels import multigrid as mg
 
@@ -118,37 +245,60 @@ class Hierarchy:
         if l == len(self.levels) - 1:
             mg.band_solve(self.L, self.cells, self.bw, L.f, L.e)
             return
-        mg.smooth9(L.e, L.f, L.A, omega, pre, False, L.nblk)
+        mg.smooth9(L.e, L.f, L.A, L.Dinv, omega, pre, False, L.nblk)
         N = self.levels[l + 1]
         mg.restrict9(L.e, L.f, L.A, L.P, N.f, L.nblk)
         mg.zero_fill(N.e, N.nblk)
         for _ in range(gamma if l + 1 < len(self.levels) - 1 else 1):
             self.cycle_coarse(l + 1, omega, pre, post, gamma)
         mg.prolong9(L.e, L.A, L.P, N.e, L.nblk)
-        mg.smooth9(L.e, L.f, L.A, omega, post, True, L.nblk)
+        mg.smooth9(L.e, L.f, L.A, L.Dinv, omega, post, True, L.nblk)
 
 
 class MultigridStepper:
-    """``sweep`` runs multigrid cycles on the operator's working field (one cycle = one "sweep")."""
+    """``sweep`` runs multigrid iterations on the operator's working field (one iteration = one "sweep")."""
 
     rule_options = {"min_window": 2, "envelope": 1}
     max_chunk = 1
 
-    def __init__(self, operator, *, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS, gamma: int = 1,
-                 coarsest: int = COARSEST_UNKNOWNS):
+    def __init__(self, operator, *, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS, gamma: int = GAMMA,
+                 coarsest: int = COARSEST_UNKNOWNS, coarse_pre: int | None = None, coarse_post: int | None = None,
+                 krylov: bool = KRYLOV):
+        from relaxtui.kernels import multigrid as mg
+
         self.operator = operator
         self.pre = pre
         self.post = post
         self.gamma = gamma
+        self.coarse_pre = pre if coarse_pre is None else coarse_pre
+        self.coarse_post = post if coarse_post is None else coarse_post
+        self.krylov = krylov
         self.h = Hierarchy(operator, coarsest)
-        self.u_old = np.zeros(operator.padded_shape)
+        self.direct = not self.h.levels and operator.unknowns > 0
+        if self.direct:  # small problem: the banded Cholesky of level 0 itself
+            A = np.zeros((5,) + operator.padded_shape)
+            self.b0 = np.zeros(operator.padded_shape)
+            mg.planes0(operator.cls, operator.table, operator.diag, A, self.b0)
+            by_rows = operator.shape[1] <= operator.shape[0]
+            self.index0, self.cells0, self.bw0 = mg.band_order(A, by_rows)
+            self.L0, ok = mg.band_factor(A, self.index0, self.cells0, self.bw0)
+            del A
+        shape = operator.padded_shape
+        if krylov and not self.direct:
+            self.w = np.zeros(shape)
+            self.p = np.zeros(shape)
+            self.u_old = None
+        else:
+            self.u_old = np.zeros(shape)
         self._synced = None
+        self._k = 0
+        self._pap = 0.0
         self._scratch = np.zeros(max(pre, post, 1) + 1)
         self._scratch2 = np.zeros(max(pre, post, 1) + 1)
         levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
         levels += [{"shape": list(L.shape), "unknowns": L.unknowns} for L in self.h.levels]
         self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6),
-                     "cycle": f"V({pre},{post}) gamma={gamma}"}
+                     "cycle": f"V({pre},{post}) gamma={gamma} krylov={krylov}"}
 
     def cycle(self, u, omega) -> None:
         from relaxtui.kernels import multigrid as mg
@@ -157,31 +307,47 @@ class MultigridStepper:
         h = self.h
         if op.unknowns == 0:
             return
-        if not h.levels:
-            op.sweep(u, "red-black-sor", omega, 1, self._scratch, self._scratch2)  # tiny problem: one relaxation
+        if self.direct:
+            mg.band_solve(self.L0, self.cells0, self.bw0, self.b0, u)
             return
         op.sweep(u, "red-black-sor", omega, self.pre, self._scratch, self._scratch2)
         L1 = h.levels[0]
         mg.restrict0(u, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
                      L1.f, h.nblk0)
         mg.zero_fill(L1.e, L1.nblk)
-        h.cycle_coarse(0, omega, self.pre, self.post, self.gamma)
+        h.cycle_coarse(0, omega, self.coarse_pre, self.coarse_post, self.gamma)
         mg.prolong0(u, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
         op.sweep(u, "red-black-sor", omega, max(self.post, 1), self._scratch, self._scratch2)
 
     def sweep(self, u, omega, sweeps, updates, residuals) -> int:
         from relaxtui.kernels import multigrid as mg
 
+        op = self.operator
+        nb = self.h.nblk0
         key = (u.__array_interface__["data"][0], u.shape)
         if self._synced != key:
-            mg.copy_into(u, self.u_old, self.h.nblk0)
+            mg.copy_into(u, self.w if self.u_old is None else self.u_old, nb)
             self._synced = key
+            self._k = 0
         done = 0
         for k in range(sweeps):
-            self.cycle(u, omega)
-            du = mg.delta_copy(u, self.u_old, self.h.nblk0)
+            if self.u_old is not None:
+                self.cycle(u, omega)
+                du = mg.delta_copy(u, self.u_old, nb)
+                res = self._scratch2[max(self.post, 1) - 1] if not self.direct else 0.0
+            else:
+                self.cycle(self.w, omega)  # w = u + B r(u): the preconditioned residual is w - u
+                beta = 0.0
+                if self._k > 0 and self._pap > 0.0:
+                    beta = -mg.fcg_beta(self.w, u, self.p, op.cls, op.table, op.diag, nb) / self._pap
+                mg.fcg_direction(self.w, u, self.p, beta, nb)
+                pap, pr, res = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, nb)
+                alpha = pr / pap if pap > 0.0 else 0.0
+                du = mg.fcg_update(u, self.p, alpha, self.w, nb)
+                self._pap = pap
+                self._k += 1
             updates[k] = du
-            residuals[k] = self._scratch2[max(self.post, 1) - 1]  # the last relaxation sweep's largest residual
+            residuals[k] = res
             done = k + 1
             if not math.isfinite(du):
                 break
