@@ -1148,3 +1148,29 @@ def fcg_update(x, p, alpha, w, nblk):
                 m = max(m, abs_bits(d))
         mu[b] = m
     return from_bits(mu.max())
+
+
+@kernel(parallel=True)
+def pcg_rz(x, w, cls, table, diag, nblk):
+    """(Σ r(x) · (w - x), largest contract residual of x): r(x) = b - A x unnormalised, w - x the
+    preconditioned residual."""
+    n = x.shape[0] - 2
+    m = x.shape[1] - 2
+    acc = np.zeros(nblk)
+    mr = np.zeros(nblk, dtype=np.int64)
+    for b in prange(nblk):
+        s = 0.0
+        r_max = 0
+        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            for pj in range(1, m + 1):
+                c = cls[pi, pj]
+                if c == 0:
+                    continue
+                t = (((table[c, 0] * x[pi - 1, pj] + table[c, 1] * x[pi + 1, pj]) + table[c, 2] * x[pi, pj - 1])
+                     + table[c, 3] * x[pi, pj + 1]) + table[c, 4]
+                r = t - x[pi, pj]
+                s += (diag[c] * r) * (w[pi, pj] - x[pi, pj])
+                r_max = max(r_max, abs_bits(r))
+        acc[b] = s
+        mr[b] = r_max
+    return acc.sum(), from_bits(mr.max())

@@ -12,9 +12,11 @@ from relaxtui.errors import UsageError
 DEFAULT_OMEGA = 1.2
 GAMMA = 2
 KRYLOV = True
+KRYLOV_SWEEPS = 2  # sweeps before and after the coarse correction in the symmetric cycle
 PRE_SWEEPS = 2
 POST_SWEEPS = 1
-COARSEST_UNKNOWNS = 2048
+COARSEST_UNKNOWNS = 2048  # a coarse level this small is solved directly (banded Cholesky)
+DIRECT_UNKNOWNS = 64  # a problem this small is solved directly on its own grid
 PARALLEL_CELLS = 1 << 14
 
 
@@ -119,6 +121,12 @@ class Level:
         self.nblk = _nblk(self.shape[0] * self.shape[1], self.shape[0])
 
 
+def _operator_parallel_cells() -> int:
+    from relaxtui.operator import PARALLEL_CELLS as cells
+
+    return cells
+
+
 def _coarse_shape(shape):
     return ((shape[0] + 1) // 2, (shape[1] + 1) // 2)
 
@@ -133,7 +141,7 @@ class Hierarchy:
         rows, cols = operator.shape
         self.nblk0 = _nblk(rows * cols, rows)
         self.levels: list[Level] = []
-        if operator.unknowns > coarsest and (rows > 1 or cols > 1):
+        if operator.unknowns > min(coarsest, DIRECT_UNKNOWNS) and (rows > 1 or cols > 1):
             table = bulk_table0(operator, self.ptab, self.pflag) if bulk else np.zeros((operator.classes, 5))
             rc, cc = _coarse_shape(operator.shape)
             A = np.zeros((5, rc + 2, cc + 2))
@@ -285,16 +293,27 @@ class MultigridStepper:
             del A
         shape = operator.padded_shape
         if krylov and not self.direct:
-            self.w = np.zeros(shape)
+            # The work field lives in rows 1.. of a buffer with one more row on top: the same
+            # red-black kernel run on the whole buffer (class codes shifted alike) sees every
+            # cell's colour flipped, i.e. sweeps black then red: the adjoint of the forward sweep.
+            from relaxtui.kernels import assemble
+            from relaxtui.operator import MIN_RUN
+
+            self._w_big = np.zeros((shape[0] + 1, shape[1]))
+            self.w = self._w_big[1:]
+            self._cls_b = np.zeros((shape[0] + 1, shape[1]), dtype=operator.cls.dtype)
+            self._cls_b[1:] = operator.cls
+            self._seg_b = assemble.segments(self._cls_b, MIN_RUN)
             self.p = np.zeros(shape)
             self.u_old = None
         else:
             self.u_old = np.zeros(shape)
         self._synced = None
         self._k = 0
-        self._pap = 0.0
-        self._scratch = np.zeros(max(pre, post, 1) + 1)
-        self._scratch2 = np.zeros(max(pre, post, 1) + 1)
+        self._rz = 0.0
+        self.krylov_sweeps = KRYLOV_SWEEPS
+        self._scratch = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
+        self._scratch2 = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
         levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
         levels += [{"shape": list(L.shape), "unknowns": L.unknowns} for L in self.h.levels]
         self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6),
@@ -319,6 +338,36 @@ class MultigridStepper:
         mg.prolong0(u, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
         op.sweep(u, "red-black-sor", omega, max(self.post, 1), self._scratch, self._scratch2)
 
+    def _backward(self, omega, sweeps) -> None:
+        """``sweeps`` black-then-red SOR sweeps of the work field (see __init__)."""
+        from relaxtui.kernels import sweeps as k
+
+        op = self.operator
+        import numba
+
+        if numba.get_num_threads() >= 2 and op.cells_streamed >= _operator_parallel_cells():
+            nblk = max(1, min(numba.get_num_threads(), op.shape[0] + 1))
+            k.sor_red_black(self._w_big, self._cls_b, op.table, *self._seg_b, omega, sweeps, self._scratch, self._scratch2, nblk)
+        else:
+            k.sor_red_black_serial(self._w_big, self._cls_b, op.table, *self._seg_b, omega, sweeps, self._scratch, self._scratch2)
+
+    def cycle_symmetric(self, omega) -> None:
+        """One symmetric cycle on the work field: forward sweeps, coarse correction, as many backward sweeps."""
+        from relaxtui.kernels import multigrid as mg
+
+        op = self.operator
+        h = self.h
+        w = self.w
+        nu = self.krylov_sweeps
+        op.sweep(w, "red-black-sor", omega, nu, self._scratch, self._scratch2)
+        L1 = h.levels[0]
+        mg.restrict0(w, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
+                     L1.f, h.nblk0)
+        mg.zero_fill(L1.e, L1.nblk)
+        h.cycle_coarse(0, omega, nu, nu, self.gamma)
+        mg.prolong0(w, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
+        self._backward(omega, nu)
+
     def sweep(self, u, omega, sweeps, updates, residuals) -> int:
         from relaxtui.kernels import multigrid as mg
 
@@ -336,15 +385,15 @@ class MultigridStepper:
                 du = mg.delta_copy(u, self.u_old, nb)
                 res = self._scratch2[max(self.post, 1) - 1] if not self.direct else 0.0
             else:
-                self.cycle(self.w, omega)  # w = u + B r(u): the preconditioned residual is w - u
-                beta = 0.0
-                if self._k > 0 and self._pap > 0.0:
-                    beta = -mg.fcg_beta(self.w, u, self.p, op.cls, op.table, op.diag, nb) / self._pap
+                # preconditioned conjugate gradients: z = w - u after one symmetric cycle on w = u
+                self.cycle_symmetric(omega)
+                rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, nb)
+                beta = rz / self._rz if (self._k > 0 and self._rz != 0.0) else 0.0
                 mg.fcg_direction(self.w, u, self.p, beta, nb)
-                pap, pr, res = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, nb)
+                pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, nb)
                 alpha = pr / pap if pap > 0.0 else 0.0
                 du = mg.fcg_update(u, self.p, alpha, self.w, nb)
-                self._pap = pap
+                self._rz = rz
                 self._k += 1
             updates[k] = du
             residuals[k] = res
