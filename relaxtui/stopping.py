@@ -296,9 +296,9 @@ class StoppingRule:
         """The decision after the sweeps fed so far (``seconds`` of solving)."""
         est = self.last_estimate = self.estimate()
         recent = self._updates[max(self._segment, self._n - self.min_window) : self._n]
-        if self._n - self._segment >= self.min_window and not np.any(recent):
-            # the field no longer changes at all (e.g. a direct solve repeated): a fixed point of the
-            # iteration, exact to rounding; the bound left is the rounding floor of the field
+        if not math.isfinite(est.error) and self._n - self._segment >= self.min_window and not np.any(recent):
+            # the field no longer changes at all before the rate is estimable (a direct solve repeated):
+            # a fixed point of the iteration, exact to rounding; the bound left is the field's rounding floor
             est = self.last_estimate = Estimate(FLOOR_ULPS * _EPS * self.scale, est.factor, est.measured, True)
         if est.mature and est.factor is not None:
             self._settled_factor = est.factor
