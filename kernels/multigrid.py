@@ -1062,31 +1062,6 @@ def planes0(cls, table, diag, A, b):
 # field, which holds the fixed values); A is the unnormalised operator D (I - W) on the unknowns.
 
 
-@kernel(inline=True)
-def _apply0(v, cls, table, diag, pi, pj):
-    """(A v) at padded cell (pi, pj): the homogeneous operator (0 off the unknowns)."""
-    c = cls[pi, pj]
-    s = ((table[c, 0] * v[pi - 1, pj] + table[c, 1] * v[pi + 1, pj]) + table[c, 2] * v[pi, pj - 1]) + table[c, 3] * v[pi, pj + 1]
-    return diag[c] * (v[pi, pj] - s) if c != 0 else 0.0
-
-
-@kernel(parallel=True)
-def fcg_beta(w, x, p, cls, table, diag, nblk):
-    """Σ p · A (w - x): the coupling of the new preconditioned residual z = w - x with the last direction."""
-    n = x.shape[0] - 2
-    m = x.shape[1] - 2
-    acc = np.zeros(nblk)
-    for b in prange(nblk):
-        s = 0.0
-        for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            for pj in range(1, m + 1):
-                if cls[pi, pj] != 0:
-                    az = _apply0(w, cls, table, diag, pi, pj) - _apply0(x, cls, table, diag, pi, pj)
-                    s += p[pi, pj] * az
-        acc[b] = s
-    return acc.sum()
-
-
 @kernel(parallel=True)
 def fcg_direction(w, x, p, beta, nblk):
     """p = (w - x) + beta p (the new direction from the preconditioned residual w - x)."""
@@ -1100,33 +1075,63 @@ def fcg_direction(w, x, p, beta, nblk):
                 pr[j] = (wr[j] - xr[j]) + beta * pr[j]
 
 
+@kernel(inline=True)
+def _dots_bulk(xu, xm, xd, pu, pm, pd, wn, ws, ww, we, q, d, s1, s2, mr):
+    for k in range(xu.shape[0]):
+        ap = d * (pm[k + 1] - (((wn * pu[k] + ws * pd[k]) + ww * pm[k]) + we * pm[k + 2]))
+        r = ((((wn * xu[k] + ws * xd[k]) + ww * xm[k]) + we * xm[k + 2]) + q) - xm[k + 1]
+        s1 += pm[k + 1] * ap
+        s2 += pm[k + 1] * (d * r)
+        mr = max(mr, abs_bits(r))
+    return s1, s2, mr
+
+
+@kernel(inline=True)
+def _dots_mixed(xu, xm, xd, pu, pm, pd, crow, table, diag, s1, s2, mr):
+    for k in range(xu.shape[0]):
+        c = crow[k]
+        if c == 0:
+            continue
+        d = diag[c]
+        ap = d * (pm[k + 1] - (((table[c, 0] * pu[k] + table[c, 1] * pd[k]) + table[c, 2] * pm[k]) + table[c, 3] * pm[k + 2]))
+        r = ((((table[c, 0] * xu[k] + table[c, 1] * xd[k]) + table[c, 2] * xm[k]) + table[c, 3] * xm[k + 2]) + table[c, 4]) - xm[k + 1]
+        s1 += pm[k + 1] * ap
+        s2 += pm[k + 1] * (d * r)
+        mr = max(mr, abs_bits(r))
+    return s1, s2, mr
+
+
 @kernel(parallel=True)
-def fcg_dots(x, p, cls, table, diag, nblk):
-    """(p · A p, p · r(x), largest contract residual of x) with r(x) = b - A x (unnormalised)."""
+def fcg_dots(x, p, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, nblk):
+    """(p · A p, p · r(x), largest contract residual of x) with r(x) = b - A x (unnormalised).
+
+    Walks the operator's row segments (bulk runs: constant weights, vectorisable).
+    """
     n = x.shape[0] - 2
-    m = x.shape[1] - 2
     a1 = np.zeros(nblk)
     a2 = np.zeros(nblk)
-    mr = np.zeros(nblk, dtype=np.int64)
+    mrs = np.zeros(nblk, dtype=np.int64)
     for b in prange(nblk):
         s1 = 0.0
         s2 = 0.0
-        r_max = 0
+        mr = 0
         for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            for pj in range(1, m + 1):
-                c = cls[pi, pj]
-                if c == 0:
-                    continue
-                s1 += p[pi, pj] * _apply0(p, cls, table, diag, pi, pj)
-                s = (((table[c, 0] * x[pi - 1, pj] + table[c, 1] * x[pi + 1, pj]) + table[c, 2] * x[pi, pj - 1])
-                     + table[c, 3] * x[pi, pj + 1]) + table[c, 4]
-                r = s - x[pi, pj]
-                s2 += p[pi, pj] * (diag[c] * r)
-                r_max = max(r_max, abs_bits(r))
+            for sg in range(row_ptr[pi], row_ptr[pi + 1]):
+                j0 = seg_start[sg]
+                j1 = seg_end[sg]
+                c = seg_class[sg]
+                if c > 0:
+                    s1, s2, mr = _dots_bulk(x[pi - 1, j0:j1], x[pi, j0 - 1 : j1 + 1], x[pi + 1, j0:j1],
+                                            p[pi - 1, j0:j1], p[pi, j0 - 1 : j1 + 1], p[pi + 1, j0:j1],
+                                            table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], diag[c], s1, s2, mr)
+                else:
+                    s1, s2, mr = _dots_mixed(x[pi - 1, j0:j1], x[pi, j0 - 1 : j1 + 1], x[pi + 1, j0:j1],
+                                             p[pi - 1, j0:j1], p[pi, j0 - 1 : j1 + 1], p[pi + 1, j0:j1],
+                                             cls[pi, j0:j1], table, diag, s1, s2, mr)
         a1[b] = s1
         a2[b] = s2
-        mr[b] = r_max
-    return a1.sum(), a2.sum(), from_bits(mr.max())
+        mrs[b] = mr
+    return a1.sum(), a2.sum(), from_bits(mrs.max())
 
 
 @kernel(parallel=True)
@@ -1150,27 +1155,48 @@ def fcg_update(x, p, alpha, w, nblk):
     return from_bits(mu.max())
 
 
+@kernel(inline=True)
+def _rz_bulk(xu, xm, xd, wm, wn, ws, ww, we, q, d, s, mr):
+    for k in range(xu.shape[0]):
+        r = ((((wn * xu[k] + ws * xd[k]) + ww * xm[k]) + we * xm[k + 2]) + q) - xm[k + 1]
+        s += (d * r) * (wm[k] - xm[k + 1])
+        mr = max(mr, abs_bits(r))
+    return s, mr
+
+
+@kernel(inline=True)
+def _rz_mixed(xu, xm, xd, wm, crow, table, diag, s, mr):
+    for k in range(xu.shape[0]):
+        c = crow[k]
+        if c == 0:
+            continue
+        r = ((((table[c, 0] * xu[k] + table[c, 1] * xd[k]) + table[c, 2] * xm[k]) + table[c, 3] * xm[k + 2]) + table[c, 4]) - xm[k + 1]
+        s += (diag[c] * r) * (wm[k] - xm[k + 1])
+        mr = max(mr, abs_bits(r))
+    return s, mr
+
+
 @kernel(parallel=True)
-def pcg_rz(x, w, cls, table, diag, nblk):
+def pcg_rz(x, w, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, nblk):
     """(Σ r(x) · (w - x), largest contract residual of x): r(x) = b - A x unnormalised, w - x the
-    preconditioned residual."""
+    preconditioned residual. Walks the operator's row segments."""
     n = x.shape[0] - 2
-    m = x.shape[1] - 2
     acc = np.zeros(nblk)
-    mr = np.zeros(nblk, dtype=np.int64)
+    mrs = np.zeros(nblk, dtype=np.int64)
     for b in prange(nblk):
         s = 0.0
-        r_max = 0
+        mr = 0
         for pi in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            for pj in range(1, m + 1):
-                c = cls[pi, pj]
-                if c == 0:
-                    continue
-                t = (((table[c, 0] * x[pi - 1, pj] + table[c, 1] * x[pi + 1, pj]) + table[c, 2] * x[pi, pj - 1])
-                     + table[c, 3] * x[pi, pj + 1]) + table[c, 4]
-                r = t - x[pi, pj]
-                s += (diag[c] * r) * (w[pi, pj] - x[pi, pj])
-                r_max = max(r_max, abs_bits(r))
+            for sg in range(row_ptr[pi], row_ptr[pi + 1]):
+                j0 = seg_start[sg]
+                j1 = seg_end[sg]
+                c = seg_class[sg]
+                if c > 0:
+                    s, mr = _rz_bulk(x[pi - 1, j0:j1], x[pi, j0 - 1 : j1 + 1], x[pi + 1, j0:j1], w[pi, j0:j1],
+                                     table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], diag[c], s, mr)
+                else:
+                    s, mr = _rz_mixed(x[pi - 1, j0:j1], x[pi, j0 - 1 : j1 + 1], x[pi + 1, j0:j1], w[pi, j0:j1],
+                                      cls[pi, j0:j1], table, diag, s, mr)
         acc[b] = s
-        mr[b] = r_max
-    return acc.sum(), from_bits(mr.max())
+        mrs[b] = mr
+    return acc.sum(), from_bits(mrs.max())

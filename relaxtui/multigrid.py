@@ -312,6 +312,7 @@ class MultigridStepper:
         self._k = 0
         self._rz = 0.0
         self.krylov_sweeps = KRYLOV_SWEEPS
+        self.krylov_coarse_sweeps = KRYLOV_SWEEPS
         self._scratch = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
         self._scratch2 = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
         levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
@@ -364,7 +365,7 @@ class MultigridStepper:
         mg.restrict0(w, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
                      L1.f, h.nblk0)
         mg.zero_fill(L1.e, L1.nblk)
-        h.cycle_coarse(0, omega, nu, nu, self.gamma)
+        h.cycle_coarse(0, omega, self.krylov_coarse_sweeps, self.krylov_coarse_sweeps, self.gamma)
         mg.prolong0(w, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
         self._backward(omega, nu)
 
@@ -387,10 +388,10 @@ class MultigridStepper:
             else:
                 # preconditioned conjugate gradients: z = w - u after one symmetric cycle on w = u
                 self.cycle_symmetric(omega)
-                rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, nb)
+                rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, *op._segments, nb)
                 beta = rz / self._rz if (self._k > 0 and self._rz != 0.0) else 0.0
                 mg.fcg_direction(self.w, u, self.p, beta, nb)
-                pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, nb)
+                pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, *op._segments, nb)
                 alpha = pr / pap if pap > 0.0 else 0.0
                 du = mg.fcg_update(u, self.p, alpha, self.w, nb)
                 self._rz = rz
