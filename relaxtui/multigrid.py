@@ -10,8 +10,8 @@ import numpy as np
 from relaxtui.errors import UsageError
 
 DEFAULT_OMEGA = 1.2
-GAMMA = 2
-KRYLOV = True
+GAMMA = 2  # W-cycles below level 1
+KRYLOV = True  # conjugate gradients around the cycle
 KRYLOV_SWEEPS = 2  # sweeps before and after the coarse correction in the symmetric cycle
 PRE_SWEEPS = 2
 POST_SWEEPS = 1
@@ -121,17 +121,31 @@ class Level:
         self.nblk = _nblk(self.shape[0] * self.shape[1], self.shape[0])
 
 
-def _operator_parallel_cells() -> int:
-    from relaxtui.operator import PARALLEL_CELLS as cells
-
-    return cells
-
-
 def _coarse_shape(shape):
     return ((shape[0] + 1) // 2, (shape[1] + 1) // 2)
 
 
 class Hierarchy:
+    """The coarse levels of an operator (see the module docstring) and the coarse part of a cycle.
+
+    Parameters
+    ----------
+    operator : relaxtui.operator.Operator
+    coarsest : int
+        A level with at most this many unknowns is the coarsest and is solved
+        directly (banded Cholesky).
+    bulk : bool
+        Use the bulk-stencil shortcut in the Galerkin products (identical
+        results; off only for tests that check the shortcut).
+
+    Attributes
+    ----------
+    levels : list of Level
+        Levels 1, 2, ... (level 0 is the operator itself); empty when the
+        problem is small enough to be solved directly on its own grid.
+    setup_seconds : float
+    """
+
     def __init__(self, operator, coarsest: int = COARSEST_UNKNOWNS, bulk: bool = True):
         from relaxtui.kernels import multigrid as mg
 
@@ -171,6 +185,16 @@ class Hierarchy:
             if not ok:  # pragma: no cover - P^T A P of a positive definite A is positive definite
                 raise UsageError("multigrid: the coarsest operator is not positive definite")
         self.setup_seconds = time.perf_counter() - t0
+
+    def memory_bytes(self) -> int:
+        """Bytes of the coarse levels' arrays (stencils, inverse diagonals, corrections, right-hand
+        sides, interpolation weights) and of the coarsest factor."""
+        total = 0
+        for L in self.levels:
+            total += L.A.nbytes + L.Dinv.nbytes + L.e.nbytes + L.f.nbytes + (L.P.nbytes if L.P is not None else 0)
+        if self.levels:
+            total += self.L.nbytes + self.index.nbytes + self.cells.nbytes
+        return int(total)
 
     def interpolation(self, l: int):
         """Interpolation from level l + 1 to level l as triplets (fine index, coarse index, weight).
@@ -247,6 +271,12 @@ class Hierarchy:
         return np.concatenate(out_r), np.concatenate(out_c), np.concatenate(out_v)
 
     def cycle_coarse(self, l: int, omega: float, pre: int, post: int, gamma: int) -> None:
+        """Approximately solve A e = f on ``self.levels[l]`` (e zero on entry), in place.
+
+        ``pre`` forward and ``post`` reverse four-colour sweeps around the
+        correction from the next level, which is visited ``gamma`` times
+        (1: V-cycle, 2: W-cycle); the coarsest level is solved exactly.
+        """
         from relaxtui.kernels import multigrid as mg
 
         L = self.levels[l]
@@ -264,38 +294,74 @@ class Hierarchy:
 
 
 class MultigridStepper:
-    """``sweep`` runs multigrid iterations on the operator's working field (one iteration = one "sweep")."""
+    """Multigrid iterations on an operator's working field; one iteration is one "sweep" of the driver.
+
+    Parameters
+    ----------
+    operator : relaxtui.operator.Operator
+    krylov : bool
+        True (default): conjugate gradients, each iteration preconditioned by
+        one symmetric cycle (``krylov_sweeps`` forward red-black sweeps before
+        the coarse correction, as many backward after, W below level 1).
+        False: the plain cycle as a stationary iteration (``pre`` forward
+        sweeps, ``post`` after, ``gamma`` visits of each coarser level).
+    pre, post, gamma, krylov_sweeps : int
+        Smoothing sweeps and cycle shape (see above); the coarse levels use
+        the same counts.
+    coarsest : int
+        Unknowns of the coarsest level (solved directly).
+
+    Attributes
+    ----------
+    info : dict
+        ``levels`` (list of {shape, unknowns}, finest first), ``setup_seconds``,
+        ``cycle`` (a description), ``memory_bytes`` (arrays held beyond the
+        operator's own), shown by the UI and put in the report.
+    rule_options, max_chunk
+        What the driver passes to the stopping rule (rate window 2, no
+        envelope: the updates of a multigrid iteration fall by a large factor
+        each time) and its chunk cap (one iteration: each gains a decade or
+        more, so the rule looks after every one).
+    """
 
     rule_options = {"min_window": 2, "envelope": 1}
     max_chunk = 1
 
-    def __init__(self, operator, *, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS, gamma: int = GAMMA,
-                 coarsest: int = COARSEST_UNKNOWNS, coarse_pre: int | None = None, coarse_post: int | None = None,
-                 krylov: bool = KRYLOV):
+    def __init__(self, operator, *, krylov: bool = KRYLOV, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS,
+                 gamma: int = GAMMA, krylov_sweeps: int = KRYLOV_SWEEPS, coarsest: int = COARSEST_UNKNOWNS):
         from relaxtui.kernels import multigrid as mg
 
+        for name, v, lo in (("pre", pre, 0), ("post", post, 1), ("gamma", gamma, 1), ("krylov_sweeps", krylov_sweeps, 1),
+                            ("coarsest", coarsest, 1)):
+            if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < lo:
+                raise UsageError(f"multigrid: {name} must be a whole number >= {lo}, got {v!r}")
+        if gamma > 2:
+            raise UsageError(f"multigrid: gamma must be 1 (V-cycle) or 2 (W-cycle), got {gamma}")
         self.operator = operator
-        self.pre = pre
-        self.post = post
-        self.gamma = gamma
-        self.coarse_pre = pre if coarse_pre is None else coarse_pre
-        self.coarse_post = post if coarse_post is None else coarse_post
-        self.krylov = krylov
-        self.h = Hierarchy(operator, coarsest)
+        self.krylov = bool(krylov)
+        self.pre = int(pre)
+        self.post = int(post)
+        self.gamma = int(gamma)
+        self.krylov_sweeps = int(krylov_sweeps)
+        self.h = Hierarchy(operator, int(coarsest))
         self.direct = not self.h.levels and operator.unknowns > 0
-        if self.direct:  # small problem: the banded Cholesky of level 0 itself
-            A = np.zeros((5,) + operator.padded_shape)
-            self.b0 = np.zeros(operator.padded_shape)
-            mg.planes0(operator.cls, operator.table, operator.diag, A, self.b0)
-            by_rows = operator.shape[1] <= operator.shape[0]
-            self.index0, self.cells0, self.bw0 = mg.band_order(A, by_rows)
-            self.L0, ok = mg.band_factor(A, self.index0, self.cells0, self.bw0)
-            del A
         shape = operator.padded_shape
-        if krylov and not self.direct:
-            # The work field lives in rows 1.. of a buffer with one more row on top: the same
-            # red-black kernel run on the whole buffer (class codes shifted alike) sees every
-            # cell's colour flipped, i.e. sweeps black then red: the adjoint of the forward sweep.
+        held = 0
+        if self.direct:  # small problem: the banded Cholesky of level 0 itself
+            A = np.zeros((5,) + shape)
+            self.b0 = np.zeros(shape)
+            mg.planes0(operator.cls, operator.table, operator.diag, A, self.b0)
+            self.index0, self.cells0, self.bw0 = mg.band_order(A, operator.shape[1] <= operator.shape[0])
+            self.L0, ok = mg.band_factor(A, self.index0, self.cells0, self.bw0)
+            if not ok:  # pragma: no cover - the operator of an anchored case is positive definite
+                raise UsageError("multigrid: the operator is not positive definite")
+            del A
+            held += self.b0.nbytes + self.L0.nbytes + self.index0.nbytes + self.cells0.nbytes
+        self.u_old = self.w = self.p = None
+        if self.krylov and not self.direct:
+            # The work field lives in rows 1.. of a buffer with one more row on top: the project's
+            # red-black kernel run on the whole buffer (class codes shifted alike) sees every cell's
+            # colour flipped, so it sweeps black then red: the adjoint of the forward sweep.
             from relaxtui.kernels import assemble
             from relaxtui.operator import MIN_RUN
 
@@ -305,100 +371,204 @@ class MultigridStepper:
             self._cls_b[1:] = operator.cls
             self._seg_b = assemble.segments(self._cls_b, MIN_RUN)
             self.p = np.zeros(shape)
-            self.u_old = None
-        else:
+            held += self._w_big.nbytes + self._cls_b.nbytes + sum(a.nbytes for a in self._seg_b) + self.p.nbytes
+        elif not self.direct:
             self.u_old = np.zeros(shape)
+            held += self.u_old.nbytes
         self._synced = None
         self._k = 0
         self._rz = 0.0
-        self.krylov_sweeps = KRYLOV_SWEEPS
-        self.krylov_coarse_sweeps = KRYLOV_SWEEPS
-        self._scratch = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
-        self._scratch2 = np.zeros(max(pre, post, KRYLOV_SWEEPS, 1) + 16)
+        self._scratch = np.zeros(max(self.pre, self.post, self.krylov_sweeps) + 1)
+        self._scratch2 = np.zeros_like(self._scratch)
+        self.memory_bytes = int(held + self.h.memory_bytes())
         levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
         levels += [{"shape": list(L.shape), "unknowns": L.unknowns} for L in self.h.levels]
-        self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6),
-                     "cycle": f"V({pre},{post}) gamma={gamma} krylov={krylov}"}
+        self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6), "cycle": self.describe(),
+                     "memory_bytes": self.memory_bytes}
 
-    def cycle(self, u, omega) -> None:
+    def describe(self) -> str:
+        if self.operator.unknowns == 0:
+            return "no unknowns"
+        if self.direct:
+            return f"direct banded Cholesky of the {self.operator.unknowns} unknowns (a small problem)"
+        shape = "W" if self.gamma == 2 else "V"
+        coarsest = f"banded Cholesky on the coarsest level ({self.h.levels[-1].unknowns} unknowns)"
+        if self.krylov:
+            nu = self.krylov_sweeps
+            return (f"conjugate gradients preconditioned by one symmetric {shape}({nu},{nu}) cycle: red-black SOR on "
+                    f"the finest level (backward after the correction), four-colour SOR on {len(self.h.levels)} "
+                    f"Galerkin 9-point coarse levels, {coarsest}")
+        return (f"{shape}({self.pre},{self.post}) cycles: red-black SOR on the finest level, four-colour SOR on "
+                f"{len(self.h.levels)} Galerkin 9-point coarse levels, {coarsest}")
+
+    # --- cycles ----------------------------------------------------------------------------
+
+    def _segments(self):
+        op = self.operator
+        return op.row_ptr, op.seg_start, op.seg_end, op.seg_class
+
+    def _correct(self, v, omega, coarse_pre, coarse_post) -> None:
+        """v += P e_1 with e_1 from the coarse levels for the residual of v (v: a working array)."""
         from relaxtui.kernels import multigrid as mg
 
         op = self.operator
         h = self.h
+        L1 = h.levels[0]
+        mg.restrict0(v, op.cls, op.table, op.diag, *self._segments(), h.ptab, h.pflag, L1.f, h.nblk0)
+        mg.zero_fill(L1.e, L1.nblk)
+        h.cycle_coarse(0, omega, coarse_pre, coarse_post, self.gamma)
+        mg.prolong0(v, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
+
+    def cycle(self, u, omega) -> None:
+        """One stationary cycle on the field u, in place."""
+        from relaxtui.kernels import multigrid as mg
+
+        op = self.operator
         if op.unknowns == 0:
             return
         if self.direct:
             mg.band_solve(self.L0, self.cells0, self.bw0, self.b0, u)
             return
-        op.sweep(u, "red-black-sor", omega, self.pre, self._scratch, self._scratch2)
-        L1 = h.levels[0]
-        mg.restrict0(u, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
-                     L1.f, h.nblk0)
-        mg.zero_fill(L1.e, L1.nblk)
-        h.cycle_coarse(0, omega, self.coarse_pre, self.coarse_post, self.gamma)
-        mg.prolong0(u, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
-        op.sweep(u, "red-black-sor", omega, max(self.post, 1), self._scratch, self._scratch2)
+        if self.pre:
+            op.sweep(u, "red-black-sor", omega, self.pre, self._scratch, self._scratch2)
+        self._correct(u, omega, self.pre, self.post)
+        op.sweep(u, "red-black-sor", omega, self.post, self._scratch, self._scratch2)
 
     def _backward(self, omega, sweeps) -> None:
-        """``sweeps`` black-then-red SOR sweeps of the work field (see __init__)."""
-        from relaxtui.kernels import sweeps as k
-
-        op = self.operator
+        """``sweeps`` black-then-red SOR sweeps of the work field (the kernel on the shifted buffer)."""
         import numba
 
-        if numba.get_num_threads() >= 2 and op.cells_streamed >= _operator_parallel_cells():
-            nblk = max(1, min(numba.get_num_threads(), op.shape[0] + 1))
-            k.sor_red_black(self._w_big, self._cls_b, op.table, *self._seg_b, omega, sweeps, self._scratch, self._scratch2, nblk)
+        from relaxtui.kernels import sweeps as k
+        from relaxtui.operator import PARALLEL_CELLS
+
+        op = self.operator
+        threads = numba.get_num_threads()
+        if threads >= 2 and op.cells_streamed >= PARALLEL_CELLS:
+            k.sor_red_black(self._w_big, self._cls_b, op.table, *self._seg_b, omega, sweeps, self._scratch, self._scratch2,
+                            max(1, min(threads, op.shape[0] + 1)))
         else:
             k.sor_red_black_serial(self._w_big, self._cls_b, op.table, *self._seg_b, omega, sweeps, self._scratch, self._scratch2)
 
     def cycle_symmetric(self, omega) -> None:
-        """One symmetric cycle on the work field: forward sweeps, coarse correction, as many backward sweeps."""
-        from relaxtui.kernels import multigrid as mg
+        """One symmetric cycle on the work field w: forward sweeps, coarse correction, as many backward sweeps.
 
-        op = self.operator
-        h = self.h
-        w = self.w
+        With the coarse levels also swept forward then backward the same
+        number of times, the cycle's operator B (w -> w + B r(w)) is
+        symmetric and positive definite: a valid preconditioner for CG.
+        """
         nu = self.krylov_sweeps
-        op.sweep(w, "red-black-sor", omega, nu, self._scratch, self._scratch2)
-        L1 = h.levels[0]
-        mg.restrict0(w, op.cls, op.table, op.diag, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, h.ptab, h.pflag,
-                     L1.f, h.nblk0)
-        mg.zero_fill(L1.e, L1.nblk)
-        h.cycle_coarse(0, omega, self.krylov_coarse_sweeps, self.krylov_coarse_sweeps, self.gamma)
-        mg.prolong0(w, op.cls, op.table, h.ptab, h.pflag, L1.e, h.nblk0)
+        self.operator.sweep(self.w, "red-black-sor", omega, nu, self._scratch, self._scratch2)
+        self._correct(self.w, omega, nu, nu)
         self._backward(omega, nu)
 
+    # --- the stepper interface ---------------------------------------------------------------
+
     def sweep(self, u, omega, sweeps, updates, residuals) -> int:
+        """Run ``sweeps`` iterations on the working field ``u`` in place (the driver's call shape).
+
+        Parameters
+        ----------
+        u : working array of the operator (``new_field``), modified in place.
+        omega : float in (0, 2), the smoothers' relaxation factor.
+        sweeps : int >= 0; 0 only loads the kernels (before a timed run).
+        updates, residuals : float64 arrays of length >= ``sweeps``, written per
+            iteration: the largest |change of u| (field units; for CG the exact
+            step |alpha p|) and the largest contract residual (CG: of the field
+            before the step; cycles: the last relaxation sweep's, as red-black
+            SOR reports it).
+
+        Returns
+        -------
+        int: iterations done; fewer when an update was not finite.
+
+        The stepper remembers its state (CG direction, previous field) between
+        calls on the same array; a different array restarts it.
+        """
         from relaxtui.kernels import multigrid as mg
 
         op = self.operator
+        op._check_field(u)
+        omega = float(omega)
+        if not 0.0 < omega < 2.0:
+            raise UsageError(f"omega must lie in (0, 2), got {omega}")
+        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
+            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+        for name, arr in (("updates", updates), ("residuals", residuals)):
+            if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or arr.ndim != 1 or arr.shape[0] < sweeps:
+                raise UsageError(f"{name} must be a 1-D float64 array of length >= {sweeps}")
+        if sweeps == 0:
+            self._warm(u, omega)
+            return 0
         nb = self.h.nblk0
         key = (u.__array_interface__["data"][0], u.shape)
-        if self._synced != key:
-            mg.copy_into(u, self.w if self.u_old is None else self.u_old, nb)
+        if self._synced != key and not self.direct:
+            mg.copy_into(u, self.w if self.krylov else self.u_old, nb)
             self._synced = key
             self._k = 0
         done = 0
-        for k in range(sweeps):
-            if self.u_old is not None:
+        for k in range(int(sweeps)):
+            if op.unknowns == 0:
+                du = res = 0.0
+            elif self.direct:
+                at = (self.cells0[:, 0], self.cells0[:, 1])
+                before = u[at]
+                self.cycle(u, omega)
+                du = float(np.max(np.abs(u[at] - before)))
+                res = op.residual(u)
+            elif not self.krylov:
                 self.cycle(u, omega)
                 du = mg.delta_copy(u, self.u_old, nb)
-                res = self._scratch2[max(self.post, 1) - 1] if not self.direct else 0.0
+                res = float(self._scratch2[self.post - 1])
             else:
-                # preconditioned conjugate gradients: z = w - u after one symmetric cycle on w = u
-                self.cycle_symmetric(omega)
-                rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, *op._segments, nb)
-                beta = rz / self._rz if (self._k > 0 and self._rz != 0.0) else 0.0
-                mg.fcg_direction(self.w, u, self.p, beta, nb)
-                pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, *op._segments, nb)
-                alpha = pr / pap if pap > 0.0 else 0.0
-                du = mg.fcg_update(u, self.p, alpha, self.w, nb)
-                self._rz = rz
-                self._k += 1
+                du, res = self._cg_step(u, omega)
             updates[k] = du
             residuals[k] = res
             done = k + 1
             if not math.isfinite(du):
                 break
         return done
+
+    def _cg_step(self, u, omega):
+        """One iteration of preconditioned conjugate gradients on the field u (w == u on entry and exit)."""
+        from relaxtui.kernels import multigrid as mg
+
+        op = self.operator
+        nb = self.h.nblk0
+        self.cycle_symmetric(omega)  # w = u + B r(u): the preconditioned residual is z = w - u
+        rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, *self._segments(), nb)
+        beta = rz / self._rz if (self._k > 0 and self._rz != 0.0) else 0.0
+        mg.fcg_direction(self.w, u, self.p, beta, nb)  # p = z + beta p
+        pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, *self._segments(), nb)
+        alpha = pr / pap if pap > 0.0 else 0.0  # exact line search along p (pr = p . r(u))
+        du = mg.fcg_update(u, self.p, alpha, self.w, nb)  # u += alpha p; w = u
+        self._rz = rz
+        self._k += 1
+        return du, res
+
+    def _warm(self, u, omega) -> None:
+        """Load (or compile) every kernel of an iteration without changing u: a step of length 0."""
+        key = (self.operator.cls.dtype.str, self.krylov, self.direct)
+        if key in _WARM or self.operator.unknowns == 0:
+            return
+        from relaxtui.kernels import multigrid as mg
+
+        nb = self.h.nblk0
+        if self.direct:
+            mg.band_solve(self.L0, self.cells0, self.bw0, self.b0, u.copy())
+        elif self.krylov:
+            mg.copy_into(u, self.w, nb)
+            self.cycle_symmetric(omega)
+            mg.pcg_rz(u, self.w, self.operator.cls, self.operator.table, self.operator.diag, *self._segments(), nb)
+            mg.fcg_direction(self.w, u, self.p, 0.0, nb)
+            mg.fcg_dots(u, self.p, self.operator.cls, self.operator.table, self.operator.diag, *self._segments(), nb)
+            mg.fcg_update(u, self.p, 0.0, self.w, nb)  # alpha 0: u unchanged, w = u again
+            self.p[...] = 0.0
+        else:
+            mg.copy_into(u, self.u_old, nb)
+            self.cycle(self.u_old, omega)  # on the copy
+            mg.delta_copy(u, self.u_old, nb)  # u_old = u again
+        self._synced = None
+        _WARM.add(key)
+
+
+_WARM: set = set()  # (class dtype, krylov, direct) whose kernels this process has loaded
