@@ -636,8 +636,9 @@ def _collapsed(sa, sc, sb, have_a, have_b, out, k):
     """Weights of a row/column cell from its collapsed sums: side a, centre, side b (A entries).
 
     A side is used when its source exists and its coupling is negative
-    (M-matrix-like); otherwise its sum is folded into the centre. Returns 1
-    if the cell has no usable weight (it is then aggregated: weight 1 to its block).
+    (M-matrix-like); otherwise its sum is folded into the centre. The
+    weights sum to at most 1. Returns 1 if the cell has no usable weight (it
+    is then aggregated: weight 1 to its block).
     """
     use_a = have_a and sa < 0.0
     use_b = have_b and sb < 0.0
@@ -646,7 +647,9 @@ def _collapsed(sa, sc, sb, have_a, have_b, out, k):
         den += sa
     if not use_b:
         den += sb
-    if den > 0.0 and (use_a or use_b):
+    if use_a or use_b:
+        # the weights sum to at most 1 (a coarse stencil need not be diagonally dominant)
+        den = max(den, -((sa if use_a else 0.0) + (sb if use_b else 0.0)))
         out[k] = -sa / den if use_a else 0.0
         out[k + 1] = -sb / den if use_b else 0.0
         return 0
@@ -739,7 +742,13 @@ def interpolation9(A, P, lost, nblk):
                 w01 = -(ane * cne + an * P[1, I + 1, J + 1] + ae * P[2, I + 1, J + 2]) / d
                 w10 = -(asw * csw + a_s * P[0, I + 2, J + 1] + aw * P[3, I + 1, J + 1]) / d
                 w11 = -(ase * cse + a_s * P[1, I + 2, J + 1] + ae * P[3, I + 1, J + 2]) / d
-                if w00 + w01 + w10 + w11 > 0.0:
+                total = w00 + w01 + w10 + w11
+                if total > 1.0:  # at most 1, as for the row and column cells
+                    w00 /= total
+                    w01 /= total
+                    w10 /= total
+                    w11 /= total
+                if total > 0.0:
                     P[4, I + 1, J + 1] = w00
                     P[5, I + 1, J + 1] = w01
                     P[6, I + 1, J + 1] = w10
