@@ -205,7 +205,7 @@ class Run:
         op = self.operator
         if self._continue is not None:
             self._u = np.array(self._continue, dtype=np.float64, copy=True)
-            if self._u.shape != op.new_field().shape:
+            if self._u.shape != tuple(op.padded_shape):
                 raise UsageError("the field to continue from belongs to another case")
         else:
             self._u = op.new_field(self._initial)
