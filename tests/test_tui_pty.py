@@ -28,12 +28,13 @@ def test_open_run_reaches_converged_in_a_terminal(tmp_path):
     log = tmp_path / "screen.log"
     child.logfile_read = open(log, "w", encoding="utf-8")
     try:
-        child.expect("converged")  # the generous timeout guards a first kernel compilation, it is no speed check
+        # the stopping rule in words reaches the status strip (the generous timeout guards a
+        # first kernel compilation; it is no speed check)
+        child.expect("equilibrium reached")
         child.send("q")
         child.expect(pexpect.EOF)
     finally:
         child.close(force=True)
         child.logfile_read.close()
     assert child.exitstatus == 0, child.before
-    # the stopping rule in words reached the status strip
-    assert "equilibrium reached" in log.read_text(encoding="utf-8")
+    assert "converged" in log.read_text(encoding="utf-8")
