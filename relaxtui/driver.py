@@ -411,6 +411,9 @@ class Run:
     def _finish(self, status: str) -> None:
         self.status = status
         self.message = self._describe(status)
+        release = getattr(self._stepper, "release", None)  # a stepper's own buffers are not needed any more
+        if release is not None:
+            release()
 
     # -- reporting -------------------------------------------------------------
     def _describe(self, status: str | None) -> str:

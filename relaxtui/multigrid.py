@@ -329,8 +329,6 @@ class MultigridStepper:
 
     def __init__(self, operator, *, krylov: bool = KRYLOV, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS,
                  gamma: int = GAMMA, krylov_sweeps: int = KRYLOV_SWEEPS, coarsest: int = COARSEST_UNKNOWNS):
-        from relaxtui.kernels import multigrid as mg
-
         for name, v, lo in (("pre", pre, 0), ("post", post, 1), ("gamma", gamma, 1), ("krylov_sweeps", krylov_sweeps, 1),
                             ("coarsest", coarsest, 1)):
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < lo:
@@ -343,7 +341,19 @@ class MultigridStepper:
         self.post = int(post)
         self.gamma = int(gamma)
         self.krylov_sweeps = int(krylov_sweeps)
-        self.h = Hierarchy(operator, int(coarsest))
+        self.coarsest = int(coarsest)
+        self._build()
+        levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
+        levels += [{"shape": list(L.shape), "unknowns": L.unknowns} for L in self.h.levels]
+        self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6), "cycle": self.describe(),
+                     "memory_bytes": self.memory_bytes}
+
+    def _build(self) -> None:
+        """The hierarchy and the iteration's buffers (again after :meth:`release`)."""
+        from relaxtui.kernels import multigrid as mg
+
+        operator = self.operator
+        self.h = Hierarchy(operator, self.coarsest)
         self.direct = not self.h.levels and operator.unknowns > 0
         shape = operator.padded_shape
         held = 0
@@ -381,10 +391,14 @@ class MultigridStepper:
         self._scratch = np.zeros(max(self.pre, self.post, self.krylov_sweeps) + 1)
         self._scratch2 = np.zeros_like(self._scratch)
         self.memory_bytes = int(held + self.h.memory_bytes())
-        levels = [{"shape": list(operator.shape), "unknowns": int(operator.unknowns)}]
-        levels += [{"shape": list(L.shape), "unknowns": L.unknowns} for L in self.h.levels]
-        self.info = {"levels": levels, "setup_seconds": round(self.h.setup_seconds, 6), "cycle": self.describe(),
-                     "memory_bytes": self.memory_bytes}
+
+    def release(self) -> None:
+        """Drop the hierarchy and the buffers (the driver calls this when a run ends, before its report:
+        the report's own arrays then do not add to them). A later :meth:`sweep` builds them again."""
+        self.h = None
+        self.u_old = self.w = self.p = self._w_big = self._cls_b = self._seg_b = None
+        self.b0 = self.L0 = self.index0 = self.cells0 = None
+        self._synced = None
 
     def describe(self) -> str:
         if self.operator.unknowns == 0:
@@ -496,6 +510,8 @@ class MultigridStepper:
         for name, arr in (("updates", updates), ("residuals", residuals)):
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or arr.ndim != 1 or arr.shape[0] < sweeps:
                 raise UsageError(f"{name} must be a 1-D float64 array of length >= {sweeps}")
+        if self.h is None:
+            self._build()
         if sweeps == 0:
             self._warm(u, omega)
             return 0
