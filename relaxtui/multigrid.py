@@ -36,7 +36,8 @@ The cycle
   on a copy of the field shifted by one row (every cell's colour flips). Coarse levels:
   four-colour SOR over the 9-point planes, forward before and backward after. Below level 1 each
   level is visited twice (W-cycle: about 13 % more work per iteration than a V-cycle at 2047², for
-  factors that stay put as the grid grows: V 0.062 -> 0.073 from 255² to 2047², W 0.050 both).
+  factors that stay put as the grid grows: plain cycles at ω 1, V 0.062 -> 0.073 from 255² to
+  2047², W 0.050 at both).
   The cycle is therefore a symmetric positive definite preconditioner, as CG needs (tested).
 
 Why CG around the cycle (measured, homogeneous problems from a random start, factor per iteration)
