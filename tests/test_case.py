@@ -664,7 +664,7 @@ def test_memory_model_constants():
     assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + 9 * padded + 12 * cells
     assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + 17 * padded + 12 * cells
     assert memory.estimate_solve_bytes(rows, cols, "sor", 300) == fixed + 10 * padded + 12 * cells
-    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + 9 * padded + 34 * cells
+    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + 9 * padded + 56 * cells
 
 
 def test_available_bytes_is_sane(monkeypatch):
