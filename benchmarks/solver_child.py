@@ -63,9 +63,10 @@ def solve_relaxtui(case, tol, cap, method):
     res = solve(case, method=method, omega="auto" if method != "multigrid" else None, tolerance=tol, time_limit=cap)
     wall = time.perf_counter() - t
     r = res.report
-    info = {"iterations": int(r["sweeps"]), "status": r["status"], "estimated_error": float(r["estimated_error"]),
+    est = r["estimated_error"]  # None when the stopping rule had no estimate (e.g. a stalled run)
+    info = {"iterations": int(r["sweeps"]), "status": r["status"], "estimated_error": math.nan if est is None else float(est),
             "prepare_seconds": float(r.get("prepare_seconds", math.nan)), "sweep_seconds": float(r["seconds"]),
-            "omega": float(r["omega"]), "wall": wall}
+            "omega": float(r["omega"]), "wall": wall, "message": r.get("message", "")}
     return res.field, info
 
 
