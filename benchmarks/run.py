@@ -189,9 +189,9 @@ def render_markdown(sections: list[dict], meta: dict) -> str:
             out.append("Targets:")
             out.append("")
             for tg in sec["targets"]:
-                mark = "" if tg.get("ok") is None else ("met" if tg["ok"] else "**MISSED**")
+                mark = "" if tg.get("ok") is None else ("met: " if tg["ok"] else "**MISSED**: ")
                 extra = f" ({tg['note']})" if tg.get("note") else ""
-                out.append(f"- {mark}: {tg['target']}: {tg['measured']}{extra}")
+                out.append(f"- {mark}{tg['target']}: {tg['measured']}{extra}")
             out.append("")
         for n in sec.get("notes", []):
             out.append(f"- {n}")

@@ -37,7 +37,9 @@ def run(quick: bool) -> dict:
             speedup = f"{st['median'] / base:.2f}x" if base else ""
             rows.append([LABEL[m], f"{t} (numba reports {r['threads']})", common.fmt_stats(st), speedup, f"{r['sweeps']} sweeps per call"])
     notes.append(f"Uniform model problem {n}² ({results[counts[0]].get('cells', 0):,} cells streamed); a sweep on a grid this size "
-                 "streams from memory, so the speed-up is bounded by the memory bandwidth two cores can draw, not by the core count.")
+                 "streams from memory, so even on an idle machine the speed-up is bounded by the bandwidth two cores can draw.")
+    notes.append("When other processes use about a core during this section (see the line below), the 2-thread run has no "
+                 "second core of its own and its speed-up says nothing about the kernels.")
     return {"title": f"4. Threads ({n}², uniform)",
             "tables": [{"columns": ["method", "threads", "Mcell/s median (min–max)", "speed-up vs 1 thread", "notes"], "rows": rows}],
             "notes": notes, "targets": [], "data": {str(k): v for k, v in results.items()}}
