@@ -4,7 +4,7 @@ A picture is a list of equal-length strings; a legend maps each character to a
 :class:`relaxtui.model.Region`. Row 0 of the picture is the top row, as in an
 image. The helpers :func:`interior`, :func:`fixed`, :func:`outside`,
 :func:`flux` and :func:`convection` build regions with the contract's keys
-(``/work/shared/case-format.md``); colours are filled in by :func:`make_case`
+(``the case-format contract (case-format.md)``); colours are filled in by :func:`make_case`
 (one distinct colour per region) since the operator never looks at them.
 
 Example::

@@ -1,7 +1,7 @@
 """Slow, obvious reference sweeps: plain Python loops over the picture, one cell at a time.
 
 Each interior cell's equation is built here from the regions, following the
-contract's text (``/work/shared/case-format.md``, "The discrete equations"),
+contract's text (``the case-format contract (case-format.md)``, "The discrete equations"),
 with none of the operator's machinery (no classes, no table, no padding):
 
     D_P = sum of G_PN over domain neighbours + sum of U h over convection faces

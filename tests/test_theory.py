@@ -1,6 +1,6 @@
 """The kernels against published iterative-method theory and closed-form answers.
 
-Sources (see /work/shared/references.md): §9 model problem factors (D. M. Young,
+Sources (see the published check values (references.md)): §9 model problem factors (D. M. Young,
 *Iterative Solution of Large Linear Systems*, 1971; R. S. Varga, *Matrix
 Iterative Analysis*), §10 red-black vs lexicographic Gauss-Seidel (Young 1971),
 §11 weighted Jacobi (Saad, *Iterative Methods for Sparse Linear Systems*, ch. 4),
