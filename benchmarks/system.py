@@ -1,7 +1,7 @@
 """The contract's discrete equations as a scipy.sparse matrix, assembled with numpy (for 4096² grids).
 
 This is the approach of ``tests/exact.py`` (an assembly written from the text
-of the contract, ``the case-format contract (case-format.md)``, "The discrete equations",
+of the case-format contract, ``case-format.md``, "The discrete equations",
 reading nothing of relaxtui but the :class:`relaxtui.model.Case` data),
 vectorised over the grid so that a 16-million-cell picture assembles in
 seconds instead of hours. Benchmarks must not import from ``tests/``, so it
