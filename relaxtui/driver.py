@@ -289,7 +289,9 @@ class Run:
             gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
             if prior >= 1.0:
                 prior = gap = None  # no convergence predicted (e.g. over-weighted Jacobi): measure only
-        self.rule.restart(prior_factor=prior, prior_gap=gap)
+        # SOR near ω = 2 wanders for many sweeps before it settles: never call that a stall
+        stall = int(20.0 / max(2.0 - self.omega, 1e-6)) if m.needs_radius else 0
+        self.rule.restart(prior_factor=prior, prior_gap=gap, stall_window=stall)
         self.omega_changes.append((self.rule.sweeps, self.omega, self.omega_note))
 
     def set_omega(self, omega) -> None:
@@ -425,8 +427,10 @@ class Run:
         if status == stopping.CONVERGED:
             return f"equilibrium reached: estimated error {err} <= {tol} after {n} sweeps"
         if status == stopping.STALLED:
-            return (f"stalled after {n} sweeps: no further progress, estimated error {err} > {tol} "
-                    "(the tolerance may be below what float64 resolves on this grid)")
+            if self.rule.at_floor():
+                return (f"stalled after {n} sweeps: the updates are at float64's rounding floor while the "
+                        f"estimated error {err} > {tol} (the tolerance is below what this grid resolves)")
+            return f"stalled after {n} sweeps: no progress over a long window, estimated error {err} > {tol}"
         if status == stopping.DIVERGED:
             return f"diverged after {n} sweeps at omega {self.omega:.4g}: the field grows without bound"
         if status == stopping.SWEEP_LIMIT:

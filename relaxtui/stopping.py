@@ -235,6 +235,7 @@ class StoppingRule:
         self.last_estimate = Estimate(math.inf, None, None, False)  # the raw estimate behind ``last``
         self._latest: Estimate | None = None
         self._chunk_errors = np.empty(0)
+        self.stall_window = 0  # the caller's floor for the no-progress window (SOR's long transient)
 
     # -- feeding ---------------------------------------------------------------
     def add(self, updates) -> None:
@@ -263,10 +264,11 @@ class StoppingRule:
                                     None if math.isnan(meas[-1]) or not last_ok else float(meas[-1]),
                                     bool(mature[-1]) and last_ok)
 
-    def restart(self, prior_factor: float | None = None, prior_gap: float | None = None) -> None:
+    def restart(self, prior_factor: float | None = None, prior_gap: float | None = None, stall_window: int = 0) -> None:
         """The iteration changed (new ω, new method): measure rates afresh from here."""
         self._segment = self._n
         self._latest = None
+        self.stall_window = int(stall_window)
         self.prior_factor = prior_factor
         self.prior_gap = prior_gap
         self._settled_factor = None
@@ -302,7 +304,7 @@ class StoppingRule:
             est = self.last_estimate = Estimate(FLOOR_ULPS * _EPS * self.scale, est.factor, est.measured, True)
         if est.mature and est.factor is not None:
             self._settled_factor = est.factor
-        elif self._at_floor() and self._settled_factor is not None:
+        elif self.at_floor() and self._settled_factor is not None:
             # Updates are rounding noise now, so their ratios say nothing; the
             # factor measured before the floor still bounds what is left.
             recent = float(self._updates[max(self._segment, self._n - self.envelope) : self._n].max())
@@ -351,7 +353,7 @@ class StoppingRule:
         e_now, e_mid, e_old = _envelope_at(seg, np.array([k, k - m, k - 2 * m]), self.envelope)
         return e_now > e_mid > e_old and e_now > 1e3 * self._best
 
-    def _at_floor(self) -> bool:
+    def at_floor(self) -> bool:
         """Whether the last updates are at the float64 rounding floor of the field."""
         if self._n - self._segment < self.min_window:
             return False
@@ -361,9 +363,9 @@ class StoppingRule:
     def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
         if len(seg) < 2 * self.min_window:
             return False
-        if self._at_floor() and est.error > self.tolerance:
+        if self.at_floor() and est.error > self.tolerance:
             return True  # rounding noise: no further progress is possible
-        window = max(STALL_MIN_WINDOW, (self._n - self._segment) // 2)
+        window = max(STALL_MIN_WINDOW, (self._n - self._segment) // 2, self.stall_window)
         if est.factor is not None and 0.0 < est.factor < 1.0:
             # at the measured rate a 1 % improvement takes about 0.01/(1 - rho) sweeps
             window = max(window, int(5.0 / (1.0 - est.factor)))
