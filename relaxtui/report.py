@@ -34,10 +34,11 @@ def cell_position(case, row: int, col: int) -> dict:
 
 def extremes(case, field: np.ndarray) -> dict:
     """min and max over interior and fixed cells with their positions."""
-    finite = np.isfinite(field)
-    if not finite.any():
+    # the exported field is NaN outside the domain already; only a diverged run's
+    # infinities need masking (a full copy is 8 B/cell at the solve's peak)
+    masked = np.where(np.isinf(field), np.nan, field) if np.isinf(field).any() else field
+    if np.isnan(masked).all():
         return {"min": None, "max": None, "min_at": None, "max_at": None}
-    masked = np.where(finite, field, np.nan)
     i_min = int(np.nanargmin(masked))
     i_max = int(np.nanargmax(masked))
     cols = field.shape[1]
