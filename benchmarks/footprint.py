@@ -11,7 +11,7 @@ Peak RSS is ru_maxrss of the child from wait4. ``--quick`` uses the demo
 subsampled every 4th pixel (1024²), where the fixed part dominates.
 
 Budget: 48 B/cell with several materials and 32 B/cell with one, plus a fixed
-200 MB (MiB, as relaxtui.memory counts it); B/cell = (peak - 200 MiB) / cells
+200 MB (MiB, as relaxtui.solver.memory counts it); B/cell = (peak - 200 MiB) / cells
 of the picture.
 """
 

@@ -38,7 +38,7 @@ MB = 1 << 20
 
 def uniform_codes(n: int) -> tuple[np.ndarray, tuple]:
     """n x n unknowns in a one-cell frame: hot top row, cold elsewhere (the model problem)."""
-    from relaxtui.model import Region
+    from relaxtui.case.model import Region
 
     codes = np.zeros((n + 2, n + 2), dtype=np.uint8)
     codes[0, :] = 1
@@ -52,7 +52,7 @@ def uniform_codes(n: int) -> tuple[np.ndarray, tuple]:
 
 def two_material_codes(n: int) -> tuple[np.ndarray, tuple]:
     """The uniform case with a disc insert (k = 10, a source) of radius n/4 and a convection edge on the right."""
-    from relaxtui.model import Region
+    from relaxtui.case.model import Region
 
     codes, regions = uniform_codes(n)
     codes[1:-1, -1] = 4
@@ -67,7 +67,7 @@ def two_material_codes(n: int) -> tuple[np.ndarray, tuple]:
 
 
 def make_case(kind: str, n: int):
-    from relaxtui.model import Case
+    from relaxtui.case.model import Case
 
     codes, regions = uniform_codes(n) if kind == "uniform" else two_material_codes(n)
     return Case(path=None, mask_path=Path(f"{kind}-{n}.png"), regions=regions, codes=codes)
@@ -100,9 +100,9 @@ def row(name, value, unit, detail="", target="", ok=None):
 
 def speed_rows(n: int, calls: int, sweeps: int) -> list[dict]:
     import numba
-
     from relaxtui.kernels import sweeps as k
-    from relaxtui.operator import Operator
+
+    from relaxtui.solver.operator import Operator
 
     threads = numba.get_num_threads()
     rows = []
@@ -167,7 +167,7 @@ def speed_rows(n: int, calls: int, sweeps: int) -> list[dict]:
 
 
 def assembly_rows(n: int) -> list[dict]:
-    from relaxtui.operator import Operator
+    from relaxtui.solver.operator import Operator
 
     Operator(make_case("uniform", 8))  # kernels loaded
     rows = []
@@ -191,7 +191,7 @@ import importlib.util
 spec = importlib.util.spec_from_file_location("bench_kernels", sys.argv[1])
 bench = importlib.util.module_from_spec(spec)
 spec.loader.exec_module(bench)
-from relaxtui.operator import Operator
+from relaxtui.solver.operator import Operator
 
 def status(key):
     for line in open("/proc/self/status"):
@@ -252,7 +252,7 @@ bench = importlib.util.module_from_spec(spec)
 spec.loader.exec_module(bench)
 import numba
 t1 = time.perf_counter()
-from relaxtui.operator import Operator
+from relaxtui.solver.operator import Operator
 case = bench.make_case("uniform", 64)
 t2 = time.perf_counter()
 op = Operator(case)

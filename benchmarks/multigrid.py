@@ -34,7 +34,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import subprocess
 import sys
@@ -58,7 +57,7 @@ def row(name, value, unit, detail="", target="", ok=None):
 
 def model_case(n: int, hot: float = HOT):
     """n x n unknowns in a one-cell held frame: top row at ``hot``, the other sides at 0 (no big temporaries)."""
-    from relaxtui.model import Case, Region
+    from relaxtui.case.model import Case, Region
 
     codes = np.zeros((n + 2, n + 2), dtype=np.uint8)
     codes[0, :] = 1
@@ -130,8 +129,8 @@ def homogeneous(case):
 
 
 def factor(case, krylov: bool = True, iterations: int = 10) -> float:
-    from relaxtui.multigrid import DEFAULT_OMEGA, MultigridStepper
-    from relaxtui.operator import Operator
+    from relaxtui.solver.multigrid import DEFAULT_OMEGA, MultigridStepper
+    from relaxtui.solver.operator import Operator
 
     op = Operator(homogeneous(case))
     st = MultigridStepper(op, krylov=krylov, pre=2, post=1)
@@ -143,8 +142,8 @@ def factor(case, krylov: bool = True, iterations: int = 10) -> float:
 
 def relaxtui_time(case, exact_inner: np.ndarray, tol: float = TOL):
     """Seconds for assembly + set-up + iterations to tolerance ``tol``; (seconds, iterations, true error, setup)."""
-    from relaxtui.driver import Run
-    from relaxtui.operator import Operator
+    from relaxtui.solver.driver import Run
+    from relaxtui.solver.operator import Operator
 
     t0 = time.perf_counter()
     op = Operator(case)
@@ -218,8 +217,8 @@ MEMORY_SCRIPT = r"""
 import json, sys
 import numpy as np
 from relaxtui.case import load_case
-from relaxtui.driver import Run
-from relaxtui.operator import Operator
+from relaxtui.solver.driver import Run
+from relaxtui.solver.operator import Operator
 
 def peak():
     for line in open("/proc/self/status"):
@@ -280,7 +279,7 @@ def _own() -> float:
 
 def run(quick: bool = False) -> list[dict]:
     from relaxtui.case import load_case
-    from relaxtui.driver import solve
+    from relaxtui.solver.driver import solve
 
     t_start, busy0, own0 = time.monotonic(), _busy(), _own()
     rows = []

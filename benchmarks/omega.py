@@ -23,7 +23,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def model_case(n: int):
-    from relaxtui.model import Case, Region
+    from relaxtui.case.model import Case, Region
 
     size = n + 2
     codes = np.zeros((size, size), dtype=np.uint8)
@@ -36,7 +36,7 @@ def model_case(n: int):
 
 
 def sweeps_to(case, omega, tol, method="red-black-sor"):
-    from relaxtui.driver import solve
+    from relaxtui.solver.driver import solve
 
     r = solve(case, method=method, omega=omega, tolerance=tol).report
     return r["sweeps"], r["omega"], r["seconds"], r["status"]

@@ -24,15 +24,14 @@ below the model's.
 from __future__ import annotations
 
 import numpy as np
-
 from common import fmt_stats, kernels_bench, round_robin, stats
 
 
 def _measure_case(kind: str, n: int, repeats: int, quick: bool) -> dict:
     import numba
-
     from relaxtui.kernels import sweeps as k
-    from relaxtui.operator import Operator
+
+    from relaxtui.solver.operator import Operator
 
     kb = kernels_bench()
     threads = numba.get_num_threads()

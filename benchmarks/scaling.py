@@ -3,7 +3,7 @@
 The model problem (tolerance 1e-5) at N = 511, 1023, 2047, 4095 (``--quick``:
 127, 255, 511). Sweeps/s: fixed chunks of sweeps through the operator (no
 stopping rule), timed in a round-robin over the sizes (5 rounds after a
-warm-up). Time to tolerance: relaxtui.driver.solve with auto omega in a child
+warm-up). Time to tolerance: relaxtui.solver.driver.solve with auto omega in a child
 process per size (assembly, omega estimate and sweeps included), the same
 measurement as section 2, whose figures are reused when it ran in this
 invocation. The exponent is the least-squares slope of log(seconds) against
@@ -18,9 +18,8 @@ import shutil
 import sys
 from pathlib import Path
 
-import numpy as np
-
 import common
+import numpy as np
 import tolerance
 
 
@@ -29,7 +28,7 @@ def sizes(quick: bool) -> list[int]:
 
 
 def _sweep_rates(ns: list[int]) -> dict:
-    from relaxtui.operator import Operator
+    from relaxtui.solver.operator import Operator
 
     ops = {}
     fns = {}
@@ -122,7 +121,7 @@ def run(quick: bool, previous: Path | None = None) -> dict:
         notes.append(f"Fitted exponents against cells: time to tolerance ~ cells^{slope_t:.2f}, sweeps to tolerance ~ cells^{slope_s:.2f} "
                      f"(~ N^{2 * slope_s:.2f}), sweeps/s ~ cells^{slope_r:.2f}. Expected for SOR at optimal ω: 1.5, 0.5, -1.")
         targets.append({"target": "time to tolerance vs cells (fitted exponent; 1.5 expected for SOR)", "measured": f"{slope_t:.2f}", "ok": None})
-    notes.append("Sweeps/s: red-black SOR chunks through relaxtui.operator.Operator.sweep, round-robin over the sizes, 5 rounds after a warm-up. "
+    notes.append("Sweeps/s: red-black SOR chunks through relaxtui.solver.operator.Operator.sweep, round-robin over the sizes, 5 rounds after a warm-up. "
                  "Small grids sit in cache, so their Mcell/s is higher than the streaming rate of the large ones.")
     if any(solves[n].get("times") and len(solves[n]["times"]) < common.REPEATS for n in ns):
         notes.append("Where n < 5 the solve was long and only as many repeats as fit the time budget were made (section 2's rule).")

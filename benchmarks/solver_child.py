@@ -57,7 +57,7 @@ def load_problem(problem: dict):
 # --- solvers: each returns (field, info) ------------------------------------------------------
 
 def solve_relaxtui(case, tol, cap, method):
-    from relaxtui.driver import solve
+    from relaxtui.solver.driver import solve
 
     t = time.perf_counter()
     res = solve(case, method=method, omega="auto" if method != "multigrid" else None, tolerance=tol, time_limit=cap)
@@ -80,7 +80,6 @@ def _assemble(case):
 
 def solve_spsolve(case, tol, cap, **_):
     import scipy.sparse.linalg as sla
-
     import system
 
     t = time.perf_counter()
@@ -94,7 +93,6 @@ def solve_spsolve(case, tol, cap, **_):
 
 def solve_pyamg(case, tol, cap, maxiter=None, rtol=1e-14, callback=None, **_):
     import pyamg
-
     import system
 
     t = time.perf_counter()
@@ -124,7 +122,6 @@ def solve_pyamg(case, tol, cap, maxiter=None, rtol=1e-14, callback=None, **_):
 
 def solve_cg(case, tol, cap, maxiter=None, rtol=1e-14, callback=None, **_):
     import scipy.sparse.linalg as sla
-
     import system
 
     t = time.perf_counter()
@@ -202,7 +199,6 @@ def calibrate(solver: str, case, tol: float, xref: np.ndarray, cap: float) -> di
 def make_reference(case, out: str) -> dict:
     """pyamg (smoothed aggregation + CG) to a relative residual of 1e-12; its change from 1e-10 bounds its own error."""
     import pyamg
-
     import system
 
     t = time.perf_counter()
@@ -240,7 +236,7 @@ def main() -> int:
     fn(small, 1e-6, cap)
     del small
     if solver.startswith("relaxtui"):
-        from relaxtui.driver import solve
+        from relaxtui.solver.driver import solve
 
         solve(case, method="multigrid" if solver == "relaxtui-multigrid" else "red-black-sor", tolerance=tol, max_sweeps=2)
     budget = float(spec.get("budget", 60))

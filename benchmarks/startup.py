@@ -15,16 +15,14 @@ cache). Outputs go to a temporary folder.
 
 from __future__ import annotations
 
-import os
 import shutil
 import subprocess
 import sys
 import time
 from pathlib import Path
 
-import numpy as np
-
 import common
+import numpy as np
 
 COLD_RUNS = 3  # a cold run compiles every kernel (about a minute): fewer repeats than elsewhere
 TINY_TOML = """\

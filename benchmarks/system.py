@@ -2,7 +2,7 @@
 
 This is the approach of ``tests/exact.py`` (an assembly written from the text
 of the case-format contract, ``case-format.md``, "The discrete equations",
-reading nothing of relaxtui but the :class:`relaxtui.model.Case` data),
+reading nothing of relaxtui but the :class:`relaxtui.case.model.Case` data),
 vectorised over the grid so that a 16-million-cell picture assembles in
 seconds instead of hours. Benchmarks must not import from ``tests/``, so it
 lives here. For each interior cell P with h = cell_size:

@@ -5,7 +5,7 @@ the rest 0; tolerance 1e-5) at N = 511, 1023, 2047, and the large demo
 (grids/large-aquifer.toml, 4096², several materials, its own tolerance).
 ``--quick``: N = 127, 255 and the large demo subsampled every 8th pixel.
 
-Solvers: relaxtui's red-black SOR with auto omega (relaxtui.driver.solve,
+Solvers: relaxtui's red-black SOR with auto omega (relaxtui.solver.driver.solve,
 assembly, omega estimate and sweeps included: the time a user waits);
 relaxtui's multigrid when the method registry has it; scipy spsolve (SuperLU)
 on the assembled system; pyamg smoothed aggregation as a preconditioner for
@@ -27,13 +27,11 @@ stopping point no user has, so it flatters them, not relaxtui.
 from __future__ import annotations
 
 import json
-import os
 import shutil
 from pathlib import Path
 
-import numpy as np
-
 import common
+import numpy as np
 
 MODEL_TOL = 1e-5
 
@@ -65,7 +63,7 @@ def cap_for(solver: str, problem: dict, s: dict) -> float:
 def solvers() -> list[str]:
     names = ["relaxtui-rbsor"]
     try:
-        from relaxtui.methods import METHODS
+        from relaxtui.solver.methods import METHODS
 
         if "multigrid" in METHODS:
             names.append("relaxtui-multigrid")

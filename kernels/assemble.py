@@ -25,10 +25,9 @@ property arrays (see :func:`class_table`).
 
 import numpy as np
 from numba import prange
-
 from relaxtui.kernels._jit import kernel
 
-# Region kinds as integers (the order of relaxtui.model.KINDS).
+# Region kinds as integers (the order of relaxtui.case.model.KINDS).
 INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
 
 

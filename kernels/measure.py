@@ -8,7 +8,6 @@ unpadded region-index picture and the per-region arrays are those of
 
 import numpy as np
 from numba import prange
-
 from relaxtui.kernels._bits import abs_bits, from_bits
 from relaxtui.kernels._jit import kernel
 

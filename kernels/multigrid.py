@@ -61,7 +61,6 @@ row blocks run in parallel (results do not depend on it).
 
 import numpy as np
 from numba import prange
-
 from relaxtui.kernels._bits import abs_bits, from_bits
 from relaxtui.kernels._jit import kernel
 

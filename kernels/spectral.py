@@ -13,7 +13,6 @@ the operator's working layout.
 import math
 
 from numba import prange
-
 from relaxtui.kernels._jit import kernel
 
 

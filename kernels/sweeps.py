@@ -1,6 +1,6 @@
 """Relaxation sweeps over the class-coded operator, in place.
 
-Layout (built by :mod:`relaxtui.kernels.assemble`, owned by ``relaxtui.operator``):
+Layout (built by :mod:`relaxtui.kernels.assemble`, owned by ``relaxtui.solver.operator``):
 - ``u`` (rows + 2, cols + 2) float64: the field padded by one cell; cells that
   are not unknowns hold finite values (a fixed cell its value, others 0), so a
   neighbour read with weight 0 is harmless;
@@ -60,7 +60,6 @@ row per cell, the right-hand side in column 4) and build segments with
 
 import numpy as np
 from numba import prange
-
 from relaxtui.kernels._bits import abs_bits, from_bits
 from relaxtui.kernels._jit import kernel
 

@@ -35,7 +35,7 @@ def load_case(path):
 
 
 def solve(case, **options):
-    """Solve a case (a :class:`relaxtui.model.Case` or a path); see :func:`relaxtui.driver.solve`."""
-    from relaxtui.driver import solve as _solve
+    """Solve a case (a :class:`relaxtui.case.model.Case` or a path); see :func:`relaxtui.solver.driver.solve`."""
+    from relaxtui.solver.driver import solve as _solve
 
     return _solve(case, **options)

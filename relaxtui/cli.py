@@ -61,7 +61,7 @@ def _positive_int(name):
 
 
 def _add_solver_options(p: argparse.ArgumentParser, *, omega: bool = True) -> None:
-    from relaxtui.methods_names import METHOD_NAMES
+    from relaxtui.solver.methods_names import METHOD_NAMES
 
     p.add_argument("--method", choices=METHOD_NAMES, help="relaxation method (default: the case's [solver] table, else red-black-sor)")
     if omega:
@@ -140,21 +140,12 @@ def _version() -> str:
 
 
 def _handler(command: str):
-    if command == "init":
-        from relaxtui.starter import run_init as h
-    elif command == "info":
-        from relaxtui.inspect import run_info as h
-    elif command in ("solve", "sweep"):
-        from relaxtui import run
+    """The ``run(args) -> int`` of the command's module, imported only when called."""
+    import importlib
 
-        h = run.run_solve if command == "solve" else run.run_sweep
-    elif command == "open":
-        from relaxtui.tui.app import run_open as h
-    elif command == "render":
-        from relaxtui.export import run_render as h
-    else:  # pragma: no cover - argparse restricts the choices
+    if command not in SUBCOMMANDS:  # pragma: no cover - argparse restricts the choices
         raise UsageError(f"unknown command {command!r}")
-    return h
+    return importlib.import_module(f"relaxtui.commands.{command}").run
 
 
 def main(argv: list[str] | None = None) -> int:

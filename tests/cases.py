@@ -1,7 +1,7 @@
 """Small cases built from ASCII pictures, for tests.
 
 A picture is a list of equal-length strings; a legend maps each character to a
-:class:`relaxtui.model.Region`. Row 0 of the picture is the top row, as in an
+:class:`relaxtui.case.model.Region`. Row 0 of the picture is the top row, as in an
 image. The helpers :func:`interior`, :func:`fixed`, :func:`outside`,
 :func:`flux` and :func:`convection` build regions with the contract's keys
 (``the case-format contract (case-format.md)``); colours are filled in by :func:`make_case`
@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from relaxtui.model import Case, Region
+from relaxtui.case.model import Case, Region
 
 
 def interior(name: str = "plate", conductivity: float | None = 1.0, source: float = 0.0) -> Region:

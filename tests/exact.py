@@ -2,7 +2,7 @@
 
 This module is the tests' outside reference for the operator: it reads the
 text of ``the case-format contract (case-format.md)`` ("The discrete equations", "Flows and
-balance") and nothing of relaxtui except the :class:`relaxtui.model.Case`
+balance") and nothing of relaxtui except the :class:`relaxtui.case.model.Case`
 data it is given. It loops over cells in plain Python, builds a
 ``scipy.sparse`` CSR matrix and solves it with ``scipy.sparse.linalg.spsolve``.
 

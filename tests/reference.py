@@ -20,8 +20,6 @@ and, for the lexicographic sweep, a = u + omega (((wN uN + wS uS) + wE uE) + q -
 
 from __future__ import annotations
 
-import numpy as np
-
 NORTH, SOUTH, WEST, EAST = (-1, 0), (1, 0), (0, -1), (0, 1)
 SIDES = (NORTH, SOUTH, WEST, EAST)
 

@@ -18,12 +18,14 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from relaxtui import case as case_module
-from relaxtui import memory, picture
-from relaxtui.case import KeyLines, build_case, load_case
+from relaxtui.case import build_case, load_case, picture
+from relaxtui.case import domain as domain_module
+from relaxtui.case import loader as case_module
+from relaxtui.case.loader import KeyLines
+from relaxtui.case.model import Region, SolverDefaults
 from relaxtui.cli import main
 from relaxtui.errors import CaseError
-from relaxtui.model import Region, SolverDefaults
+from relaxtui.solver import memory
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -556,12 +558,12 @@ def test_fixed_cells_inside_the_domain_are_fine(tmp_path, labelling):
 def labelling(request, monkeypatch):
     """Run a domain test through both labelling paths of the solvability check."""
     if request.param == "kernel":
-        monkeypatch.setattr(case_module, "RUN_GRAPH_LIMIT", 0)
+        monkeypatch.setattr(domain_module, "RUN_GRAPH_LIMIT", 0)
     return request.param
 
 
 def _group_image(interior):
-    starts, ends, group = case_module.label_groups(interior)
+    starts, ends, group = domain_module.label_groups(interior)
     h, w = interior.shape
     out = np.zeros(h * (w + 2), np.int64)
     for s, e, g in zip(starts, ends, group):
@@ -589,9 +591,8 @@ def test_run_graph_labelling_agrees_with_scipy():
 def test_label4_agrees_with_scipy():
     # Independent reference: scipy.ndimage.label, whose default structuring
     # element in 2-D is the 4-neighbour cross; both number groups in raster order.
-    from scipy import ndimage
-
     from relaxtui.kernels.labels import label4
+    from scipy import ndimage
 
     rng = np.random.default_rng(5)
     for shape, p in [((1, 1), 0.5), ((1, 17), 0.6), ((23, 1), 0.6), ((31, 29), 0.45), ((40, 64), 0.6), ((64, 40), 0.7)]:
@@ -697,7 +698,7 @@ def test_loader_refuses_before_decoding_when_memory_is_short(tmp_path, monkeypat
 
 
 def test_import_case_does_not_load_numba_or_textual():
-    code = "import sys, relaxtui.case, relaxtui.picture, relaxtui.memory; print('numba' in sys.modules, 'textual' in sys.modules)"
+    code = "import sys, relaxtui.case, relaxtui.case.picture, relaxtui.solver.memory; print('numba' in sys.modules, 'textual' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120).stdout
     assert out.split() == ["False", "False"]
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import csv
 import json
-import os
 import signal
 import subprocess
 import sys
@@ -19,9 +18,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from exact import exact_solution
 from PIL import Image
 
-from exact import exact_solution
 from relaxtui.case import load_case
 from relaxtui.cli import main
 

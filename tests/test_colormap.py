@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from relaxtui import colormap as cm
+from relaxtui.output import colormap as cm
 
 
 def _lab_of_palette():

@@ -10,9 +10,11 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from relaxtui import colormap, export
+from relaxtui import export
+from relaxtui.output import fields, pictures
+from relaxtui.case.model import Case, Region
 from relaxtui.errors import OutputError, UsageError
-from relaxtui.model import Case, Region
+from relaxtui.output import colormap
 
 INTERIOR = Region("plate", "#ffffff", "interior", conductivity=2.0)
 OUTSIDE = Region("air", "#000000", "outside")
@@ -335,7 +337,7 @@ def test_isolines_along_rows_and_across_strips(monkeypatch):
     rows_hit = sorted(set(np.nonzero(diff[: 30 * 8, : 7 * 8])[0]))
     assert rows_hit == sorted(int(np.floor((30 - v - 0.5) * 8)) for v in levels)
     whole, _ = export.render_picture(u, case, scale=3, isolines=4)
-    monkeypatch.setattr(export, "_STRIP_PIXELS", 1)  # one cell row per strip
+    monkeypatch.setattr(pictures, "_STRIP_PIXELS", 1)  # one cell row per strip
     strips, _ = export.render_picture(u, case, scale=3, isolines=4)
     assert np.array_equal(np.asarray(whole), np.asarray(strips))
 
@@ -405,7 +407,7 @@ def test_vtk_round_trip(tmp_path):
 def test_vtk_long_array_streams_in_pieces(tmp_path, monkeypatch):
     # The base64 pieces must join into one valid stream (every piece but the
     # last a multiple of 3 bytes): a tiny piece size exercises the seams.
-    monkeypatch.setattr(export, "_B64_CHUNK", 6)
+    monkeypatch.setattr(fields, "_B64_CHUNK", 6)
     case = ramp_case(rows=3, cols=5)
     u = np.arange(15.0).reshape(3, 5)
     root = ET.parse(export.write_vtk(tmp_path / "s.vti", u, case)).getroot()

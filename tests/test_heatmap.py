@@ -4,7 +4,7 @@ Colours are read back from a fixed-width Rich console (``render_lines``): with
 the upper half block "▀" a character's foreground is the upper pixel and its
 background the lower one. Expected values are computed here independently
 (plain numpy block means, the scale position (v - vmin) / (vmax - vmin) mapped
-to palette entry rint(255 t) as documented in relaxtui.colormap).
+to palette entry rint(255 t) as documented in relaxtui.output.colormap).
 """
 
 from __future__ import annotations
@@ -15,10 +15,18 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from relaxtui import colormap
-from relaxtui.model import FIXED, INTERIOR, OUTSIDE
+from relaxtui.case.model import FIXED, INTERIOR, OUTSIDE
+from relaxtui.output import colormap
 from relaxtui.tui.heatmap import EDGE_RGB, FIXED_RGB, MONO_FIXED, render_heatmap
-from relaxtui.tui.sampling import BLOCKS, CellLayout, SamplingPlan, Viewport, centred, clamp_viewport, fit_zoom
+from relaxtui.tui.sampling import (
+    BLOCKS,
+    CellLayout,
+    SamplingPlan,
+    Viewport,
+    centred,
+    clamp_viewport,
+    fit_zoom,
+)
 
 
 def lines_of(renderable, width=80, color=True):

@@ -15,11 +15,11 @@ import math
 
 import numpy as np
 import pytest
-
 from cases import convection, fixed, flux, interior, make_case, model_problem, outside
 from exact import exact_solution
-from relaxtui.driver import solve
-from relaxtui.operator import Operator
+
+from relaxtui.solver.driver import solve
+from relaxtui.solver.operator import Operator
 
 
 def strip_case(length: int, width: int = 3):

@@ -1,4 +1,4 @@
-"""``relaxtui info`` (relaxtui.inspect): what it prints about a case.
+"""``relaxtui info`` (relaxtui.commands.info): what it prints about a case.
 
 Face counts are checked against a plain double loop over every pair of
 neighbouring cells (an independent count of the contract's 4-neighbour faces,
@@ -16,11 +16,11 @@ import numpy as np
 from PIL import Image
 from rich.console import Console
 
-from relaxtui import memory
 from relaxtui.case import build_case
+from relaxtui.case.model import Region
 from relaxtui.cli import main
-from relaxtui.inspect import describe, face_matrix, faces_with_interior
-from relaxtui.model import Region
+from relaxtui.commands.info import describe, face_matrix, faces_with_interior
+from relaxtui.solver import memory
 
 REPO = Path(__file__).resolve().parents[1]
 

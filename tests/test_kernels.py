@@ -16,10 +16,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 import reference
 from cases import feature_case, fixed, interior, make_case, outside
-from relaxtui.operator import Operator
+
+from relaxtui.solver.operator import Operator
 
 HERE = Path(__file__).resolve().parent
 
@@ -184,7 +184,7 @@ import json, sys
 import numpy as np
 sys.path.insert(0, sys.argv[1])
 from test_kernels import CASES, start_field
-from relaxtui.operator import Operator
+from relaxtui.solver.operator import Operator
 out = {}
 for name, case in CASES.items():
     op = Operator(case)

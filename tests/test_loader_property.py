@@ -20,10 +20,9 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 from PIL import Image
 
-from relaxtui import picture
-from relaxtui.case import load_case
+from relaxtui.case import load_case, picture
+from relaxtui.case.model import KINDS, Case
 from relaxtui.errors import CaseError
-from relaxtui.model import KINDS, Case
 
 # Colours a picture may use: (r, g, b, a)
 PALETTE = [(255, 255, 255, 255), (255, 0, 0, 255), (0, 0, 0, 255), (0, 0, 255, 255), (10, 200, 10, 255), (0, 0, 0, 0), (254, 1, 1, 255)]

@@ -14,24 +14,33 @@ Outside references:
 
 from __future__ import annotations
 
-import math
 from dataclasses import replace
 
+import exact
 import numpy as np
 import pytest
 import scipy.ndimage
 import scipy.sparse as sp
+from cases import (
+    case_from_codes,
+    convection,
+    feature_case,
+    fixed,
+    flux,
+    interior,
+    make_case,
+    model_problem,
+    outside,
+)
 
-import exact
-from cases import case_from_codes, convection, feature_case, fixed, flux, interior, make_case, model_problem, outside
-from relaxtui import stopping
 from relaxtui.case import load_case
-from relaxtui.driver import solve
 from relaxtui.errors import UsageError
-from relaxtui.methods import get_method
-from relaxtui.multigrid import DEFAULT_OMEGA, Hierarchy, MultigridStepper
-from relaxtui.operator import Operator
-from relaxtui.stopping import StoppingRule
+from relaxtui.solver import stopping
+from relaxtui.solver.driver import solve
+from relaxtui.solver.methods import get_method
+from relaxtui.solver.multigrid import DEFAULT_OMEGA, Hierarchy, MultigridStepper
+from relaxtui.solver.operator import Operator
+from relaxtui.solver.stopping import StoppingRule
 
 GRIDS = "grids"
 SMALL_DEMOS = ("composite", "electrodes", "heat-spreader")
@@ -326,7 +335,7 @@ def test_stationary_cycles_are_honest_too():
     case, want = exact_of("two-materials", HONESTY_CASES["two-materials"])
     op = Operator(case)
     for tol in (1e-3, 1e-7):
-        from relaxtui.driver import Run
+        from relaxtui.solver.driver import Run
 
         run = Run(case, method="multigrid", tolerance=tol, operator=op)
         run.prepare()

@@ -8,13 +8,22 @@ balance follow the contract's "Flows and balance" section.
 import subprocess
 import sys
 
+import exact
 import numpy as np
 import pytest
+from cases import (
+    convection,
+    feature_case,
+    fixed,
+    flux,
+    interior,
+    make_case,
+    model_problem,
+    outside,
+)
 
-import exact
-from cases import convection, feature_case, fixed, flux, interior, make_case, model_problem, outside
 from relaxtui.errors import CaseError, UsageError
-from relaxtui.operator import Operator
+from relaxtui.solver.operator import Operator
 
 CASES = {
     "uniform": feature_case(False),
@@ -280,6 +289,6 @@ def test_memory_bytes_counts_the_jacobi_buffer():
 
 
 def test_importing_does_not_load_numba():
-    code = "import sys, relaxtui, relaxtui.operator; assert 'numba' not in sys.modules, 'numba imported'"
+    code = "import sys, relaxtui, relaxtui.solver.operator; assert 'numba' not in sys.modules, 'numba imported'"
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr

@@ -1,4 +1,4 @@
-"""PNG decoding and colour matching (relaxtui.picture).
+"""PNG decoding and colour matching (relaxtui.case.picture).
 
 The rules checked here are the contract's, ../shared/case-format.md "The
 picture": every PNG flavour (1-bit, grey, grey+alpha, palette, RGB, RGBA,
@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from relaxtui import picture
+from relaxtui.case import picture
 from relaxtui.errors import CaseError
 
 # PNG colour types (PNG specification, IHDR).

@@ -13,9 +13,9 @@ import math
 
 import numpy as np
 import pytest
-
 from cases import case_from_codes, fixed, interior, model_problem, outside
-from relaxtui.driver import solve
+
+from relaxtui.solver.driver import solve
 
 
 def disc_case(size, inner_d, outer_d=None, offset=0.0, t_inner=100.0, t_outer=0.0, k=3.0, square_side=None):

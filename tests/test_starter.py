@@ -1,4 +1,4 @@
-"""``relaxtui init`` (relaxtui.starter): a starter case for a picture never seen.
+"""``relaxtui init`` (relaxtui.commands.init): a starter case for a picture never seen.
 
 Checked against the contract (../shared/case-format.md): the written file is
 TOML the loader reads once the kinds are chosen, and before that the loader

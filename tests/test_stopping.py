@@ -14,8 +14,8 @@ import math
 import numpy as np
 import pytest
 
-from relaxtui import stopping
-from relaxtui.stopping import StoppingRule
+from relaxtui.solver import stopping
+from relaxtui.solver.stopping import StoppingRule
 
 
 def modes(coeffs, factors, sweeps):
@@ -180,7 +180,7 @@ def test_module_does_not_need_numba():
     import subprocess
     import sys
 
-    code = "import sys; import relaxtui.stopping; print('numba' in sys.modules)"
+    code = "import sys; import relaxtui.solver.stopping; print('numba' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip()
     assert out == "False"
     assert math.isfinite(stopping.RATE_SAFETY)

@@ -14,9 +14,9 @@ f = (r[k2] / r[k1]) ** (1 / (k2 - k1)) well after the start-up transient.
 
 import numpy as np
 import pytest
-
 from cases import convection, fixed, interior, make_case, model_problem, outside
-from relaxtui.operator import Operator
+
+from relaxtui.solver.operator import Operator
 
 N = 31  # model problem: 31 x 31 unknowns, h = 1/32
 H = 1.0 / (N + 1)

@@ -368,7 +368,7 @@ def test_no_color_draws_the_character_ramp(tmp_path, monkeypatch):
             await finished(pilot, app, 1)
             view = app.query_one(FieldView)
             assert view.mono
-            from relaxtui.colormap import RAMP
+            from relaxtui.output.colormap import RAMP
 
             text = "".join(seg.text for seg in app.console.render(view.render(), app.console.options.update(width=60)))
             assert any(ch in text for ch in RAMP[1:-1]) and "▀" not in text.split("\n")[1]

@@ -2,7 +2,7 @@
 
 Threads. The event loop only formats and draws. Loading the case (picture,
 operator assembly) runs in a thread worker; each solve runs in the one
-exclusive solve worker, which owns its :class:`relaxtui.driver.Run` and the
+exclusive solve worker, which owns its :class:`relaxtui.solver.driver.Run` and the
 live field. Its loop calls ``run.step(max_seconds=STEP_SECONDS)``, then posts
 an immutable progress snapshot and the new history rows (copies); at most
 ``1 / FRAME_INTERVAL`` times a second (and on request, when the user pans,
@@ -33,8 +33,8 @@ from textual.reactive import reactive
 from textual.widgets import Footer, Input, Select
 from textual.worker import get_current_worker
 
-from relaxtui import model
-from relaxtui.errors import CaseError, RelaxError
+from relaxtui.case import model
+from relaxtui.errors import RelaxError
 from relaxtui.tui.banner import Banner
 from relaxtui.tui.dialogs import ConfirmQuit, ExportScreen, HelpScreen
 from relaxtui.tui.fieldview import FieldView
@@ -360,8 +360,8 @@ class RelaxApp(App):
 
     # -- building ----------------------------------------------------------------------
     def compose(self) -> ComposeResult:
-        from relaxtui.methods import METHODS
-        from relaxtui.methods_names import METHOD_NAMES
+        from relaxtui.solver.methods import METHODS
+        from relaxtui.solver.methods_names import METHOD_NAMES
 
         methods = [m for m in METHOD_NAMES if m in METHODS]
         omega = self.cli["omega"]
@@ -435,7 +435,7 @@ class RelaxApp(App):
             from relaxtui.case import load_case
 
             case = load_case(self.case_path)
-            from relaxtui.operator import Operator
+            from relaxtui.solver.operator import Operator
 
             operator = Operator(case)
             layout = CellLayout.from_case(case)
@@ -531,7 +531,7 @@ class RelaxApp(App):
         return True
 
     def _begin(self, start_from: RunRecord | None, paused: bool = False, one_step: bool = False) -> RunRecord | None:
-        from relaxtui.driver import Run
+        from relaxtui.solver.driver import Run
 
         if not self._ready_for_run():
             return None
@@ -935,7 +935,7 @@ class RelaxApp(App):
         if rec.result.field is None:
             self._refuse(f"run #{rec.id}'s field was released to save memory; run it again to export")
             return
-        from relaxtui.driver import check_outputs
+        from relaxtui.solver.driver import check_outputs
 
         base = f"{self.case.name}-run{rec.id}"
         defaults = {"out": f"{base}.npy", "report": f"{base}.json", "history": f"{base}.csv"}
@@ -951,7 +951,7 @@ class RelaxApp(App):
 
     @work(thread=True, group="export", name="export")
     def _export(self, result, paths: dict) -> None:
-        from relaxtui.driver import write_outputs
+        from relaxtui.solver.driver import write_outputs
 
         try:
             written = write_outputs(result, out=paths.get("out"), report=paths.get("report"), history=paths.get("history"))
@@ -986,20 +986,3 @@ class RelaxApp(App):
                 self.exit()
 
         self.push_screen(ConfirmQuit(f"run #{self.active.id}"), answer)
-
-
-def run_open(args) -> int:
-    """``relaxtui open CASE.toml [--method ...] [--omega ...] [--tolerance ...] [--run]``."""
-    path = Path(args.case)
-    if not path.is_file():
-        raise CaseError(f"{args.case}: case file not found")
-    app = RelaxApp(
-        path,
-        method=getattr(args, "method", None),
-        omega=getattr(args, "omega", None),
-        tolerance=getattr(args, "tolerance", None),
-        max_sweeps=getattr(args, "max_sweeps", None),
-        run=getattr(args, "run", False),
-    )
-    app.run()
-    return 0

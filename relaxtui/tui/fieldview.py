@@ -23,7 +23,14 @@ from textual.message import Message
 from textual.widget import Widget
 
 from relaxtui.tui.heatmap import LEGEND_LINES, render_heatmap
-from relaxtui.tui.sampling import MAX_MAGNIFY, Frame, Viewport, centred, clamp_viewport, fit_zoom
+from relaxtui.tui.sampling import (
+    MAX_MAGNIFY,
+    Frame,
+    Viewport,
+    centred,
+    clamp_viewport,
+    fit_zoom,
+)
 
 PROBE_LINES = 1
 
@@ -66,7 +73,7 @@ class FieldView(Widget, can_focus=True):
 
     def __init__(self, *, id: str | None = None, classes: str | None = None) -> None:
         super().__init__(id=id, classes=classes)
-        self.case = None  # relaxtui.model.Case, set by the app once loaded
+        self.case = None  # relaxtui.case.model.Case, set by the app once loaded
         self.shape: tuple[int, int] | None = None
         self.unit = ""
         self.mono = False

@@ -9,11 +9,11 @@ two-line legend (the colour scale with its unit, then round tick values).
   touch the domain are drawn in a dim neutral grey, so the domain's edge shows
   even where the field is dark;
 * held (fixed) pixels are drawn in a light neutral grey, a colour the scale
-  never takes (every scale colour has chroma, see :mod:`relaxtui.colormap`);
+  never takes (every scale colour has chroma, see :mod:`relaxtui.output.colormap`);
 * domain pixels whose value is not finite (a diverged run) take the scale's
   ``NO_DATA`` grey;
 * without colour (``mono=True``, e.g. under ``NO_COLOR``) each character is one
-  pair of pixels drawn with the character ramp :data:`relaxtui.colormap.RAMP`,
+  pair of pixels drawn with the character ramp :data:`relaxtui.output.colormap.RAMP`,
   held cells as :data:`MONO_FIXED`, and the probe cursor in reverse video.
 
 Larger arrays are block-averaged (NaN-aware) to fit; with ``magnify=True``
@@ -32,7 +32,7 @@ from rich.measure import Measurement
 from rich.segment import Segment
 from rich.style import Style
 
-from relaxtui import colormap
+from relaxtui.output import colormap
 
 LEGEND_LINES = 2
 FIXED_RGB = (196, 196, 190)  # held cells: light neutral grey
@@ -149,7 +149,7 @@ def render_heatmap(
     mono : bool
         Draw with characters only (no colour).
     palette : (256, 3) uint8, optional
-        The colour scale; default :data:`relaxtui.colormap.PALETTE`.
+        The colour scale; default :data:`relaxtui.output.colormap.PALETTE`.
     vmin, vmax : float, optional
         Ends of the scale; default the finite range of ``array``.
     fixed : (rows, cols) bool, optional

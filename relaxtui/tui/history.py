@@ -19,7 +19,7 @@ from textual.containers import Vertical
 from textual.widgets import Static
 from textual_plotext import PlotextPlot
 
-from relaxtui.colormap import PALETTE, nice_ticks
+from relaxtui.output.colormap import PALETTE, nice_ticks
 
 MAX_POINTS = 600  # points per curve handed to the plot (decimated beyond)
 

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from relaxtui.model import FIXED, INTERIOR
+from relaxtui.case.model import FIXED, INTERIOR
 
 # At most this many cells are read per snapshot (about 2 ms of numpy work).
 SAMPLE_BUDGET = 200_000
@@ -93,7 +93,7 @@ class CellLayout:
     Parameters
     ----------
     kinds : (rows, cols) int array
-        The kind code of every cell (``relaxtui.model`` INTERIOR, FIXED, ...).
+        The kind code of every cell (``relaxtui.case.model`` INTERIOR, FIXED, ...).
     cell_size : float
         Side of a cell in metres (for probe positions).
 
@@ -134,7 +134,7 @@ class CellLayout:
 
     @classmethod
     def from_case(cls, case) -> "CellLayout":
-        """The layout of a :class:`relaxtui.model.Case`."""
+        """The layout of a :class:`relaxtui.case.model.Case`."""
         return cls(case.kind_codes()[case.codes], case.cell_size)
 
     @property

@@ -1,7 +1,7 @@
 """The status strip: the stopping rule in words, why a run stopped, its balance.
 
 Attributes down: :meth:`StatusStrip.show` takes the phase of the session, the
-selected run's latest :class:`relaxtui.driver.Progress` and, once the run is
+selected run's latest :class:`relaxtui.solver.driver.Progress` and, once the run is
 done, its report (``flows``, ``source_total``, ``imbalance``).
 """
 

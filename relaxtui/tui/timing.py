@@ -1,7 +1,7 @@
 """The timing panel: how fast the selected run goes and how far it has to go.
 
 Attributes down: the app sets :attr:`TimingPanel.progress` (an immutable
-:class:`relaxtui.driver.Progress`) and the recent sweep rate it measured from
+:class:`relaxtui.solver.driver.Progress`) and the recent sweep rate it measured from
 consecutive snapshots; the panel only formats them.
 """
 

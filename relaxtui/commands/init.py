@@ -18,10 +18,16 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from relaxtui import output, picture
+from relaxtui.case import picture
+from relaxtui.case.model import (
+    DEFAULT_MAX_SWEEPS,
+    DEFAULT_METHOD,
+    DEFAULT_OMEGA,
+    DEFAULT_TOLERANCE,
+)
 from relaxtui.errors import OutputError
-from relaxtui.methods_names import METHOD_NAMES  # noqa: F401 - the [solver] comment lists them
-from relaxtui.model import DEFAULT_MAX_SWEEPS, DEFAULT_METHOD, DEFAULT_OMEGA, DEFAULT_TOLERANCE
+from relaxtui.output import atomic as output
+from relaxtui.solver.methods_names import METHOD_NAMES  # noqa: F401 - the [solver] comment lists them
 
 MANY_COLOURS = 64
 MAIN_SHARE = 0.001
@@ -131,7 +137,7 @@ def starter_text(mask_ref: str, decoded: picture.Decoded, mask_name: str) -> tup
     return "\n".join(lines) + "\n", len(keep), undecided
 
 
-def run_init(args) -> int:
+def run(args) -> int:
     """Handle ``relaxtui init``; returns the exit code."""
     mask = Path(args.mask)
     target = Path(args.output) if getattr(args, "output", None) else mask.with_suffix(".toml")

@@ -10,9 +10,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Callable
 
-from relaxtui import omega as young
 from relaxtui.errors import UsageError
-from relaxtui.methods_names import METHOD_NAMES
+from relaxtui.solver import omega as young
+from relaxtui.solver.methods_names import METHOD_NAMES
 
 
 @dataclass(frozen=True)
@@ -115,7 +115,7 @@ METHODS: dict[str, Method] = {
 
 
 def _multigrid():
-    from relaxtui import multigrid  # numba only when a multigrid stepper is made
+    from relaxtui.solver import multigrid  # numba only when a multigrid stepper is made
 
     return multigrid
 

@@ -50,7 +50,7 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     rows, cols : int
         Picture size in cells.
     method : str or None
-        Method name (see ``relaxtui.methods_names``); ``None`` counts as the
+        Method name (see ``relaxtui.solver.methods_names``); ``None`` counts as the
         default red-black SOR (one field buffer).
     materials : int
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.

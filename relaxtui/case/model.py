@@ -1,7 +1,7 @@
 """The validated problem: what a case file and its picture mean.
 
 A :class:`Case` is produced by :func:`relaxtui.case.load_case` and consumed by
-the operator assembly (``relaxtui.operator``), the reports and the UI. It holds
+the operator assembly (``relaxtui.solver.operator``), the reports and the UI. It holds
 no numba objects and is cheap to build.
 """
 
@@ -19,7 +19,7 @@ INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = range(5)
 KIND_CODE = {name: i for i, name in enumerate(KINDS)}
 
 # The methods a case's [solver] table, the command line and the UI accept.
-# The registry with their set-up lives in relaxtui.methods.
+# The registry with their set-up lives in relaxtui.solver.methods.
 DEFAULT_METHOD = "red-black-sor"
 DEFAULT_OMEGA = "auto"
 DEFAULT_TOLERANCE = 1e-3

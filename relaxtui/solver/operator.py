@@ -46,9 +46,9 @@ import math
 
 import numpy as np
 
+from relaxtui.case.model import CONVECTION, FIXED, FLUX, INTERIOR, Case
 from relaxtui.errors import CaseError, UsageError
-from relaxtui.methods_names import METHOD_NAMES
-from relaxtui.model import CONVECTION, FIXED, FLUX, INTERIOR, Case
+from relaxtui.solver.methods_names import METHOD_NAMES
 
 SWEEP_METHODS = ("jacobi", "gauss-seidel", "sor", "red-black-sor")
 MIN_RUN = 16  # shortest run of one class swept with constant weights
@@ -65,7 +65,7 @@ def _class_dtype(classes: int):
 
 
 class Operator:
-    """The assembled operator of a :class:`~relaxtui.model.Case` (see the module docstring).
+    """The assembled operator of a :class:`~relaxtui.case.model.Case` (see the module docstring).
 
     Parameters
     ----------

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from relaxtui import memory
-from relaxtui.model import DEFAULT_METHOD, INTERIOR, Case
+from relaxtui.case.model import DEFAULT_METHOD, INTERIOR, Case
+from relaxtui.solver import memory
 
 
 def face_matrix(codes: np.ndarray, n: int) -> np.ndarray:
@@ -159,7 +159,7 @@ def describe(case: Case, console=None) -> None:
                        "k conductivity, s source, u fixed value, q flux, h film coefficient.", style="dim"))
 
 
-def run_info(args) -> int:
+def run(args) -> int:
     """Handle ``relaxtui info``; returns the exit code."""
     from relaxtui.case import load_case
 

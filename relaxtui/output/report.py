@@ -51,7 +51,7 @@ def extremes(case, field: np.ndarray) -> dict:
 
 
 def build_report(run, field: np.ndarray) -> dict:
-    """The report of a finished :class:`relaxtui.driver.Run` whose exported field is ``field``."""
+    """The report of a finished :class:`relaxtui.solver.driver.Run` whose exported field is ``field``."""
     case = run.case
     op = run.operator
     u = run.field
@@ -85,7 +85,7 @@ def build_report(run, field: np.ndarray) -> dict:
         "imbalance": _f(imbalance),
     }
     report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in extremes(case, field).items()})
-    from relaxtui.export import peak_flux
+    from relaxtui.output.flux import peak_flux
 
     report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
     if run.stepper_info:

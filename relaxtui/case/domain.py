@@ -1,0 +1,160 @@
+"""Domain checks: every 4-connected group of interior cells must be anchored.
+
+Nothing here imports numba at module level. Groups are labelled through the graph of
+horizontal runs in numpy; only a picture with more than RUN_GRAPH_LIMIT runs (noise-like)
+loads the compiled labelling kernel.
+"""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+import numpy as np
+
+from relaxtui.case.model import CONVECTION, FIXED, INTERIOR, Region
+from relaxtui.errors import CaseError
+
+
+def anchored_interior(cell_kind: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Interior cells, and those of them with a face on a fixed or convection cell.
+
+    ``cell_kind`` is the per-cell kind integer (rows x cols). Returns two bool
+    arrays of the same shape.
+    """
+    interior = cell_kind == INTERIOR
+    anchor = (cell_kind == FIXED) | (cell_kind == CONVECTION)
+    touch = np.zeros_like(interior)
+    touch[1:, :] |= anchor[:-1, :]
+    touch[:-1, :] |= anchor[1:, :]
+    touch[:, 1:] |= anchor[:, :-1]
+    touch[:, :-1] |= anchor[:, 1:]
+    touch &= interior
+    return interior, touch
+
+
+# Above this many horizontal runs of interior cells (a noisy picture), the
+# compiled labelling kernel is faster than the vectorised run graph.
+RUN_GRAPH_LIMIT = 300_000
+
+
+def interior_runs(interior: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+    """Horizontal runs of true cells, in raster order.
+
+    Returns ``starts`` and ``ends`` (exclusive) as positions in the row-major
+    flattening of the mask padded by one false column on each side, and that
+    padded row length. Row of a run: ``starts // stride``; its first column:
+    ``starts % stride - 1``.
+    """
+    h, w = interior.shape
+    padded = np.zeros((h, w + 2), dtype=bool)
+    padded[:, 1:-1] = interior
+    flat = padded.reshape(-1)
+    before, after = flat[:-1], flat[1:]
+    starts = np.flatnonzero(after & ~before) + 1
+    ends = np.flatnonzero(before & ~after) + 1
+    return starts, ends, w + 2
+
+
+def _run_components(n: int, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Connected components of n nodes joined by edges (u, v).
+
+    Returns f with f[x] = the smallest node of x's component. Min-label
+    hooking of roots plus full path compression, repeated until nothing
+    changes (a Shiloach-Vishkin style iteration, vectorised).
+    """
+    f = np.arange(n, dtype=np.int64)
+    while True:
+        before = f.copy()
+        fu, fv = f[u], f[v]
+        np.minimum.at(f, fu, fv)
+        np.minimum.at(f, fv, fu)
+        while True:
+            g = f[f]
+            if np.array_equal(g, f):
+                break
+            f = g
+        if np.array_equal(f, before):
+            return f
+
+
+def label_groups(interior: np.ndarray, runs=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """4-connected groups of interior cells through the graph of horizontal runs.
+
+    Returns per run (raster order): ``starts``, ``ends`` (padded flat
+    positions, see :func:`interior_runs`; pass its result as ``runs`` to
+    reuse it) and ``group``, the group number 0..count-1, numbered in raster
+    order of each group's first cell.
+    """
+    starts, ends, stride = runs if runs is not None else interior_runs(interior)
+    n = len(starts)
+    # Run j of row r+1 and run i of row r share a face where their column
+    # ranges overlap. Shifted up one row, j's range [qs, qe) meets the runs i
+    # with ends[i] > qs and starts[i] < qe: a contiguous index range.
+    qs, qe = starts - stride, ends - stride
+    lo = np.searchsorted(ends, qs, side="right")
+    hi = np.searchsorted(starts, qe, side="left")
+    count = np.maximum(hi - lo, 0)
+    total = int(count.sum())
+    u = np.repeat(np.arange(n), count)
+    v = np.arange(total) - np.repeat(np.cumsum(count) - count, count) + np.repeat(lo, count)
+    roots = _run_components(n, u, v)
+    _, group = np.unique(roots, return_inverse=True)  # roots are each group's first run
+    return starts, ends, group.reshape(-1)
+
+
+def floating_groups(interior: np.ndarray, touch: np.ndarray) -> tuple[int, int, tuple[int, int]]:
+    """Groups of interior cells with no cell in ``touch``.
+
+    Returns (number of such groups, size of the first one in raster order,
+    (row, col) of its first cell); (0, 0, (-1, -1)) when every group is anchored.
+    """
+    h, w = interior.shape
+    runs = interior_runs(interior)
+    starts, ends, stride = runs
+    if len(starts) <= RUN_GRAPH_LIMIT:
+        starts, ends, group = label_groups(interior, runs)
+        ngroups = int(group.max()) + 1
+        r, c = np.divmod(np.flatnonzero(touch), w)
+        keys = r * stride + c + 1
+        run_of_touch = np.searchsorted(starts, keys, side="right") - 1
+        ok = np.zeros(ngroups, dtype=bool)
+        ok[group[run_of_touch]] = True
+        bad = np.flatnonzero(~ok)
+        if not bad.size:
+            return 0, 0, (-1, -1)
+        g = int(bad[0])
+        mine = group == g
+        size = int((ends[mine] - starts[mine]).sum())
+        first = int(starts[np.argmax(mine)])
+        return int(bad.size), size, (first // stride, first % stride - 1)
+    from relaxtui.kernels.labels import label4
+
+    labels, count = label4(interior)
+    ok = np.zeros(count + 1, dtype=bool)
+    ok[labels[touch]] = True
+    ok[0] = True
+    bad = np.flatnonzero(~ok)
+    if not bad.size:
+        return 0, 0, (-1, -1)
+    g = int(bad[0])
+    size = int(np.count_nonzero(labels == g))
+    first = int(np.argmax(labels.reshape(-1) == g))
+    return int(bad.size), size, divmod(first, w)
+
+
+def check_domain(codes: np.ndarray, regions: Sequence[Region], label: str) -> None:
+    """Refuse a domain without interior cells, or with a group of interior
+    cells (4-connected) that touches no fixed or convection cell (the
+    contract: such a group has no unique solution)."""
+    kinds = np.array([r.kind_code for r in regions], np.int8)
+    cell_kind = kinds[codes]
+    interior, touch = anchored_interior(cell_kind)
+    if not interior.any():
+        raise CaseError(f"{label}: no interior cells: no pixel belongs to a region of kind 'interior', so there is nothing to solve for")
+    nbad, size, (r, c) = floating_groups(interior, touch)
+    if nbad:
+        more = f"; {nbad - 1} more such groups" if nbad > 1 else ""
+        raise CaseError(
+            f"{label}: a group of {size} interior cells (one of them at row {r}, column {c}) touches no fixed "
+            f"or convection cell, so its values are not determined{more}; put a fixed or convection region next to it"
+        )

@@ -1,0 +1,21 @@
+"""``relaxtui render FIELD.npy --case CASE.toml -o FIELD.png``."""
+
+from __future__ import annotations
+
+import os
+
+from relaxtui.output.atomic import check_target
+from relaxtui.output.fields import load_field
+from relaxtui.output.pictures import write_picture
+
+
+def run(args) -> int:
+    """``relaxtui render FIELD.npy --case CASE.toml -o FIELD.png [--scale K] [--isolines N]``."""
+    target = check_target(args.output, "picture")
+    from relaxtui.case import load_case
+
+    case = load_case(args.case)
+    field = load_field(args.field, case.shape, what="field")
+    write_picture(target, field, case, scale=getattr(args, "scale", 1) or 1, isolines=getattr(args, "isolines", None))
+    print(os.fspath(target))
+    return 0

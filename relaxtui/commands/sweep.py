@@ -1,0 +1,155 @@
+"""``relaxtui sweep``: one headless solve per ω or per method, and a table of them."""
+
+from __future__ import annotations
+
+import math
+import sys
+import threading
+
+from relaxtui.commands.solve import (
+    EXIT_CONVERGED,
+    EXIT_INTERRUPTED,
+    EXIT_NOT_CONVERGED,
+    _sigint_to,
+)
+from relaxtui.errors import UsageError
+
+
+def parse_range(text: str) -> list[float]:
+    """``START:STOP:STEP`` (STOP included) or a comma-separated list of ω values."""
+    try:
+        if ":" in text:
+            parts = [float(x) for x in text.split(":")]
+            if len(parts) != 3:
+                raise ValueError
+            start, stop, step = parts
+            if step <= 0 or stop < start:
+                raise ValueError
+            n = int(math.floor((stop - start) / step + 1e-9)) + 1
+            values = [round(start + i * step, 12) for i in range(n)]
+        else:
+            values = [float(x) for x in text.split(",")]
+    except ValueError:
+        raise UsageError(f"--omega wants START:STOP:STEP (e.g. 1.80:1.99:0.01) or a list a,b,c; got {text!r}") from None
+    for w in values:
+        if not 0.0 < w < 2.0:
+            raise UsageError(f"omega must lie in (0, 2), got {w:g} in {text!r}")
+    if len(values) > 500:
+        raise UsageError(f"--omega {text!r} gives {len(values)} settings; at most 500")
+    return values
+
+
+def run(args) -> int:
+    from relaxtui.case import load_case
+    from relaxtui.solver.driver import Run, check_outputs
+    from relaxtui.solver.methods import get_method
+    from relaxtui.solver.operator import Operator
+
+    if args.omega is None and args.methods is None:
+        raise UsageError("give --omega START:STOP:STEP (with --method) or --methods M1,M2,...")
+    if args.omega is not None and args.methods is not None:
+        raise UsageError("give either --omega or --methods, not both")
+    if args.csv:
+        check_outputs(csv=args.csv)
+    case = load_case(args.case)
+    settings: list[tuple[str, object]] = []
+    if args.omega is not None:
+        method = args.method or "red-black-sor"
+        if not get_method(method).omega_meaning or method == "jacobi":
+            raise UsageError(f"an omega scan needs sor or red-black-sor, not {method}")
+        settings = [(method, w) for w in parse_range(args.omega)] + [(method, "auto")]
+        rank_by = "sweeps"
+    else:
+        names = [m.strip() for m in args.methods.split(",") if m.strip()]
+        if not names:
+            raise UsageError("--methods needs at least one method name")
+        for name in names:
+            get_method(name)
+        settings = [(name, "auto") for name in names]
+        rank_by = "seconds"
+    # validate every setting before the first solve
+    for method, w in settings:
+        Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit)
+
+    op = Operator(case)
+    rows = []
+    interrupted = threading.Event()
+    with _sigint_to(interrupted):
+        for method, w in settings:
+            if interrupted.is_set():
+                break
+            run = Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
+                      time_limit=args.time_limit, operator=op)
+            run.prepare()
+            while not run.done:
+                if interrupted.is_set():
+                    run.cancel()
+                run.step(0.5)
+            p = run.progress
+            mcells = op.cells_streamed * p.sweeps / p.seconds / 1e6 if p.seconds > 0 else 0.0
+            rows.append({
+                "method": method,
+                "omega_setting": "auto" if w == "auto" else f"{w:g}",
+                "omega": run.omega,
+                "sweeps": p.sweeps,
+                "seconds": p.seconds,
+                "mcells_per_s": mcells,
+                "status": p.status,
+                "factor": p.factor,
+                "estimated_error": p.estimated_error,
+            })
+            if not args.quiet:
+                print(f"relaxtui sweep: {method} omega {rows[-1]['omega_setting']}: {p.status} after {p.sweeps} sweeps, {p.seconds:.2f} s",
+                      file=sys.stderr, flush=True)
+    best = _mark_best(rows, rank_by)
+    _print_table(rows, best, rank_by, case, run.tolerance if rows else None)
+    if args.csv:
+        _write_csv(args.csv, rows, best)
+    if interrupted.is_set():
+        return EXIT_INTERRUPTED
+    return EXIT_CONVERGED if rows and all(r["status"] == "converged" for r in rows) else EXIT_NOT_CONVERGED
+
+
+def _mark_best(rows, rank_by):
+    fixed = [i for i, r in enumerate(rows) if r["status"] == "converged" and r["omega_setting"] != "auto"] or \
+            [i for i, r in enumerate(rows) if r["status"] == "converged"]
+    if not fixed:
+        return None
+    return min(fixed, key=lambda i: (rows[i][rank_by], rows[i]["seconds"]))
+
+
+def _print_table(rows, best, rank_by, case, tolerance) -> None:
+    from rich import box
+    from rich.console import Console
+    from rich.table import Table
+
+    unit = f" {case.unit}" if case.unit else ""
+    methods = {r["method"] for r in rows}
+    one = len(methods) == 1
+    title = f"{case.name}: tolerance {tolerance:g}{unit}" + (f", {rows[0]['method']}" if one and rows else "")
+    t = Table(title=f"{title}; * best by {rank_by}", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
+              padding=(0, 1), collapse_padding=True, show_edge=False)
+    cols = [("", "left")] + ([] if one else [("method", "left")]) + [
+        ("omega", "right"), ("sweeps", "right"), ("seconds", "right"), ("Mcell/s", "right"), ("status", "left"), ("factor", "right")]
+    for col, just in cols:  # about 75 columns wide with every field: fits an 80-column terminal
+        t.add_column(col, justify=just, no_wrap=True)
+    for i, r in enumerate(rows):
+        omega = f"auto {r['omega']:.4f}" if r["omega_setting"] == "auto" else f"{r['omega']:.4f}"
+        if r["method"] == "gauss-seidel":
+            omega = "-"
+        cells = ["*" if i == best else ""] + ([] if one else [r["method"]]) + [
+            omega, str(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
+            "n/a" if r["factor"] is None else f"{r['factor']:.5f}"]
+        t.add_row(*cells)
+    Console().print(t)
+
+
+def _write_csv(path, rows, best) -> None:
+    from relaxtui.output.atomic import write_text
+
+    lines = ["method,omega_setting,omega,sweeps,seconds,mcells_per_s,status,factor,best"]
+    for i, r in enumerate(rows):
+        factor = "" if r["factor"] is None else repr(r["factor"])
+        lines.append(f"{r['method']},{r['omega_setting']},{r['omega']!r},{r['sweeps']},{r['seconds']:.6f},"
+                     f"{r['mcells_per_s']:.3f},{r['status']},{factor},{int(i == best)}")
+    write_text(path, "\n".join(lines) + "\n", "table")

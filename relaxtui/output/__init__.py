@@ -1,0 +1,1 @@
+"""Outputs: atomic writes, field formats, pictures and colour scale, the report."""

@@ -1,0 +1,547 @@
+"""The solve driver: one run of a method on a case, chunk by chunk.
+
+:class:`Run` owns the working field, the stopping rule and the history. It is
+advanced by :meth:`Run.step`, which runs chunks of sweeps for about the time it
+is given and returns an immutable :class:`Progress`; a UI worker thread calls
+it in a loop (the kernels release the GIL, so the UI stays live), and
+:func:`solve` loops over it for the headless command line and the Python API.
+
+Chunks are sized from the measured sweep time so that the checks between
+chunks cost under 2 % of the solve, and never longer than the stopping rule's
+remaining-sweep estimate allows, so a run does not overshoot its tolerance by
+much.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+
+from relaxtui.case import model
+from relaxtui.errors import UsageError
+from relaxtui.solver import stopping
+from relaxtui.solver.methods import get_method
+
+CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
+MAX_CHUNK = 1000  # most sweeps in one chunk
+MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
+MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
+
+
+@dataclass(frozen=True)
+class Progress:
+    """An immutable snapshot of a run, safe to hand to another thread."""
+
+    sweeps: int
+    seconds: float
+    residual: float
+    estimated_error: float
+    factor: float | None
+    eta_sweeps: float | None
+    eta_seconds: float | None
+    mcells_per_s: float
+    omega: float
+    omega_note: str
+    method: str
+    tolerance: float
+    status: str | None
+    message: str
+
+
+class History:
+    """Per-sweep records of a run: numpy arrays of equal length (views)."""
+
+    COLUMNS = ("sweep", "seconds", "residual", "estimated_error")
+
+    def __init__(self):
+        self._data = np.empty((5, 256))
+        self._n = 0
+
+    def __len__(self) -> int:
+        return self._n
+
+    def extend(self, sweeps, seconds, residual, error, omega) -> None:
+        k = len(sweeps)
+        need = self._n + k
+        if need > self._data.shape[1]:
+            grown = np.empty((5, max(need, 2 * self._data.shape[1])))
+            grown[:, : self._n] = self._data[:, : self._n]
+            self._data = grown
+        block = self._data[:, self._n : need]
+        block[0] = sweeps
+        block[1] = seconds
+        block[2] = residual
+        block[3] = error
+        block[4] = omega
+        self._n = need
+
+    sweep = property(lambda self: self._data[0, : self._n])
+    seconds = property(lambda self: self._data[1, : self._n])
+    residual = property(lambda self: self._data[2, : self._n])
+    estimated_error = property(lambda self: self._data[3, : self._n])
+    omega = property(lambda self: self._data[4, : self._n])
+
+    def copy(self) -> "History":
+        other = History()
+        other._data = self._data[:, : self._n].copy()
+        other._n = self._n
+        return other
+
+    def to_csv_text(self) -> str:
+        lines = [",".join(self.COLUMNS)]
+        for s, t, r, e in zip(self.sweep, self.seconds, self.residual, self.estimated_error):
+            lines.append(f"{int(s)},{t:.6f},{_num(r)},{_num(e)}")
+        return "\n".join(lines) + "\n"
+
+    def to_csv(self, path) -> Path:
+        from relaxtui.output.atomic import write_text
+
+        return write_text(path, self.to_csv_text(), "history")
+
+
+def _num(x: float) -> str:
+    return repr(float(x)) if math.isfinite(x) else ("inf" if x > 0 else "-inf" if x < 0 else "nan")
+
+
+@dataclass
+class SolveResult:
+    field: np.ndarray
+    report: dict
+    history: History
+    case: model.Case
+
+
+def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
+    """Apply the case's [solver] defaults and validate; returns the resolved tuple."""
+    s = case.solver
+    meth = get_method(method or s.method or model.DEFAULT_METHOD)
+    explicit = omega is not None
+    if omega is None:
+        omega = s.omega if s.omega is not None else model.DEFAULT_OMEGA
+    if isinstance(omega, str) and omega != "auto":
+        try:
+            omega = float(omega)
+        except ValueError:
+            raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {omega!r}") from None
+    if omega != "auto":
+        if isinstance(omega, bool) or not isinstance(omega, (int, float)):
+            raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {omega!r}")
+        if not meth.omega_meaning and not explicit:
+            omega = "auto"  # the case's omega is for other methods; this one has none
+        else:
+            omega = meth.check_omega(omega)
+    tol = tolerance if tolerance is not None else (s.tolerance if s.tolerance is not None else model.DEFAULT_TOLERANCE)
+    try:
+        tol = float(tol)
+    except (TypeError, ValueError):
+        raise UsageError(f"tolerance must be a positive number, not {tol!r}") from None
+    if not (tol > 0.0 and math.isfinite(tol)):
+        raise UsageError(f"tolerance must be a positive finite number, got {tol:g}")
+    ms = max_sweeps if max_sweeps is not None else (s.max_sweeps if s.max_sweeps is not None else model.DEFAULT_MAX_SWEEPS)
+    if isinstance(ms, bool) or not isinstance(ms, (int, np.integer)) or ms < 1:
+        raise UsageError(f"max_sweeps must be a whole number >= 1, got {ms!r}")
+    if time_limit is not None:
+        try:
+            time_limit = float(time_limit)
+        except (TypeError, ValueError):
+            raise UsageError(f"time_limit must be a number of seconds, not {time_limit!r}") from None
+        if not time_limit > 0.0:
+            raise UsageError(f"time_limit must be > 0 seconds, got {time_limit:g}")
+    return meth, omega, tol, int(ms), time_limit
+
+
+class Run:
+    """One solve of a case with one method, advanced chunk by chunk."""
+
+    def __init__(self, case, *, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
+                 initial=None, operator=None, field=None):
+        if not isinstance(case, model.Case):
+            from relaxtui.case import load_case
+
+            case = load_case(case)
+        self.case = case
+        self.method_info, self._omega_request, self.tolerance, self.max_sweeps, self.time_limit = resolve_options(
+            case, method, omega, tolerance, max_sweeps, time_limit)
+        self.method = self.method_info.name
+        self.operator = operator
+        self._initial = initial
+        self._continue = field
+        self.history = History()
+        self._cancel = threading.Event()
+        self._prepared = False
+        self._u = None
+        self.omega = 1.0 if self._omega_request == "auto" else float(self._omega_request)
+        self.omega_note = "given"
+        self.omega_changes: list[tuple[int, float, str]] = []
+        self.mu: float | None = None  # estimated Jacobi radius (SOR methods)
+        self._radius_note = ""
+        self._radius_settled = False  # only a settled estimate guides the stopping rule
+        self._corrections = 0
+        self.seconds = 0.0
+        self.prepare_seconds = 0.0
+        self.status: str | None = None
+        self.message = "not started"
+        self._chunk = 1
+        self._sweep_seconds = None
+        self._recent = (0, 0.0)  # sweeps and seconds of the last step() call
+        self.rule: stopping.StoppingRule | None = None
+        self.progress = self._progress()
+
+    # -- set-up ----------------------------------------------------------------
+    def prepare(self) -> None:
+        """Assemble, choose ω, compile kernels. Idempotent; step() calls it."""
+        if self._prepared:
+            return
+        t0 = time.perf_counter()
+        if self.operator is None:
+            from relaxtui.solver.operator import Operator
+
+            self.operator = Operator(self.case)
+        op = self.operator
+        if self._continue is not None:
+            self._u = np.array(self._continue, dtype=np.float64, copy=True)
+            if self._u.shape != tuple(op.padded_shape):
+                raise UsageError("the field to continue from belongs to another case")
+        else:
+            self._u = op.new_field(self._initial)
+        self._stepper = self.method_info.make_stepper(op)
+        self._upd = np.empty(MAX_CHUNK)
+        self._res = np.empty(MAX_CHUNK)
+        # compile (or load from cache) before the clock starts
+        self._stepper.sweep(self._u, self.omega if self._omega_request != "auto" else 1.0, 0, self._upd, self._res)
+        # a stepper may ask for its own rate window and envelope (multigrid: see relaxtui.solver.multigrid)
+        self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale(),
+                                          **getattr(self._stepper, "rule_options", {}))
+        self._choose_omega(self._omega_request)
+        self._prepared = True
+        self.prepare_seconds = time.perf_counter() - t0
+        self.message = "running"
+        self.progress = self._progress()
+
+    def _scale(self) -> float:
+        view = self.operator.view(self._u)
+        codes = self.case.codes
+        kinds = self.case.kind_codes()[codes]
+        vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
+        scale = float(np.max(np.abs(vals))) if vals.size else 1.0
+        for r in self.case.regions:
+            for v in (r.value, r.ambient):
+                if v is not None:
+                    scale = max(scale, abs(v))
+        return scale or 1.0
+
+    def _radius(self) -> float:
+        """The Jacobi spectral radius of this case's operator (estimated once per operator)."""
+        if self.mu is None:
+            m = self.method_info
+            cached = getattr(self.operator, "_relaxtui_radius", None)
+            if cached is None or (not cached[1] and not m.needs_radius):
+                # (an unsettled estimate made for SOR is redone for the slow methods,
+                # whose longer solves afford the steps to settle it)
+                from relaxtui.solver.omega import jacobi_radius
+
+                def method_sweeps(mu):
+                    return 9.2 / max(1.0 - m.factor(mu, m.auto(mu)), 1e-300)
+
+                op = self.operator
+                t0 = time.perf_counter()
+                est = jacobi_radius(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
+                how = "settled" if est.settled else "not settled, corrected from the observed factor"
+                cached = (est.mu, est.settled,
+                          f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s, {how})")
+                op._relaxtui_radius = cached
+            self.mu, self._radius_settled, self._radius_note = cached
+        return self.mu
+
+    def _choose_omega(self, request) -> None:
+        """Set ω (a number or "auto") and restart the stopping rule's measurement.
+
+        The Jacobi radius is estimated for every method, also when ω is given:
+        Young's relations then give the rule the method's asymptotic factor
+        and, above the optimal ω, the smooth modes' |λ - 1| (see
+        stopping.estimates).
+        """
+        from relaxtui.solver.omega import sor_smooth_gap
+
+        m = self.method_info
+        if m.uses_radius:
+            self._radius()  # Young's factor for the method is the rule's best guide
+        if request == "auto":
+            if m.needs_radius:
+                self.omega = m.auto(self.mu)
+                if not self.omega_note.startswith("auto: Jacobi radius raised"):
+                    self.omega_note = f"auto: {self._radius_note}, omega = 2/(1+sqrt(1-radius^2))"
+            else:
+                self.omega = m.auto(self.mu)
+                self.omega_note = ("auto: 1 (the best weight for this method on a red-black-coupled grid)"
+                                   if m.uses_radius else f"auto: {self.omega:g} (the method's default)")
+        else:
+            self.omega = float(request)
+            self.omega_note = "given"
+        prior = gap = None
+        if self.mu is not None and m.uses_radius and self._radius_settled:
+            prior = m.factor(self.mu, self.omega)
+            gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
+            if prior >= 1.0:
+                prior = gap = None  # no convergence predicted (e.g. over-weighted Jacobi): measure only
+        # SOR near ω = 2 wanders for many sweeps before it settles: never call that a stall
+        stall = int(20.0 / max(2.0 - self.omega, 1e-6)) if m.needs_radius else 0
+        self.rule.restart(prior_factor=prior, prior_gap=gap, stall_window=stall)
+        self.omega_changes.append((self.rule.sweeps, self.omega, self.omega_note))
+
+    def set_omega(self, omega) -> None:
+        """Change ω mid-run (a number in (0, 2) or "auto"); recorded in history and report."""
+        if omega != "auto":
+            omega = self.method_info.check_omega(omega)
+        self._omega_request = omega
+        if self._prepared and not self.done:
+            self._choose_omega(omega)
+            self.progress = self._progress()
+        elif not self._prepared:
+            self.omega = 1.0 if omega == "auto" else float(omega)
+
+    def cancel(self) -> None:
+        """Ask the run to stop; the next step() ends it with status "cancelled"."""
+        self._cancel.set()
+
+    @property
+    def done(self) -> bool:
+        return self.status is not None
+
+    @property
+    def field(self) -> np.ndarray:
+        if self._u is None:
+            self.prepare()
+        return self._u
+
+    def view(self) -> np.ndarray:
+        return self.operator.view(self.field)
+
+    @property
+    def stepper_info(self) -> dict | None:
+        """What the method's stepper reports about itself (e.g. multigrid levels), or None."""
+        return getattr(self._stepper, "info", None) if self._prepared else None
+
+    # -- stepping --------------------------------------------------------------
+    def step(self, max_seconds: float = 0.25) -> Progress:
+        """Run chunks for about ``max_seconds`` (at least one); returns the progress."""
+        if self.done:
+            return self.progress
+        self.prepare()
+        t_end = time.perf_counter() + max_seconds
+        done_sweeps, done_seconds = 0, 0.0
+        while True:
+            if self._cancel.is_set():
+                self._finish(stopping.CANCELLED)
+                break
+            n = self._chunk_size()
+            t0 = time.perf_counter()
+            k = self._stepper.sweep(self._u, self.omega, n, self._upd, self._res)
+            dt = time.perf_counter() - t0
+            first = self.rule.sweeps
+            self.rule.add(self._upd[:k])
+            self.seconds += dt
+            done_sweeps += k
+            done_seconds += dt
+            if k:
+                self._sweep_seconds = dt / k
+                sweeps = np.arange(first + 1, first + k + 1)
+                secs = self.seconds - dt + dt * np.arange(1, k + 1) / k
+                errs = self.rule.recent_errors(k)
+                self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
+            decision = self.rule.decide(self.seconds, cancelled=self._cancel.is_set())
+            if decision.status is None and k < n:
+                decision = replace(decision, status=stopping.DIVERGED)
+            if decision.status is None:
+                self._maybe_correct_omega()
+            if decision.status is not None:
+                self._finish(decision.status)
+                break
+            if time.perf_counter() >= t_end:
+                break
+        self._recent = (done_sweeps, done_seconds)
+        self.progress = self._progress()
+        return self.progress
+
+    def _chunk_size(self) -> int:
+        if self._sweep_seconds is None:
+            n = 1
+        else:
+            n = int(CHUNK_SECONDS / max(self._sweep_seconds, 1e-9))
+        d = self.rule.last
+        cap = MAX_CHUNK_UNSETTLED
+        if d.eta_sweeps is not None and math.isfinite(d.estimated_error):
+            # half the predicted remainder, so the run cannot overshoot its tolerance by much
+            cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
+        remaining = self.max_sweeps - self.rule.sweeps
+        # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
+        most = getattr(self._stepper, "max_chunk", MAX_CHUNK)
+        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, most))
+
+    def _maybe_correct_omega(self) -> None:
+        """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""
+        if self._omega_request != "auto" or self.mu is None or self._corrections >= MAX_OMEGA_CORRECTIONS:
+            return
+        est = self.rule.last_estimate
+        predicted = self.method_info.factor(self.mu, self.omega)
+        meas = est.measured
+        if not est.mature or meas is None or not 0.0 < meas < 1.0:
+            return
+        seg_len = self.rule.sweeps - self.omega_changes[-1][0]
+        if seg_len < 10.0 / max(1.0 - predicted, 1e-12):
+            return  # too early: near the optimum SOR decays like k·(ω-1)^k for a long while
+        if (1.0 - meas) >= 0.5 * (1.0 - predicted):
+            return
+        from relaxtui.solver.omega import mu_from_sor_factor
+
+        mu_new = mu_from_sor_factor(meas, self.omega)
+        if mu_new <= self.mu:
+            return
+        self._corrections += 1
+        old = self.mu
+        self.mu = mu_new
+        self.operator._relaxtui_radius = (mu_new, False, f"Jacobi radius {mu_new:.6f} (raised from the observed SOR factor)")
+        self.omega_note = (f"auto: Jacobi radius raised {old:.6f} -> {mu_new:.6f} from the observed SOR factor "
+                           f"{meas:.6f} (Young's relation), omega = 2/(1+sqrt(1-radius^2))")
+        self._choose_omega("auto")
+
+    def _finish(self, status: str) -> None:
+        self.status = status
+        self.message = self._describe(status)
+        release = getattr(self._stepper, "release", None)  # a stepper's own buffers are not needed any more
+        if release is not None:
+            release()
+
+    # -- reporting -------------------------------------------------------------
+    def _describe(self, status: str | None) -> str:
+        d = self.rule.last if self.rule else None
+        unit = f" {self.case.unit}" if self.case.unit else ""
+        tol = f"{self.tolerance:.3g}{unit}"
+        err = "not yet estimable" if d is None or not math.isfinite(d.estimated_error) else f"{d.estimated_error:.2g}{unit}"
+        n = _group(self.rule.sweeps if self.rule else 0)
+        if status == stopping.CONVERGED:
+            return f"equilibrium reached: estimated error {err} <= {tol} after {n} sweeps"
+        if status == stopping.STALLED:
+            if self.rule.at_floor():
+                return (f"stalled after {n} sweeps: the updates are at float64's rounding floor while the "
+                        f"estimated error {err} > {tol} (the tolerance is below what this grid resolves)")
+            return f"stalled after {n} sweeps: no progress over a long window, estimated error {err} > {tol}"
+        if status == stopping.DIVERGED:
+            return f"diverged after {n} sweeps at omega {self.omega:.4g}: the field grows without bound"
+        if status == stopping.SWEEP_LIMIT:
+            return f"sweep limit {n} reached: estimated error {err} > {tol}"
+        if status == stopping.TIME_LIMIT:
+            return f"time limit {self.time_limit:g} s reached after {n} sweeps: estimated error {err} > {tol}"
+        if status == stopping.CANCELLED:
+            return f"cancelled after {n} sweeps: estimated error {err} (tolerance {tol})"
+        if not self._prepared:
+            return "preparing"
+        eta = "" if d is None or d.eta_sweeps is None else f", about {_group(int(d.eta_sweeps))} sweeps to go"
+        return f"running: estimated error {err}, tolerance {tol}{eta}"
+
+    def _progress(self) -> Progress:
+        d = self.rule.last if self.rule else stopping.Decision(None, math.inf, None, None)
+        last_res = float(self.history.residual[-1]) if len(self.history) else math.nan
+        sw, secs = self._recent
+        cells = getattr(self.operator, "cells_streamed", 0) if self.operator is not None else 0
+        mcells = cells * sw / secs / 1e6 if secs > 0 else 0.0
+        eta_s = None
+        if d.eta_sweeps is not None and self._sweep_seconds:
+            eta_s = d.eta_sweeps * self._sweep_seconds
+        return Progress(
+            sweeps=self.rule.sweeps if self.rule else 0,
+            seconds=self.seconds,
+            residual=last_res,
+            estimated_error=d.estimated_error,
+            factor=d.factor,
+            eta_sweeps=d.eta_sweeps,
+            eta_seconds=eta_s,
+            mcells_per_s=mcells,
+            omega=self.omega,
+            omega_note=self.omega_note,
+            method=self.method,
+            tolerance=self.tolerance,
+            status=self.status,
+            message=self.message if self.status else self._describe(None),
+        )
+
+    def result(self) -> SolveResult:
+        """Finish the run (cancelled if still going) and build field, report and history."""
+        self.prepare()
+        if not self.done:
+            self._finish(stopping.CANCELLED)
+            self.progress = self._progress()
+        from relaxtui.output.report import build_report
+
+        field = self.operator.finish(self._u)
+        report = build_report(self, field)
+        return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case)
+
+
+def _group(n: int) -> str:
+    return f"{n:,}".replace(",", " ")
+
+
+def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
+          initial=None, on_progress=None, cancel_event=None) -> SolveResult:
+    """Solve a case to its tolerance.
+
+    Parameters
+    ----------
+    case : Case or path
+        A loaded case or the path of its TOML file.
+    method, omega, tolerance, max_sweeps, time_limit
+        Override the case's ``[solver]`` table (see :func:`resolve_options`).
+    initial : ndarray, optional
+        (rows, cols) float64 starting field; NaN allowed outside the domain.
+    on_progress : callable(Progress), optional
+        Called after every step (about four times a second).
+    cancel_event : threading.Event, optional
+        Set it from another thread to stop; the result then has status
+        ``cancelled`` and the field reached so far.
+
+    Returns
+    -------
+    SolveResult
+        ``field`` (rows, cols) float64 with NaN outside the domain, ``report``
+        (the contract's keys), ``history``.
+    """
+    run = Run(case, method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps,
+              time_limit=time_limit, initial=initial)
+    run.prepare()
+    while not run.done:
+        if cancel_event is not None and cancel_event.is_set():
+            run.cancel()
+        progress = run.step(0.25)
+        if on_progress is not None:
+            on_progress(progress)
+    return run.result()
+
+
+def check_outputs(**paths) -> None:
+    """Refuse, before any work, output paths whose folder does not exist."""
+    from relaxtui.output.atomic import check_target
+
+    for what, path in paths.items():
+        if path is not None:
+            check_target(path, what)
+
+
+def write_outputs(result: SolveResult, *, out=None, report=None, history=None) -> list[Path]:
+    """Write the field (.npy), report (.json) and history (.csv) atomically."""
+    from relaxtui.output.atomic import write_json, write_npy
+
+    check_outputs(field=out, report=report, history=history)
+    written = []
+    if out is not None:
+        written.append(write_npy(out, result.field, "field"))
+    if history is not None:
+        written.append(result.history.to_csv(history))
+    if report is not None:
+        written.append(write_json(report, result.report, "report"))
+    return written
