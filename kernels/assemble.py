@@ -32,6 +32,29 @@ INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
 
 
 @kernel(inline=True)
+def face_conductance(a, b):
+    """The harmonic mean 2ab/(a + b) of two positive conductivities, without overflow or underflow.
+
+    Written as 2 k_min / (1 + k_min/k_max): the ratio lies in (0, 1], so the
+    result is within rounding of the textbook form wherever that one is finite,
+    and stays finite for any positive float64 inputs (1e160 squared would not).
+    """
+    lo = a if a < b else b
+    hi = b if a < b else a
+    return lo / (0.5 + 0.5 * (lo / hi))
+
+
+@kernel(inline=True)
+def film_conductance(coefficient, kp, h):
+    """U h = h / (1/coefficient + h/(2 k_P)) of a convection face, without overflow or underflow.
+
+    The same number as 1 / (1/(coefficient h) + 1/(2 k_P)): half the harmonic
+    mean of coefficient * h and 2 k_P.
+    """
+    return 0.5 * face_conductance(coefficient * h, 2.0 * kp)
+
+
+@kernel(inline=True)
 def _is_bulk(codes, i, j, r):
     rows, cols = codes.shape
     if i == 0 or j == 0 or i == rows - 1 or j == cols - 1:
@@ -157,20 +180,20 @@ def class_table(class_keys, border, kind, conductivity, fixed_conductivity, valu
             kx = kind[rx]
             if kx == INTERIOR:
                 kn = conductivity[rx]
-                gx = 2.0 * kp * kn / (kp + kn)
+                gx = face_conductance(kp, kn)
                 g[side] = gx
                 d += gx
             elif kx == FIXED:
                 kn = fixed_conductivity[rx]
                 if kn <= 0.0:
                     kn = kp
-                gx = 2.0 * kp * kn / (kp + kn)
+                gx = face_conductance(kp, kn)
                 d += gx
                 b += gx * value[rx]
             elif kx == FLUX:
                 b += flux[rx] * h
             elif kx == CONVECTION:
-                uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                uh = film_conductance(coefficient[rx], kp, h)
                 d += uh
                 b += uh * ambient[rx]
         b += source[rp] * h * h

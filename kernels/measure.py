@@ -10,6 +10,7 @@ import numpy as np
 from numba import prange
 from relaxtui.kernels._bits import abs_bits, from_bits
 from relaxtui.kernels._jit import kernel
+from relaxtui.kernels.assemble import face_conductance, film_conductance
 
 INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
 
@@ -143,11 +144,11 @@ def flows(codes, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind,
                             kn = fixed_conductivity[rx]
                             if kn <= 0.0:
                                 kn = kp
-                            acc[b, rx] += 2.0 * kp * kn / (kp + kn) * (value[rx] - up)
+                            acc[b, rx] += face_conductance(kp, kn) * (value[rx] - up)
                         elif kx == FLUX:
                             acc[b, rx] += flux[rx] * h
                         elif kx == CONVECTION:
-                            uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                            uh = film_conductance(coefficient[rx], kp, h)
                             acc[b, rx] += uh * (ambient[rx] - up)
     return acc
 

@@ -7,10 +7,32 @@ written.
 """
 
 
+def printable(text) -> str:
+    """``text`` with every control character escaped (``\\x1b``, ``\\n``, ...), safe to print on a terminal.
+
+    A name or title from a case file can hold an escape sequence that would
+    clear or retitle the user's terminal; what relaxtui prints never carries one.
+    """
+    text = str(text)
+    if text.isprintable():
+        return text
+    out = []
+    for ch in text:
+        if ch.isprintable() or ch == " ":
+            out.append(ch)
+        else:
+            out.append(ch.encode("unicode_escape").decode("ascii"))
+    return "".join(out)
+
+
 class RelaxError(Exception):
-    """Base class of the errors relaxtui reports to the user."""
+    """Base class of the errors relaxtui reports to the user (the message printed with control
+    characters escaped, on one line)."""
 
     exit_code = 2
+
+    def __str__(self) -> str:
+        return printable(super().__str__())
 
 
 class CaseError(RelaxError):

@@ -158,3 +158,17 @@ def check_domain(codes: np.ndarray, regions: Sequence[Region], label: str) -> No
             f"{label}: a group of {size} interior cells (one of them at row {r}, column {c}) touches no fixed "
             f"or convection cell, so its values are not determined{more}; put a fixed or convection region next to it"
         )
+
+
+def mask_outside_folder(case) -> str | None:
+    """The resolved picture path when it lies outside the case file's folder (shared masks are
+    allowed, but made visible), else None."""
+    import os
+
+    if case.path is None or case.mask_path is None:
+        return None
+    folder = os.path.realpath(os.path.dirname(os.path.abspath(case.path)))
+    mask = os.path.realpath(case.mask_path)
+    if os.path.commonpath([folder, mask]) == folder:
+        return None
+    return mask

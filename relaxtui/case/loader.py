@@ -56,6 +56,16 @@ KIND_KEYS = {
 }
 REQUIRED_KEYS = {"interior": (), "fixed": ("value",), "outside": (), "flux": ("flux",), "convection": ("coefficient", "ambient")}
 POSITIVE_KEYS = ("conductivity", "coefficient")
+# The ranges relaxtui computes in (float64 with room for the products of assembly, flows and
+# positions): a number outside them is refused with its key and line rather than overflowing later.
+NUMBER_RANGES = {
+    "conductivity": (1e-300, 1e300),
+    "coefficient": (1e-300, 1e300),
+    "cell_size": (1e-30, 1e30),
+    "depth": (1e-30, 1e30),
+}
+MAX_MAGNITUDE = 1e150  # |value|, |ambient|, |flux|, |source|
+MAX_NESTING = 64  # deepest [...]/{...} nesting of a case file (tomllib recurses per level)
 ALL_REGION_KEYS = COMMON_KEYS + ("conductivity", "source", "value", "flux", "coefficient", "ambient")
 DEFAULT_CONDUCTIVITY = 1.0
 MAX_REGIONS = picture.MAX_REGIONS
@@ -195,6 +205,37 @@ def _type_name(value) -> str:
     return type(value).__name__  # pragma: no cover - tomllib makes no other types
 
 
+def check_range(key: str, x: float, fail) -> None:
+    """Call ``fail(message)`` when the number ``x`` of ``key`` lies outside what relaxtui computes in."""
+    if key in NUMBER_RANGES:
+        lo, hi = NUMBER_RANGES[key]
+        if not lo <= abs(x) <= hi:
+            fail(f"key '{key}' = {x:g} is outside the range relaxtui computes in ({lo:g} to {hi:g})")
+    elif key in ("value", "ambient", "flux", "source") and abs(x) > MAX_MAGNITUDE:
+        fail(f"key '{key}' = {x:g} is outside the range relaxtui computes in (magnitude at most {MAX_MAGNITUDE:g})")
+
+
+def _nesting_line(text: str) -> int | None:
+    """The line where brackets first nest deeper than MAX_NESTING (strings skipped roughly), or None."""
+    depth, line, quote = 0, 1, None
+    for ch in text:
+        if ch == "\n":
+            line += 1
+        if quote:
+            if ch == quote:
+                quote = None
+            continue
+        if ch in "\"'":
+            quote = ch
+        elif ch in "[{":
+            depth += 1
+            if depth > MAX_NESTING:
+                return line
+        elif ch in "]}":
+            depth = max(0, depth - 1)
+    return None
+
+
 def _show(value) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
@@ -227,11 +268,15 @@ class _Checker:
     def number(self, value, key, line, who="", *, positive=False) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             self.fail(line, f"{who}key '{key}' must be a number, not {_type_name(value)} ({_show(value)})")
-        x = float(value)
+        try:
+            x = float(value)
+        except OverflowError:
+            self.fail(line, f"{who}key '{key}' is an integer of {len(str(abs(value)))} digits, too large for a number")
         if not math.isfinite(x):
             self.fail(line, f"{who}key '{key}' must be a finite number, got {_show(value)}")
         if positive and not x > 0.0:
             self.fail(line, f"{who}key '{key}' must be > 0, got {_show(value)}")
+        check_range(key, x, lambda message: self.fail(line, f"{who}{message}"))
         return x
 
     def string(self, value, key, line, who="", *, nonempty=False) -> str:
@@ -251,6 +296,9 @@ class _Checker:
 # The TOML file
 
 def _read_toml(path: Path, label: str) -> tuple[dict, str]:
+    from relaxtui.case.picture import require_regular_file
+
+    require_regular_file(path, label, "case file")
     try:
         data = path.read_bytes()
     except FileNotFoundError:
@@ -266,8 +314,13 @@ def _read_toml(path: Path, label: str) -> tuple[dict, str]:
     except UnicodeDecodeError as exc:
         line = data[: exc.start].count(b"\n") + 1
         raise _fail(label, line, "not valid TOML: the file is not UTF-8 text") from None
+    deep = _nesting_line(text)
+    if deep is not None:
+        raise _fail(label, deep, f"not valid for a case file: arrays or tables nested more than {MAX_NESTING} deep")
     try:
         doc = tomllib.loads(text)
+    except RecursionError:
+        raise _fail(label, None, "not valid for a case file: nested too deep") from None
     except tomllib.TOMLDecodeError as exc:
         msg = str(exc)
         m = re.search(r"\(at line (\d+), column (\d+)\)\s*$", msg)
@@ -473,6 +526,7 @@ def load_case(path: str | Path) -> Case:
         raise CaseError(f"{mask_label}: picture not found (looked for {str(mask_path)!r})")
     if mask_path.is_dir():
         raise CaseError(f"{mask_label}: is a folder, not a PNG picture")
+    picture.require_regular_file(mask_path, mask_label, "PNG picture")
     header = picture.read_header(mask_path, mask_label)
     check_memory(header.height, header.width, solver.method, len(regions), mask_label)
     decoded = picture.decode(mask_path, mask_label)

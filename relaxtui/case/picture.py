@@ -104,9 +104,30 @@ class Decoded:
         return colours[order].astype(np.uint32), counts[order].astype(np.int64)
 
 
+def require_regular_file(path, label: str, what: str) -> None:
+    """Refuse (CaseError) a path that exists but is not a regular file: a FIFO or a device would
+    block a reader or never end, a folder is no file. A missing path is left to the reader's message."""
+    import os
+    import stat
+
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise CaseError(f"{label}: cannot read the {what} ({exc.strerror or exc})") from None
+    if stat.S_ISDIR(mode):
+        raise CaseError(f"{label}: is a folder, not a {what}")
+    if not stat.S_ISREG(mode):
+        kind = "FIFO (named pipe)" if stat.S_ISFIFO(mode) else "device" if (stat.S_ISCHR(mode) or stat.S_ISBLK(mode)) \
+            else "socket" if stat.S_ISSOCK(mode) else "special file"
+        raise CaseError(f"{label}: is a {kind}, not a regular file; a {what} must be a regular file")
+
+
 def read_header(path: Path, label: str | None = None) -> Header:
     """Read width, height, bit depth and colour type from the PNG's IHDR chunk."""
     label = label or str(path)
+    require_regular_file(path, label, "PNG picture")
     try:
         with open(path, "rb") as f:
             head = f.read(33)

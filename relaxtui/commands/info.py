@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from relaxtui.case.domain import mask_outside_folder
 from relaxtui.case.model import DEFAULT_METHOD, INTERIOR, Case
+from relaxtui.errors import printable
 from relaxtui.solver import memory
 
 
@@ -108,13 +110,15 @@ def describe(case: Case, console=None) -> None:
     h = case.cell_size
     unit = case.unit
 
-    console.print(Text(case.title or case.name, style="bold"))
+    console.print(Text(printable(case.title or case.name), style="bold"))
     facts = Table.grid(padding=(0, 2))
     facts.add_column(style="dim")
     facts.add_column()
-    facts.add_row("case", str(case.path) if case.path else "(built from an array)")
-    facts.add_row("picture", str(case.mask_path))
-    facts.add_row("quantity", f"{case.quantity} ({unit})" if unit else case.quantity)
+    facts.add_row("case", Text(printable(case.path)) if case.path else "(built from an array)")
+    outside = mask_outside_folder(case)
+    facts.add_row("picture", Text(printable(case.mask_path) + (f"  (outside the case's folder: {printable(outside)})"
+                                                               if outside else "")))
+    facts.add_row("quantity", Text(printable(f"{case.quantity} ({unit})" if unit else case.quantity)))
     facts.add_row("grid", f"{rows} rows × {cols} columns")
     facts.add_row("cells", f"{rows * cols:,}")
     facts.add_row("unknowns", f"{unknowns:,} interior cells")
@@ -125,7 +129,7 @@ def describe(case: Case, console=None) -> None:
     s = case.solver
     solver = [method, f"omega {s.omega if s.omega is not None else 'auto'}"]
     if s.tolerance is not None:
-        solver.append(f"tolerance {s.tolerance:g}{' ' + unit if unit else ''}")
+        solver.append(f"tolerance {s.tolerance:g}{' ' + printable(unit) if unit else ''}")
     if s.max_sweeps is not None:
         solver.append(f"at most {s.max_sweeps:,} sweeps")
     facts.add_row("solver", ", ".join(solver))
@@ -151,7 +155,8 @@ def describe(case: Case, console=None) -> None:
             face = f"{int(faces[i]):,}" if int(faces[i]) else ""
         else:
             face = f"{int(faces[i]):,}"
-        table.add_row(str(i + 1), r.name, r.kind, swatch, f"{int(counts[i]):,}", face, _params(r, unit))
+        table.add_row(str(i + 1), Text(printable(r.name)), r.kind, swatch, f"{int(counts[i]):,}", face,
+                      Text(printable(_params(r, unit))))
     table.add_row("", Text("(image border)", style="dim"), Text("outside", style="dim"), "", "", f"{border:,}", "")
     console.print(table)
     console.print(Text("* faces with interior cells: cell faces between an interior cell and a cell of "

@@ -1,13 +1,27 @@
 """``relaxtui solve`` and ``relaxtui sweep``: headless solves from the command line.
 
 Exit codes: 0 converged; 1 ran but did not converge (sweep-limit, time-limit,
-stalled, diverged); 2 bad input or options; 130 interrupted (the outputs are
-still written, with status ``cancelled``).
+stalled, diverged); 2 bad input or options (nothing is written); 130
+interrupted (the outputs are still written, with status ``cancelled``).
+
+Interruption: Ctrl-C (SIGINT), SIGTERM (a batch system's stop) and SIGHUP (a
+closed terminal or SSH session) all end the run the same way: the current
+chunk of sweeps finishes, field, report (status ``cancelled``, the message
+names the signal) and history are written, and the exit status is 130 for
+each of them (the contract's "interrupted"). A second signal while solving
+stops at once without writing; once the writing has begun, further signals
+are noted and ignored until the output set is complete.
+
+Outputs form a set (relaxtui.output.atomic.OutputSet): every file is written
+to a temporary first; then the previous report is removed, the others are
+renamed, and the report comes last, carrying a run id and the SHA-256 of each
+file it describes, so a reader can tell a complete set from a broken one.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import signal
 import sys
 import threading
@@ -16,28 +30,55 @@ from contextlib import contextmanager
 from pathlib import Path
 
 EXIT_CONVERGED, EXIT_NOT_CONVERGED, EXIT_INTERRUPTED = 0, 1, 130
+STOP_SIGNALS = tuple(getattr(signal, name) for name in ("SIGINT", "SIGTERM", "SIGHUP") if hasattr(signal, name))
+
+
+class _Signals:
+    """What the stop signals have asked for so far."""
+
+    def __init__(self, event: threading.Event):
+        self.event = event
+        self.first: int | None = None
+        self.writing = False  # once set, signals are only noted
+        self.ignored = 0
+
+    def handler(self, signum, frame):
+        if self.writing:
+            self.ignored += 1
+            return
+        if self.event.is_set():
+            raise KeyboardInterrupt
+        self.first = signum
+        self.event.set()
+
+    @property
+    def name(self) -> str:
+        return signal.Signals(self.first).name if self.first is not None else ""
 
 
 @contextmanager
-def _sigint_to(event: threading.Event):
-    """The first Ctrl-C sets ``event`` (the run ends cleanly); a second one interrupts."""
-    previous = signal.getsignal(signal.SIGINT)
-
-    def handler(signum, frame):
-        if event.is_set():
-            signal.signal(signal.SIGINT, previous)
-            raise KeyboardInterrupt
-        event.set()
-
+def _stop_signals_to(event: threading.Event):
+    """SIGINT, SIGTERM and SIGHUP set ``event`` (the run ends cleanly); a second one interrupts,
+    except while the outputs are being written (``state.writing``)."""
+    state = _Signals(event)
+    previous = {}
     try:
-        signal.signal(signal.SIGINT, handler)
+        for sig in STOP_SIGNALS:
+            previous[sig] = signal.signal(sig, state.handler)
     except ValueError:  # not in the main thread
-        yield
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+        yield state
         return
     try:
-        yield
+        yield state
     finally:
-        signal.signal(signal.SIGINT, previous)
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+
+
+# kept for callers of the previous name (Ctrl-C only behaved the same way)
+_sigint_to = _stop_signals_to
 
 
 def _default_outputs(args, case):
@@ -49,31 +90,130 @@ def _default_outputs(args, case):
     return f"{stem}.field.npy", f"{stem}.report.json", f"{stem}.history.csv"
 
 
+def check_output_set(outputs: dict, inputs: dict) -> None:
+    """Refuse (OutputError, before any work) an output set that would clobber itself or an input.
+
+    ``outputs`` maps what ("field", "report", ...) to a path or None;
+    ``inputs`` maps what ("case file", "picture", "initial field") to a path or None.
+    Refused: a missing or unwritable folder, a path that exists and is not a
+    regular file, two outputs on one path, an output that is one of the inputs.
+    """
+    from relaxtui.errors import OutputError
+    from relaxtui.output.atomic import check_target
+
+    seen: dict = {}
+    ins = {}
+    for what, path in inputs.items():
+        if path is not None:
+            ins[_identity(path)] = (what, path)
+    for what, path in outputs.items():
+        if path is None:
+            continue
+        check_target(path, what)
+        key = _identity(path)
+        if key in seen:
+            other = seen[key]
+            raise OutputError(f"the {what} and the {other} would both be written to {str(path)!r}; give them different paths")
+        if key in ins:
+            in_what, in_path = ins[key]
+            raise OutputError(f"the {what} would overwrite the {in_what} {str(in_path)!r}; choose another path")
+        seen[key] = what
+
+
+def _identity(path):
+    """A key equal for two names of one file: (device, inode) when it exists, else the resolved path."""
+    try:
+        st = os.stat(path)
+        return ("inode", st.st_dev, st.st_ino)
+    except OSError:
+        return ("path", os.path.realpath(path))
+
+
+def _check_picture_options(args, case) -> None:
+    """The picture's size from --scale, before any work (the exact layout adds a colour-bar panel)."""
+    if not getattr(args, "picture", None):
+        return
+    from relaxtui.errors import UsageError
+    from relaxtui.output.pictures import MAX_PICTURE_PIXELS
+
+    s = int(args.scale or 1)
+    rows, cols = case.shape
+    if (cols * s + 64) * max(rows * s, 64) > MAX_PICTURE_PIXELS:
+        raise UsageError(f"--scale {s}: the picture would be at least {cols * s} x {rows * s} pixels "
+                         f"(more than {MAX_PICTURE_PIXELS:,}); use a smaller scale")
+
+
+def _load_initial(path, case):
+    """``--initial``: a regular file holding a finite field on every interior cell; warns when a report
+    beside it describes a different field."""
+    import numpy as np
+
+    from relaxtui.case.picture import require_regular_file
+    from relaxtui.errors import CaseError, UsageError
+    from relaxtui.output.fields import load_field
+
+    label = f"initial field {str(path)!r}"
+    try:
+        require_regular_file(path, label, "numpy file")
+    except CaseError as exc:
+        raise UsageError(str(exc)) from None
+    initial = load_field(path, case.shape)
+    interior = case.kind_codes()[case.codes] == 0  # model.INTERIOR
+    bad = interior & ~np.isfinite(initial)
+    if bad.any():
+        row, col = (int(v[0]) for v in np.nonzero(bad))
+        raise UsageError(f"{label}: not a finite number at interior cell row {row}, column {col} "
+                         f"({int(bad.sum())} such cells)")
+    warn_if_mismatched(path)
+    return initial
+
+
+def warn_if_mismatched(path) -> None:
+    """Print a warning when a report beside ``path`` lists it with another checksum (a broken set)."""
+    from relaxtui.output.report import check_against_reports
+
+    for message in check_against_reports(path):
+        print(f"relaxtui: warning: {message}", file=sys.stderr)
+
+
 def run(args) -> int:
     from relaxtui.case import load_case
-    from relaxtui.solver.driver import Run, check_outputs
+    from relaxtui.output.atomic import clean_stale_temps, pause_for_tests
+    from relaxtui.solver.driver import Run, resolve_options
 
     case = load_case(args.case)
     out, report_path, history_path = _default_outputs(args, case)
-    check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
-    initial = None
-    if args.initial is not None:
-        from relaxtui.output.fields import load_field
-
-        initial = load_field(args.initial, case.shape)
+    outputs = {"field": out, "report": report_path, "history": history_path, "picture": args.picture,
+               "VTK file": args.vtk, "bundle": args.bundle}
+    check_output_set(outputs, {"case file": args.case, "picture": case.mask_path, "initial field": args.initial})
+    _check_picture_options(args, case)
+    # every solver option is validated before anything is loaded or solved
+    resolve_options(case, args.method, args.omega, args.tolerance, args.max_sweeps, args.time_limit)
+    initial = _load_initial(args.initial, case) if args.initial is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
               time_limit=args.time_limit, initial=initial)
+    for path in outputs.values():
+        if path is not None:
+            clean_stale_temps(path)
     interrupted = threading.Event()
-    with _sigint_to(interrupted):
+    with _stop_signals_to(interrupted) as signals:
         display = _Display(run, quiet=args.quiet)
         display.start("preparing (assembly, omega, kernels)")
         run.prepare()
+        steps = 0
         while not run.done:
             if interrupted.is_set():
                 run.cancel()
             display.update(run.step(0.25))
+            steps += 1
+            if steps <= 2:
+                pause_for_tests("solving" if steps == 1 else "solving:2")
+        signals.writing = True  # from here on a signal never aborts: the set is finished first
+        pause_for_tests("writing")
         display.stop()
         result = run.result()
+        if signals.first is not None and result.report.get("status") == "cancelled":
+            result.report["message"] += f" (stopped by {signals.name})"
         written = _write_all(result, args, out, report_path, history_path)
     if not args.quiet:
         _summary(result, written)
@@ -83,34 +223,52 @@ def run(args) -> int:
 
 
 def _write_all(result, args, out, report_path, history_path) -> list[Path]:
-    from relaxtui.solver.driver import write_outputs
+    """Write the output set: every temporary file first, then the renames (report last)."""
+    from relaxtui.output.atomic import OutputSet, write_json, write_npy
+    from relaxtui.output.report import stamp_outputs
 
-    written = write_outputs(result, out=out, report=report_path, history=history_path)
-    if args.picture or args.vtk or args.bundle:
-        from relaxtui.output import fields, pictures
+    folder = Path(report_path or out or history_path or args.picture or args.vtk or args.bundle).parent
+    with OutputSet(lock_folder=folder) as batch:
+        if out is not None:
+            write_npy(out, result.field, "field")
+        if history_path is not None:
+            result.history.to_csv(history_path)
+        if args.picture or args.vtk or args.bundle:
+            from relaxtui.output import fields, pictures
 
-        if args.picture:
-            pictures.write_picture(args.picture, result.field, result.case, scale=args.scale, isolines=args.isolines)
-            written.append(Path(args.picture))
-        if args.vtk:
-            fields.write_vtk(args.vtk, result.field, result.case)
-            written.append(Path(args.vtk))
-        if args.bundle:
-            fields.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history, report=result.report)
-            written.append(Path(args.bundle))
-    return written
+            if args.picture:
+                pictures.write_picture(args.picture, result.field, result.case, scale=args.scale, isolines=args.isolines)
+            if args.vtk:
+                fields.write_vtk(args.vtk, result.field, result.case)
+            stamp_outputs(result.report, batch.pending, {"field": out, "history": history_path,
+                                                         "picture": args.picture, "vtk": args.vtk})
+            if args.bundle:
+                fields.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history,
+                                    report=result.report)
+        stamp_outputs(result.report, batch.pending, {"field": out, "history": history_path, "picture": args.picture,
+                                                     "vtk": args.vtk, "bundle": args.bundle})
+        if report_path is not None:
+            write_json(report_path, result.report, "report")
+        old_report = [report_path] if report_path is not None and os.path.lexists(report_path) else []
+        return batch.commit(first_remove=old_report)
 
 
 def _summary(result, written) -> None:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
+
+    from relaxtui.errors import printable
+
+    def safe(text) -> str:  # user strings: no control characters, no rich markup
+        return escape(printable(text))
 
     r = result.report
     con = Console(highlight=False)
     style = "green" if r["status"] == "converged" else "yellow"
-    unit = f" {r['unit']}" if r["unit"] else ""
-    con.print(f"[bold {style}]{r['status']}[/]: {r['message']}")
-    con.print(f"  {r['method']}, omega {r['omega']:.4f} ({r['omega_note']})")
+    unit = f" {safe(r['unit'])}" if r["unit"] else ""
+    con.print(f"[bold {style}]{r['status']}[/]: {safe(r['message'])}")
+    con.print(f"  {r['method']}, omega {r['omega']:.4f} ({safe(r['omega_note'])})")
     con.print(f"  {r['sweeps']} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
               f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:
@@ -118,17 +276,19 @@ def _summary(result, written) -> None:
             at = r[f"{key}_at"]
             con.print(f"  {key} {r[key]:.6g}{unit} at row {at['row']}, col {at['col']} "
                       f"(x {at['x']:.4g} m, y {at['y']:.4g} m)")
+    if r.get("mask_outside_case_folder"):
+        con.print(f"  picture read from outside the case's folder: {safe(r['mask'])}")
     if r["flows"]:
         t = Table(title="flows into the domain", title_justify="left", box=None, pad_edge=False)
         t.add_column("  region")
         t.add_column("flow", justify="right")
         for name, v in r["flows"].items():
-            t.add_row(f"  {name}", _g(v, 6))
+            t.add_row(f"  {safe(name)}", _g(v, 6))
         t.add_row("  sources", _g(r["source_total"], 6))
         t.add_row("  imbalance", _g(r["imbalance"], 3))
         con.print(t)
     for p in written:
-        con.print(f"wrote {p}")
+        con.print(f"wrote {safe(p)}")
     con.print(f"[dim]{r['caution']}[/]")
 
 

@@ -30,9 +30,182 @@ def check_target(path: str | os.PathLike, what: str = "output") -> Path:
         raise OutputError(f"cannot write {what} {str(target)!r}: folder {str(folder)!r} does not exist")
     if target.is_dir():
         raise OutputError(f"cannot write {what} {str(target)!r}: it is a folder")
+    if os.path.lexists(target):
+        import stat
+
+        try:
+            mode = os.stat(target).st_mode
+        except OSError:
+            mode = None  # a dangling symbolic link: the rename replaces the link itself
+        if mode is not None and not stat.S_ISREG(mode):
+            raise OutputError(f"cannot write {what} {str(target)!r}: it exists and is not a regular file "
+                              "(a FIFO, device or socket is never replaced)")
     if not os.access(folder, os.W_OK):
         raise OutputError(f"cannot write {what} {str(target)!r}: folder {str(folder)!r} is not writable")
     return target
+
+
+PAUSE_VARIABLE = "RELAXTUI_TEST_PAUSE_AT"
+
+
+def pause_for_tests(stage: str) -> None:
+    """Stop this process (SIGSTOP) at ``stage`` when the environment variable RELAXTUI_TEST_PAUSE_AT
+    lists it (comma-separated). A hook for the signal tests (tests/test_signals.py): they kill or
+    signal the stopped process at an exact moment of the writing, then continue it. Unset, it costs
+    one dictionary lookup."""
+    stages = os.environ.get(PAUSE_VARIABLE)
+    if stages and stage in stages.split(","):
+        import signal
+
+        os.kill(os.getpid(), signal.SIGSTOP)
+
+
+TEMP_TAG = "relaxtui-"  # temporary files are ".<name>.relaxtui-<pid>-<random>.part"
+
+
+def _temp_prefix(name: str) -> str:
+    return f".{name}.{TEMP_TAG}{os.getpid()}-"
+
+
+def clean_stale_temps(path: str | os.PathLike) -> list[Path]:
+    """Remove temporary files of our own naming for ``path`` left by a process that is gone.
+
+    Only ``.<name>.relaxtui-<pid>-*.part`` files whose ``pid`` is not a running
+    process are removed (a run killed while writing leaves them; a concurrent
+    run's live ones stay). Returns the paths removed.
+    """
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    removed = []
+    head = f".{target.name}.{TEMP_TAG}"
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    for entry in entries:
+        name = entry.name
+        if not (name.startswith(head) and name.endswith(".part")):
+            continue
+        pid_text = name[len(head):].split("-", 1)[0]
+        if not pid_text.isdigit() or _alive(int(pid_text)):
+            continue
+        with contextlib.suppress(OSError):
+            if entry.is_file(follow_symlinks=False):
+                os.unlink(entry.path)
+                removed.append(Path(entry.path))
+    return removed
+
+
+def _alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # someone else's process
+    except OSError:
+        return False
+    return True
+
+
+class OutputSet:
+    """Several outputs that appear together: every file is written to its temporary first,
+    and only when all are complete are they renamed, in the order they were written.
+
+    Use as ``with OutputSet(lock=folder) as batch:`` around the writers (every
+    :func:`atomic_write` inside the block joins the batch), then
+    ``batch.commit(first_remove=[...])``. An exception inside the block removes
+    every temporary file and leaves the targets untouched. ``commit`` first
+    removes the paths in ``first_remove`` (a previous report, so that no report
+    ever sits beside a field it does not describe), then renames; it holds an
+    exclusive advisory lock (flock) on the lock folder meanwhile, so two runs
+    writing the same paths commit one whole set after the other.
+    """
+
+    _current = None
+
+    def __init__(self, lock_folder: str | os.PathLike | None = None):
+        self.pending: list[tuple[str, Path]] = []
+        self.lock_folder = Path(lock_folder) if lock_folder is not None else None
+        self._outer = None
+        self.committed = False
+
+    def __enter__(self):
+        self._outer = OutputSet._current
+        OutputSet._current = self
+        return self
+
+    def __exit__(self, kind, exc, tb):
+        OutputSet._current = self._outer
+        if kind is not None or not self.committed:
+            self.discard()
+        return False
+
+    def discard(self) -> None:
+        for tmp, _ in self.pending:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+        self.pending = []
+
+    def commit(self, first_remove=()) -> list[Path]:
+        lock = self._lock()
+        try:
+            pause_for_tests("remove")
+            for p in first_remove:
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(p)
+            done = []
+            for i, (tmp, target) in enumerate(self.pending):
+                pause_for_tests(f"rename:{i}")
+                os.replace(tmp, target)
+                done.append(target)
+            pause_for_tests("renamed")
+            _sync_folders({t.parent for _, t in self.pending})
+            self.pending = []
+            self.committed = True
+            return done
+        finally:
+            if lock is not None:
+                lock.close()
+
+    def _lock(self):
+        if self.lock_folder is None:
+            return None
+        import fcntl
+
+        try:  # an advisory lock on the folder itself: nothing extra is written
+            fd = os.open(self.lock_folder if str(self.lock_folder) else ".", os.O_RDONLY)
+        except OSError:
+            return None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+        except OSError:
+            pass  # a file system without locks: the renames still happen
+        return _Fd(fd)
+
+
+class _Fd:
+    """An open descriptor closed by ``close()`` (closing it releases the flock)."""
+
+    def __init__(self, fd: int):
+        self.fd = fd
+
+    def close(self) -> None:
+        if self.fd is not None:
+            os.close(self.fd)
+            self.fd = None
+
+
+def _sync_folders(folders) -> None:
+    for folder in folders:
+        with contextlib.suppress(OSError):
+            fd = os.open(folder if str(folder) else ".", os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
 
 
 @contextlib.contextmanager
@@ -41,10 +214,11 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", what: str = "output"
 
     Use as ``with atomic_write(p, "w") as f: f.write(...)``. On an exception
     (including KeyboardInterrupt) the temporary file is removed and ``path`` is
-    left untouched.
+    left untouched. Inside an :class:`OutputSet` block the rename waits for the
+    set's commit.
     """
     target = check_target(path, what)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
+    fd, tmp = tempfile.mkstemp(prefix=_temp_prefix(target.name), suffix=".part", dir=target.parent)
     try:
         kwargs = {} if "b" in mode else {"encoding": "utf-8", "newline": ""}
         with os.fdopen(fd, mode, **kwargs) as handle:
@@ -52,11 +226,26 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", what: str = "output"
             handle.flush()
             os.fsync(handle.fileno())
         os.chmod(tmp, 0o644 & ~_umask())
-        os.replace(tmp, target)
+        batch = OutputSet._current
+        if batch is not None:
+            batch.pending.append((tmp, target))
+        else:
+            os.replace(tmp, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file's bytes (hex)."""
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 def _umask() -> int:
@@ -77,8 +266,23 @@ def write_text(path, text: str, what: str = "output") -> Path:
     return Path(path)
 
 
+def json_safe(obj):
+    """``obj`` with every non-finite float replaced by None (JSON has no NaN or infinity)."""
+    import math
+
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_safe(v) for v in obj]
+    if hasattr(obj, "item") and hasattr(obj, "dtype") and getattr(obj, "ndim", 1) == 0:
+        return json_safe(obj.item())  # a numpy scalar
+    return obj
+
+
 def write_json(path, obj, what: str = "report") -> Path:
-    return write_text(path, json.dumps(obj, indent=2, ensure_ascii=False, allow_nan=False) + "\n", what)
+    return write_text(path, json.dumps(json_safe(obj), indent=2, ensure_ascii=False, allow_nan=False) + "\n", what)
 
 
 def write_npy(path, array, what: str = "field") -> Path:

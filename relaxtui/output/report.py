@@ -8,7 +8,10 @@ reported as ``null`` so the JSON stays valid.
 
 from __future__ import annotations
 
+import json
 import math
+import os
+from pathlib import Path
 
 import numpy as np
 
@@ -29,7 +32,7 @@ def cell_position(case, row: int, col: int) -> dict:
     """Row/column and the cell centre in metres (origin bottom-left, y up)."""
     rows = case.shape[0]
     h = case.cell_size
-    return {"row": int(row), "col": int(col), "x": (col + 0.5) * h, "y": (rows - row - 0.5) * h}
+    return {"row": int(row), "col": int(col), "x": _f((col + 0.5) * h), "y": _f((rows - row - 0.5) * h)}
 
 
 def extremes(case, field: np.ndarray) -> dict:
@@ -88,7 +91,85 @@ def build_report(run, field: np.ndarray) -> dict:
     from relaxtui.output.flux import peak_flux
 
     report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
+    if case.mask_path is not None and case.path is not None:
+        from relaxtui.case.domain import mask_outside_folder
+
+        report["mask"] = os.path.realpath(case.mask_path)  # resolved: a shared picture elsewhere is visible
+        report["mask_outside_case_folder"] = mask_outside_folder(case) is not None
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION
     return report
+
+
+def stamp_outputs(report: dict, pending, paths: dict) -> dict:
+    """Give ``report`` a run id and, under ``outputs``, the path and SHA-256 of each file of its set.
+
+    ``pending`` holds (temporary file, target) pairs of an
+    :class:`relaxtui.output.atomic.OutputSet` (the checksums are of the
+    temporary files, which become the targets unchanged); ``paths`` maps each
+    output's role ("field", "history", ...) to its path or None.
+    """
+    import uuid
+
+    from relaxtui.output.atomic import file_sha256
+
+    report.setdefault("run_id", uuid.uuid4().hex)
+    by_target = {os.path.realpath(target): tmp for tmp, target in pending}
+    listed = {}
+    for role, path in paths.items():
+        if path is None:
+            continue
+        tmp = by_target.get(os.path.realpath(path))
+        if tmp is not None:
+            listed[role] = {"path": str(path), "sha256": file_sha256(tmp)}
+    report["outputs"] = listed
+    return report
+
+
+def check_against_reports(path, limit: int = 200) -> list[str]:
+    """Warnings for ``path`` from the reports beside it: a report that lists this file with another
+    SHA-256 (the set it belongs to was not written completely, or the file changed since)."""
+    from relaxtui.output.atomic import file_sha256
+
+    target = Path(path)
+    folder = target.parent if str(target.parent) else Path(".")
+    try:
+        real = os.path.realpath(target)
+        candidates = sorted(p for p in folder.iterdir() if p.suffix == ".json")[:limit]
+    except OSError:
+        return []
+    digest = None
+    found = []
+    for candidate in candidates:
+        try:
+            if not candidate.is_file() or candidate.stat().st_size > (4 << 20):
+                continue
+            doc = json.loads(candidate.read_text(encoding="utf-8"))
+        except (OSError, ValueError, UnicodeDecodeError):
+            continue
+        outputs = doc.get("outputs") if isinstance(doc, dict) else None
+        if not isinstance(outputs, dict):
+            continue
+        for role, entry in outputs.items():
+            if not isinstance(entry, dict) or not isinstance(entry.get("path"), str):
+                continue
+            listed = Path(entry["path"])
+            # the path as given when it was written (relative to that run's folder), or the file of
+            # that name beside the report
+            same = os.path.realpath(listed) == real or (
+                listed.name == target.name and os.path.realpath(candidate.parent) == os.path.dirname(real))
+            if not same:
+                continue
+            if digest is None:
+                digest = file_sha256(target)
+            if entry.get("sha256") != digest:
+                found.append(f"{_printable(str(candidate))} (run {_printable(str(doc.get('run_id')))}) describes a "
+                             f"different {role} than {_printable(str(target))}: that output set is incomplete or mixed")
+    return found
+
+
+def _printable(text: str) -> str:
+    from relaxtui.errors import printable
+
+    return printable(text)

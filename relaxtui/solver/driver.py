@@ -24,7 +24,7 @@ import numpy as np
 
 from relaxtui.case import model
 from relaxtui.errors import UsageError
-from relaxtui.solver import stopping
+from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.methods import get_method
 
 CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
@@ -217,6 +217,7 @@ class Run:
         # a stepper may ask for its own rate window and envelope (multigrid: see relaxtui.solver.multigrid)
         self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale(),
                                           **getattr(self._stepper, "rule_options", {}))
+        conditioning.attach(self.rule, self)  # residual certificate and float64's attainable accuracy
         self._choose_omega(self._omega_request)
         self._prepared = True
         self.prepare_seconds = time.perf_counter() - t0
@@ -427,6 +428,8 @@ class Run:
         if status == stopping.CONVERGED:
             return f"equilibrium reached: estimated error {err} <= {tol} after {n} sweeps"
         if status == stopping.STALLED:
+            if self.rule.reason:
+                return f"stalled after {n} sweeps: {self.rule.reason}"
             if self.rule.at_floor():
                 return (f"stalled after {n} sweeps: the updates are at float64's rounding floor while the "
                         f"estimated error {err} > {tol} (the tolerance is below what this grid resolves)")

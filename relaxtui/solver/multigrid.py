@@ -190,7 +190,8 @@ class Level:
         self.shape = (A.shape[1] - 2, A.shape[2] - 2)
         self.unknowns = int(np.count_nonzero(A[0] > 0.0))
         self.Dinv = np.zeros(A.shape[1:])
-        np.divide(1.0, A[0], out=self.Dinv, where=A[0] > 0.0)
+        with np.errstate(over="ignore"):  # a subnormal diagonal (conductivity 5e-324): inf, and the rule stalls
+            np.divide(1.0, A[0], out=self.Dinv, where=A[0] > 0.0)
         self.e = np.zeros(A.shape[1:])
         self.f = np.zeros(A.shape[1:])
         self.P = None

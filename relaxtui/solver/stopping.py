@@ -236,6 +236,14 @@ class StoppingRule:
         self._latest: Estimate | None = None
         self._chunk_errors = np.empty(0)
         self.stall_window = 0  # the caller's floor for the no-progress window (SOR's long transient)
+        # Certificates (set by relaxtui.solver.conditioning.attach; None in pure use):
+        # field_residual() -> max |residual| of the current field (field units);
+        # inverse_norm() -> (||(I - W)^-1||_inf, how it was found).
+        self.field_residual = None
+        self.inverse_norm = None
+        self.reason: str | None = None  # why the run stalled, when the rule knows better than "no progress"
+        self.floor: float | None = None  # the attainable accuracy once known (field units)
+        self.floor_cells = 1  # unknowns of the system (the rounding floor's random-sign estimate)
 
     # -- feeding ---------------------------------------------------------------
     def add(self, updates) -> None:
@@ -297,10 +305,12 @@ class StoppingRule:
     def decide(self, seconds: float = 0.0, cancelled: bool = False) -> Decision:
         """The decision after the sweeps fed so far (``seconds`` of solving)."""
         est = self.last_estimate = self.estimate()
+        self.reason = None
         recent = self._updates[max(self._segment, self._n - self.min_window) : self._n]
-        if not math.isfinite(est.error) and self._n - self._segment >= self.min_window and not np.any(recent):
+        frozen = self._n - self._segment >= self.min_window and not np.any(recent)
+        if not math.isfinite(est.error) and frozen:
             # the field no longer changes at all before the rate is estimable (a direct solve repeated):
-            # a fixed point of the iteration, exact to rounding; the bound left is the field's rounding floor
+            # a fixed point of the iteration if its residual says so (see _certify)
             est = self.last_estimate = Estimate(FLOOR_ULPS * _EPS * self.scale, est.factor, est.measured, True)
         if est.mature and est.factor is not None:
             self._settled_factor = est.factor
@@ -314,8 +324,58 @@ class StoppingRule:
         if est.factor is not None and 0.0 < est.factor < 1.0 and math.isfinite(est.error):
             eta = max(0.0, math.log(self.tolerance / est.error) / math.log(est.factor)) if est.error > self.tolerance else 0.0
         status = self._status(est, seconds, cancelled)
+        if status in (CONVERGED, STALLED) and self.inverse_norm is not None:
+            status, est = self._certify(status, est, frozen)
         self.last = Decision(status, est.error, est.factor, eta)
         return self.last
+
+    def _certify(self, status: str, est: Estimate, frozen: bool) -> tuple[str, Estimate]:
+        """Check a stop against the residual certificate and float64's attainable accuracy.
+
+        (relaxtui.solver.conditioning explains both.) A field the updates no
+        longer move, or that sits at the rounding floor, is converged only if
+        ``||(I - W)^-1|| * max |residual|`` is within the tolerance; a
+        converged bound never claims less than the floor ``kappa * eps * max |u|``,
+        and a floor above the tolerance makes the honest status ``stalled``.
+        """
+        inv, how = self.inverse_norm()
+        from relaxtui.solver.conditioning import rounding_floor
+
+        floor = self.floor = rounding_floor(inv, self.scale, self.floor_cells)
+        updates_silent = frozen or est.error == 0.0 or (status == STALLED and self.at_floor())
+        if updates_silent and self.field_residual is not None:
+            r = float(self.field_residual())
+            bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+            if bound <= self.tolerance:
+                return CONVERGED, Estimate(bound, est.factor, est.measured, True)
+            if floor > self.tolerance:
+                self.reason = self._floor_reason(inv, how, floor)
+            elif r <= FLOOR_ULPS * _EPS * self.scale:
+                kappa = f"{2.0 * inv:.3g}" if math.isfinite(inv) else "infinite"
+                self.reason = (f"the residual {r:.3g} is at float64's rounding floor, but with the system's condition "
+                               f"number about {kappa} (norm of the inverse {how}) that certifies only an error "
+                               f"below {bound:.3g} > {self.tolerance:.3g}")
+            elif frozen or est.error == 0.0:
+                self.reason = (f"the updates vanished (every change of the field rounds to nothing in float64: "
+                               f"omega or a conductivity is too small) while the largest residual is {r:.3g}, "
+                               f"so the error may be up to {bound:.3g}")
+            else:
+                self.reason = (f"the updates are at float64's rounding floor while the residual bound "
+                               f"{bound:.3g} > {self.tolerance:.3g} (the tolerance is below what this grid resolves)")
+            return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
+        if status == CONVERGED:
+            error = max(est.error, floor)
+            if floor > self.tolerance:
+                self.reason = self._floor_reason(inv, how, floor)
+                return STALLED, Estimate(error, est.factor, est.measured, est.mature)
+            return CONVERGED, Estimate(error, est.factor, est.measured, est.mature)
+        return status, est
+
+    def _floor_reason(self, inv: float, how: str, floor: float) -> str:
+        kappa = f"{2.0 * inv:.3g}" if math.isfinite(inv) else "infinite (singular to float64)"
+        return (f"float64 cannot certify the tolerance {self.tolerance:.3g} here: the system's condition number is "
+                f"about {kappa} (norm of the inverse {how}), so rounding alone may leave an error of about "
+                f"{floor:.3g} (near-singular: the field is held only weakly by its fixed or convection faces)")
 
     def _status(self, est: Estimate, seconds: float, cancelled: bool) -> str | None:
         n = self._n

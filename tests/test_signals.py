@@ -1,0 +1,221 @@
+"""Signals and kills in a real subprocess: a run is never lost, an output set is never mixed.
+
+The solve process stops itself (SIGSTOP) at an exact moment named in the
+environment variable RELAXTUI_TEST_PAUSE_AT (relaxtui.output.atomic.pause_for_tests):
+"solving" (after the first step), "solving:2" (after the second), "writing" (the solve is over, nothing written
+yet), "remove" (every temporary file complete, the previous report about to
+be removed), "rename:N" (before the N-th rename), "renamed" (all renamed). The
+test waits until the process is stopped (/proc state "T"), sends its signal or
+SIGKILL, and continues it. No timing is involved.
+
+What a reader may see afterwards (the rule of relaxtui.commands.solve): the
+report is renamed last and lists the SHA-256 of every file of its set, and the
+previous report is removed before the first rename, so a report present
+always describes exactly the files beside it ("complete and consistent"), or
+there is no report and no file of the new run carries one ("absent").
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+
+pytestmark = pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to see a stopped process")
+
+CASE = """\
+mask = "plate.png"
+[[region]]
+name = "plate"
+color = "#ffffff"
+kind = "interior"
+[[region]]
+name = "hot"
+color = "#ff0000"
+kind = "fixed"
+value = 100.0
+[[region]]
+name = "cold"
+color = "#0000ff"
+kind = "fixed"
+value = 0.0
+"""
+
+OUTPUTS = ("f.npy", "r.json", "h.csv")
+
+
+def write_case(folder: Path, n: int = 120) -> Path:
+    img = np.full((n, n, 3), 255, dtype=np.uint8)
+    img[:, 0] = (0, 0, 255)
+    img[:, -1] = (255, 0, 0)
+    Image.fromarray(img, "RGB").save(folder / "plate.png")
+    (folder / "case.toml").write_text(CASE, encoding="utf-8")
+    return folder / "case.toml"
+
+
+def command():
+    exe = Path(sys.executable).with_name("relaxtui")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "relaxtui"]
+
+
+def start(folder: Path, pause: str, *extra):
+    env = dict(os.environ, RELAXTUI_TEST_PAUSE_AT=pause)
+    # jacobi to 1e-13 on 120 x 120 runs for many seconds: every signal lands while it sweeps
+    args = ["solve", "case.toml", "--method", "jacobi", "--tolerance", "1e-13", "--out", "f.npy", "--report", "r.json",
+            "--history", "h.csv", "-q", *extra]
+    return subprocess.Popen(command() + args, cwd=folder, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+
+
+def wait_stopped(proc, timeout: float = 120.0) -> None:
+    """Wait until the process has stopped itself (state T in /proc), or fail."""
+    deadline = time.monotonic() + timeout
+    stat = Path(f"/proc/{proc.pid}/stat")
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            out, err = proc.communicate()
+            raise AssertionError(f"the process ended (code {proc.returncode}) before its pause: {err}")
+        try:
+            state = stat.read_text().rsplit(")", 1)[1].split()[0]
+        except (OSError, IndexError):
+            state = ""
+        if state in ("T", "t"):
+            return
+        time.sleep(0.02)
+    proc.kill()
+    raise AssertionError("the process never reached its pause")
+
+
+def cont(proc) -> None:
+    os.kill(proc.pid, signal.SIGCONT)
+
+
+def sha(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def check_set(folder: Path) -> str:
+    """'complete' or 'absent'; fails on a mixed or broken set, or on leftover temporary files of a finished run."""
+    report = folder / "r.json"
+    if not report.exists():
+        return "absent"
+    doc = json.loads(report.read_text())  # a report is always whole JSON
+    listed = doc["outputs"]
+    assert set(listed) == {"field", "history"}, listed
+    for entry in listed.values():
+        p = folder / entry["path"]
+        assert p.exists(), f"the report lists {p.name}, which is missing"
+        assert sha(p) == entry["sha256"], f"{p.name} is not the file the report describes"
+    return "complete"
+
+
+# each case starts a solver process (about 10-20 s on the loaded 2-core machine): one of each
+# kind runs in the quick suite, the rest under -m slow
+def _quick(values, keep):
+    return [v if v == keep else pytest.param(v, marks=pytest.mark.slow) for v in values]
+
+
+@pytest.mark.parametrize("sig", _quick([signal.SIGINT, signal.SIGTERM, signal.SIGHUP], signal.SIGTERM))
+def test_stop_signals_write_a_cancelled_set_and_exit_130(tmp_path, sig):
+    write_case(tmp_path)
+    proc = start(tmp_path, "solving")
+    wait_stopped(proc)
+    os.kill(proc.pid, sig)
+    cont(proc)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err  # the contract's "interrupted", for all three (solve.py docstring)
+    assert "Traceback" not in err
+    assert check_set(tmp_path) == "complete"
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["status"] == "cancelled"
+    assert signal.Signals(sig).name in report["message"]
+    assert np.load(tmp_path / "f.npy").shape == (120, 120)
+    assert (tmp_path / "h.csv").read_text().startswith("sweep,seconds,residual,estimated_error")
+    assert not list(tmp_path.glob(".*.part"))
+
+
+@pytest.mark.parametrize("moment", _quick(["writing", "remove", "rename:0", "rename:1", "rename:2"], "rename:1"))
+def test_second_ctrl_c_during_the_writing_does_not_abort_it(tmp_path, moment):
+    write_case(tmp_path)
+    proc = start(tmp_path, f"solving,{moment}")
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGINT)  # the first: end the run
+    cont(proc)
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGINT)  # the second, while writing
+    os.kill(proc.pid, signal.SIGTERM)  # and a third for good measure
+    cont(proc)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert check_set(tmp_path) == "complete"
+    assert json.loads((tmp_path / "r.json").read_text())["status"] == "cancelled"
+
+
+@pytest.mark.slow
+def test_second_ctrl_c_while_solving_stops_without_writing(tmp_path):
+    write_case(tmp_path)
+    proc = start(tmp_path, "solving,solving:2")
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGINT)  # (two pending SIGINTs would merge into one: one per pause)
+    cont(proc)
+    wait_stopped(proc)  # the next step has ended the run; nothing is written yet
+    os.kill(proc.pid, signal.SIGINT)
+    cont(proc)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130
+    assert "Traceback" not in err
+    assert check_set(tmp_path) == "absent"
+    assert not [p for p in tmp_path.iterdir() if p.name in OUTPUTS]
+
+
+KILL_MOMENTS = ["writing", "remove", "rename:0", "rename:1", "rename:2", "renamed"]
+
+
+@pytest.mark.parametrize("moment", _quick(KILL_MOMENTS, "rename:1"))
+@pytest.mark.parametrize("previous", [False, True], ids=["fresh", "over-a-previous-set"])
+def test_sigkill_while_writing_leaves_a_consistent_set_or_none(tmp_path, moment, previous):
+    write_case(tmp_path, n=60)
+    if previous:  # a complete set of an earlier run (a different tolerance, so different files)
+        first = start(tmp_path, "", "--max-sweeps", "50")
+        first.communicate(timeout=120)
+        assert check_set(tmp_path) == "complete"
+        old = json.loads((tmp_path / "r.json").read_text())["run_id"]
+    proc = start(tmp_path, f"solving,{moment}")
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGINT)
+    cont(proc)
+    wait_stopped(proc)
+    proc.kill()
+    proc.communicate(timeout=60)
+    state = check_set(tmp_path)
+    if moment == "renamed":
+        assert state == "complete"
+        assert json.loads((tmp_path / "r.json").read_text())["status"] == "cancelled"
+    elif moment in ("writing", "remove") and previous:
+        assert state == "complete" and json.loads((tmp_path / "r.json").read_text())["run_id"] == old
+    else:
+        assert state == "absent"
+    # the killed run's temporary files are cleaned by the next run to these paths
+    if list(tmp_path.glob(".*.relaxtui-*.part")):
+        again = start(tmp_path, "", "--max-sweeps", "20")
+        again.communicate(timeout=120)
+        assert check_set(tmp_path) == "complete"
+        assert not list(tmp_path.glob(".*.part"))
+
+
+def test_concurrent_runs_to_the_same_paths_never_mix(tmp_path):
+    write_case(tmp_path, n=40)
+    runs = [start(tmp_path, "", "--max-sweeps", str(n)) for n in (200, 300, 400, 500)]
+    for proc in runs:
+        proc.communicate(timeout=180)
+    assert check_set(tmp_path) == "complete"
