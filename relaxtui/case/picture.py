@@ -153,6 +153,8 @@ def _open(path: Path, label: str):
     """Image.open with the bomb guard's warning and error turned into CaseError."""
     from PIL import Image, UnidentifiedImageError
 
+    require_regular_file(path, label, "PNG picture")  # a FIFO would block the reader forever
+
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", Image.DecompressionBombWarning)

@@ -113,7 +113,7 @@ def describe(case: Case, console=None) -> None:
     console.print(Text(printable(case.title or case.name), style="bold"))
     facts = Table.grid(padding=(0, 2))
     facts.add_column(style="dim")
-    facts.add_column()
+    facts.add_column(overflow="fold")  # long paths wrap, never cut
     facts.add_row("case", Text(printable(case.path)) if case.path else "(built from an array)")
     outside = mask_outside_folder(case)
     facts.add_row("picture", Text(printable(case.mask_path) + (f"  (outside the case's folder: {printable(outside)})"

@@ -10,6 +10,9 @@ from relaxtui.errors import CaseError
 def run(args) -> int:
     """``relaxtui open CASE.toml [--method ...] [--omega ...] [--tolerance ...] [--run]``."""
     path = Path(args.case)
+    from relaxtui.case.picture import require_regular_file
+
+    require_regular_file(path, str(args.case), "case file")  # a folder or FIFO: said so, never a hang
     if not path.is_file():
         raise CaseError(f"{args.case}: case file not found")
     from relaxtui.tui.app import RelaxApp

@@ -15,7 +15,16 @@ def run(args) -> int:
     from relaxtui.case import load_case
 
     case = load_case(args.case)
+    from relaxtui.case.picture import require_regular_file
+    from relaxtui.commands.solve import warn_if_mismatched
+    from relaxtui.errors import CaseError, UsageError
+
+    try:
+        require_regular_file(args.field, f"field {str(args.field)!r}", "numpy file")
+    except CaseError as exc:
+        raise UsageError(str(exc)) from None
     field = load_field(args.field, case.shape, what="field")
+    warn_if_mismatched(args.field)  # a report beside it that describes another field: a broken output set
     write_picture(target, field, case, scale=getattr(args, "scale", 1) or 1, isolines=getattr(args, "isolines", None))
     print(os.fspath(target))
     return 0
