@@ -35,22 +35,91 @@ def cell_position(case, row: int, col: int) -> dict:
     return {"row": int(row), "col": int(col), "x": _f((col + 0.5) * h), "y": _f((rows - row - 0.5) * h)}
 
 
+STRIP_CELLS = 1 << 16  # the report's per-cell work runs in row strips of about this many cells
+
+
+def _strips(rows: int, cols: int):
+    step = max(1, STRIP_CELLS // max(cols, 1))
+    for a in range(0, rows, step):
+        yield a, min(rows, a + step)
+
+
 def extremes(case, field: np.ndarray) -> dict:
-    """min and max over interior and fixed cells with their positions."""
-    # the exported field is NaN outside the domain already; only a diverged run's
-    # infinities need masking (a full copy is 8 B/cell at the solve's peak)
-    masked = np.where(np.isinf(field), np.nan, field) if np.isinf(field).any() else field
-    if np.isnan(masked).all():
+    """min and max over interior and fixed cells with their positions (the first in row-major order on a tie).
+
+    The exported field is NaN outside the domain already; a diverged run's
+    infinities are skipped too. Row strips keep the temporaries small (a
+    whole-field copy would be 8 B/cell at the solve's memory peak).
+    """
+    rows, cols = field.shape
+    best = {"min": None, "max": None}
+    at = {"min": None, "max": None}
+    for a, b in _strips(rows, cols):
+        part = field[a:b]
+        finite = np.isfinite(part)
+        if not finite.any():
+            continue
+        for key, pick, fill in (("min", np.argmin, np.inf), ("max", np.argmax, -np.inf)):
+            i = int(pick(np.where(finite, part, fill)))
+            v = float(part.flat[i])
+            if best[key] is None or (v < best[key] if key == "min" else v > best[key]):
+                best[key] = v
+                at[key] = (a + i // cols, i % cols)
+    if best["min"] is None:
         return {"min": None, "max": None, "min_at": None, "max_at": None}
-    i_min = int(np.nanargmin(masked))
-    i_max = int(np.nanargmax(masked))
-    cols = field.shape[1]
     return {
-        "min": float(masked.flat[i_min]),
-        "max": float(masked.flat[i_max]),
-        "min_at": cell_position(case, i_min // cols, i_min % cols),
-        "max_at": cell_position(case, i_max // cols, i_max % cols),
+        "min": best["min"],
+        "max": best["max"],
+        "min_at": cell_position(case, *at["min"]),
+        "max_at": cell_position(case, *at["max"]),
     }
+
+
+def peak_flux_in_strips(field: np.ndarray, case) -> dict:
+    """relaxtui.output.flux.peak_flux, computed over row strips with one row of overlap on each side.
+
+    Differences and a fixed cell's inherited conductivity reach one cell, so
+    the strip's inner rows get exactly the numbers of the whole-field
+    computation; the first largest cell in row-major order wins, as there.
+    """
+    from dataclasses import replace
+
+    rows, cols = field.shape
+    best = None
+    for a, b in _strips(rows, cols):
+        lo, hi = max(0, a - 1), min(rows, b + 1)
+        sub = replace(case, codes=case.codes[lo:hi])
+        part = np.array(field[lo:hi], dtype=np.float64)
+        # rows of the overlap take no part in the search (their own strip has them)
+        keep = np.zeros(part.shape[0], dtype=bool)
+        keep[a - lo : b - lo] = True
+        found = _peak_inner(part, sub, keep)
+        if found is None:
+            continue
+        value, qx, qy, r, c = found
+        if best is None or value > best[0]:
+            best = (value, qx, qy, lo + r, c)
+    if best is None:
+        return {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
+    value, qx, qy, row, col = best
+    pos = cell_position(case, row, col)
+    return {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": pos["x"], "y": pos["y"]}
+
+
+def _peak_inner(part, sub, keep):
+    """(|q|, qx, qy, row, col) of the first largest finite |q| among the rows ``keep`` of a strip, or None."""
+    from relaxtui.output.flux import flux
+
+    qx, qy = flux(part, sub)
+    mag = np.hypot(qx, qy)
+    mag[~keep] = np.nan
+    finite = np.isfinite(mag)
+    if not finite.any():
+        return None
+    mag[~finite] = -1.0
+    flat = int(np.argmax(mag))
+    r, c = divmod(flat, part.shape[1])
+    return float(mag[r, c]), float(qx[r, c]), float(qy[r, c]), r, c
 
 
 def build_report(run, field: np.ndarray) -> dict:
@@ -88,9 +157,7 @@ def build_report(run, field: np.ndarray) -> dict:
         "imbalance": _f(imbalance),
     }
     report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in extremes(case, field).items()})
-    from relaxtui.output.flux import peak_flux
-
-    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
+    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux_in_strips(field, case).items()}
     if case.mask_path is not None and case.path is not None:
         from relaxtui.case.domain import mask_outside_folder
 

@@ -95,6 +95,13 @@ def inverse_norm(run) -> tuple[float, str]:
         if mu is None:
             from relaxtui.solver.omega import jacobi_radius
 
+            # Asked only when the run is about to stop (converged or stalled): a stepper's own buffers
+            # (the multigrid hierarchy) are not needed any more, and the three Lanczos vectors then
+            # do not add to them at the memory peak.
+            release = getattr(getattr(run, "_stepper", None), "release", None)
+            if release is not None:
+                release()
+
             mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
             how = f"from a Lanczos estimate of the Jacobi radius ({LANCZOS_STEPS} steps at most)"
         gap = 1.0 - float(mu)

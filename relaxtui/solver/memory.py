@@ -4,23 +4,35 @@ The loader calls :func:`estimate_solve_bytes` with the picture's size (read
 from the PNG header, before any pixel is decoded) and refuses a case whose
 estimate exceeds :func:`available_bytes`.
 
-The byte model, per cell of the picture (rows x cols), plus a fixed part:
+The byte model, per cell of the picture (rows x cols), plus a fixed part. A
+solve passes through phases, and the estimate is the largest of them (not
+the sum of every array ever allocated): what is resident all along, plus the
+largest transient of any one phase.
 
 ======================  ==============  =========================================
 array                   bytes per cell  note
 ======================  ==============  =========================================
-working field           8               float64, padded by one cell all round
-class codes             1 or 2          uint8 up to 256 classes, else uint16
-second buffer           8               Jacobi only (old and new iterate), padded
-multigrid hierarchy     22              multigrid only: correction and residual
-                                        on the coarse levels, 2 x 8 x 4/3
-output copy             8               the exported float64 field (NaN outside)
-decoded picture         4               transient, while the PNG is decoded
-fixed                   200 MiB         interpreter, numba, compiled code, UI
+resident
+  working field         8               float64, padded by one cell all round
+  class codes           1 or 2          uint8 up to 256 classes, else uint16
+  region codes          1               the case's own uint8 picture codes
+phases (the largest counts)
+  Jacobi radius         24              3 Lanczos vectors (padded), every method
+                                        that uses the radius, while preparing
+  second buffer +       8 + 8           Jacobi's old/new iterate, and the exported
+  output copy                           field built for the report
+  multigrid set-up      62              multigrid only: the hierarchy's planes and
+                                        set-up temporaries, CG vectors
+  decoded picture       6               while the PNG is decoded
+fixed                   200 MiB         interpreter, numba, compiled code, UI,
+                                        the decoder's and report's fixed buffers
 ======================  ==============  =========================================
 
-The constants are named below so the operator's owner can refine them to the
-arrays it really allocates.
+Measured peaks (tracemalloc, which sees numpy's allocations) over a whole
+``relaxtui solve`` of a 1024 x 1024 picture, beyond the warmed-up
+interpreter: red-black SOR, SOR, Gauss-Seidel and Jacobi 34.3 B/cell (the
+Lanczos vectors), multigrid 71.6 B/cell (its set-up); tests/test_memory.py
+keeps the estimate an upper bound within 20 % of them.
 """
 
 from __future__ import annotations
@@ -31,15 +43,18 @@ FIELD_BYTES_PER_CELL = 8
 CLASS_CODE_BYTES_SMALL = 1  # up to CLASS_CODE_SMALL_LIMIT classes
 CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
+REGION_CODE_BYTES_PER_CELL = 1
+RADIUS_BYTES_PER_CELL = 24  # Lanczos vectors of the Jacobi-radius estimate (padded cells)
 JACOBI_BUFFER_BYTES_PER_CELL = 8
-MULTIGRID_BYTES_PER_CELL = 44  # measured on the 4096² demo: coarse levels and CG vectors beyond red-black SOR's arrays
+MULTIGRID_BYTES_PER_CELL = 62  # measured set-up peak of the hierarchy beyond the resident arrays (1024² and 4096²)
 OUTPUT_BYTES_PER_CELL = 8
-PICTURE_BYTES_PER_CELL = 4
+PICTURE_BYTES_PER_CELL = 6
 FIXED_BYTES = 200 * 1024 * 1024
 
 # Methods that keep a second copy of the field.
 TWO_BUFFER_METHODS = ("jacobi",)
 HIERARCHY_METHODS = ("multigrid",)
+RADIUS_METHODS = ("jacobi", "gauss-seidel", "sor", "red-black-sor", None)  # None: the default method
 
 
 def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1) -> int:
@@ -65,16 +80,15 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     cells = rows * cols
     padded = (rows + 2) * (cols + 2)
     code_bytes = CLASS_CODE_BYTES_SMALL if int(materials) <= CLASS_CODE_SMALL_LIMIT else CLASS_CODE_BYTES_LARGE
-    total = FIXED_BYTES
-    total += FIELD_BYTES_PER_CELL * padded
-    total += code_bytes * padded
-    if method in TWO_BUFFER_METHODS:
-        total += JACOBI_BUFFER_BYTES_PER_CELL * padded
+    resident = FIELD_BYTES_PER_CELL * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
+    phases = [PICTURE_BYTES_PER_CELL * cells + REGION_CODE_BYTES_PER_CELL * cells]
+    second = JACOBI_BUFFER_BYTES_PER_CELL * padded if method in TWO_BUFFER_METHODS else 0
+    phases.append(resident + second + OUTPUT_BYTES_PER_CELL * cells)
+    if method in RADIUS_METHODS:
+        phases.append(resident + RADIUS_BYTES_PER_CELL * padded)
     if method in HIERARCHY_METHODS:
-        total += MULTIGRID_BYTES_PER_CELL * cells
-    total += OUTPUT_BYTES_PER_CELL * cells
-    total += PICTURE_BYTES_PER_CELL * cells
-    return int(total)
+        phases.append(resident + MULTIGRID_BYTES_PER_CELL * cells)
+    return int(FIXED_BYTES + max(phases))
 
 
 def _meminfo_available() -> int | None:
