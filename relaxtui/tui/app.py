@@ -361,7 +361,7 @@ class RelaxApp(App):
     # -- building ----------------------------------------------------------------------
     def compose(self) -> ComposeResult:
         from relaxtui.solver.methods import METHODS
-        from relaxtui.solver.methods_names import METHOD_NAMES
+        from relaxtui.solver.methods import METHOD_NAMES
 
         methods = [m for m in METHOD_NAMES if m in METHODS]
         omega = self.cli["omega"]
