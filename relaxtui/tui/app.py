@@ -100,7 +100,7 @@ class RelaxApp(Controls, Refresher, App):
     # -- building ----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
         from relaxtui.solver.methods import METHODS
-        from relaxtui.solver.methods_names import METHOD_NAMES
+        from relaxtui.solver.methods import METHOD_NAMES
 
         omega = self.cli["omega"]
         yield Banner(id="banner")
