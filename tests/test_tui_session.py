@@ -120,7 +120,7 @@ def test_worker_runs_a_plate_to_convergence_and_the_session_follows(tmp_path):
     sweeps = np.concatenate([c.sweep for c in rec.chunks])
     np.testing.assert_array_equal(sweeps, rec.result.history.sweep)
     # red-black SOR's theoretical factor at its ω for the measured radius (Young 1971)
-    from relaxtui.solver.omega import sor_factor
+    from relaxtui.solver.young import sor_factor
 
     assert rec.mu is not None and rec.theory == pytest.approx(sor_factor(rec.mu, run.omega))
 

@@ -105,7 +105,7 @@ def jacobi_warning(omega, mu: float | None) -> str:
     """A warning for a Jacobi weight above 1 (empty when there is none).
 
     Weighted Jacobi's factor on a 2-cyclic operator is max |1 - w (1 ± μ)|
-    (Young 1971; :func:`relaxtui.solver.omega.jacobi_factor`): above 1 once
+    (Young 1971; :func:`relaxtui.solver.young.jacobi_factor`): above 1 once
     w > 2 / (1 + μ), which is barely above 1 on a fine grid (μ near 1).
     """
     if omega == "auto" or omega is None or float(omega) <= 1.0:
