@@ -49,10 +49,10 @@ class RelaxApp(Controls, Refresher, App):
     BINDINGS = [
         Binding("s", "start", "Start"),
         Binding("c", "continue_run", "Continue"),
-        Binding("space", "pause", "Pause/Go", key_display="space"),
+        Binding("space", "pause", "Pause", key_display="space"),
         Binding("x", "stop", "Stop"),
         Binding("v", "cycle_view", "View"),
-        Binding("w", "panel('omega')", "ω study"),
+        Binding("w", "panel('omega')", "ω"),
         Binding("e", "export", "Export"),
         Binding("question_mark,f1", "help", "Help", key_display="?"),
         Binding("q", "quit", "Quit"),
@@ -121,7 +121,7 @@ class RelaxApp(Controls, Refresher, App):
                     id="params",
                 )
         yield StatusStrip(id="status")
-        yield Footer()
+        yield Footer(compact=True)
 
     def on_mount(self) -> None:
         self.main = self.screen  # widgets are looked up on the main screen, also under a dialog

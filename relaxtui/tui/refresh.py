@@ -48,7 +48,7 @@ class Refresher:
             self.main.query_one(FieldView).show_frame(ev.frame, rec.status)
 
     def on_progressed(self, ev) -> None:
-        rec = self.session.progressed(ev.run_id, ev.progress, ev.tail, ev.frame)
+        rec = self.session.progressed(ev.run_id, ev.progress, ev.tail, ev.frame, ev.mu, ev.theory)
         if rec is None:
             return
         if ev.frame is not None and rec.id == self.selected:

@@ -339,11 +339,13 @@ class Session:
             rec.status = "paused" if self.control.paused else "running"
         return rec
 
-    def progressed(self, run_id: int, progress, chunk: HistoryTail, frame=None) -> RunRecord | None:
+    def progressed(self, run_id: int, progress, chunk: HistoryTail, frame=None, mu=None, theory=None) -> RunRecord | None:
         rec = self.record(run_id)
         if rec is None:
             return None
         rec.add(progress, chunk)
+        if mu is not None:
+            rec.mu, rec.theory = mu, theory
         if frame is not None:
             self.keep_frame(rec, frame)
         if rec is self.active and rec.live:

@@ -54,6 +54,8 @@ class Progressed(RunEvent):
     progress: object
     tail: HistoryTail
     frame: Frame | None  # a new snapshot of the field, or None
+    mu: float | None = None  # the radius estimate now (SOR refines it from the observed factor)
+    theory: float | None = None  # the theoretical factor at the current ω and radius
 
 
 @dataclass(frozen=True, eq=False)
@@ -187,7 +189,7 @@ def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False)
         if run.done or one or now - last_frame >= FRAME_INTERVAL or control.view()[1] != serial_done:
             frame = snapshot()
             last_frame = now
-        post(Progressed(run_id, progress, chunk, frame))
+        post(Progressed(run_id, progress, chunk, frame, getattr(run, "mu", None), theory_factor(run)))
     if control.quitting or cancelled():
         return
     result = run.result()
