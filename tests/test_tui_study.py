@@ -358,7 +358,8 @@ def test_update_view_while_running_is_the_change_per_sweep(tmp_path):
 def test_omega_panel_scan_from_the_ui_and_young_curve(tmp_path):
     async def body(pilot, app):
         await pilot.press("w")
-        panel = app.query_one(OmegaPanel)
+        assert not isinstance(app.focused, Input)  # showing the panel takes no keys from the footer
+        await pilot.press("r")
         assert app.focused is app.query_one("#omega-scan", Input)
         await pilot.press(*"1.5:1.7:0.1", "enter")
         await wait_for(pilot, lambda: len(app.records) == 3 and all(r.result is not None for r in app.records)
@@ -380,7 +381,7 @@ def test_omega_panel_scan_from_the_ui_and_young_curve(tmp_path):
 def test_a_scan_is_cancelled_with_x(tmp_path):
     # SOR at ω 1 (Gauss-Seidel) on a 198 x 198 interior to 1e-6 takes tens of thousands of sweeps
     async def body(pilot, app):
-        await pilot.press("w", *"1.0:1.9:0.05", "enter")
+        await pilot.press("r", *"1.0:1.9:0.05", "enter")
         await wait_for(pilot, lambda: app.active is not None and app.active.status == "running", "the first scan run")
         started = len(app.records)
         await pilot.press("x")
@@ -398,7 +399,7 @@ def test_sweep_csv_is_loaded_into_the_study(tmp_path):
                         "sor,1.8,1.8,120,0.1,5,converged,0.8,\nsor,1.9,1.9,90,0.1,5,converged,0.9,*\n", encoding="utf-8")
 
     async def body(pilot, app):
-        await pilot.press("w", "tab")
+        await pilot.press("l")
         assert app.focused is app.query_one("#omega-csv", Input)
         await pilot.press(*str(csv_path), "enter")
         await pilot.pause(0.1)

@@ -61,6 +61,7 @@ class RelaxApp(Controls, Refresher, App):
         ("3", "panel('runs')", "Runs"), ("4", "panel('omega')", "ω study"), ("h", "toggle_held", "Held values"),
         ("a", "toggle_span", "All runs"), ("m", "focus_param('method')", "Method"),
         ("o", "focus_param('omega')", "Omega"), ("t", "focus_param('tolerance')", "Tolerance"),
+        ("r", "focus_study('scan')", "ω scan range"), ("l", "focus_study('csv')", "Load a sweep CSV"),
     )
 
     def __init__(self, case_path, *, method=None, omega=None, tolerance=None, max_sweeps=None, run=False) -> None:
@@ -271,7 +272,7 @@ class RelaxApp(Controls, Refresher, App):
             self.main.query_one(FieldView).focus()
         elif name == "omega":
             self.refresh_study()
-            self.main.query_one(OmegaPanel).focus_scan()
+            self.set_focus(None)
         else:
             self.set_focus(None)
         if name == "history":
@@ -279,10 +280,15 @@ class RelaxApp(Controls, Refresher, App):
             self.call_after_refresh(self.refresh_plot)
 
     def action_focus_panel(self) -> None:
-        self.action_panel(self.panel if self.panel != "omega" else "field")
+        self.action_panel(self.panel)
 
     def action_focus_param(self, which: str) -> None:
         self.main.query_one(ParamsPanel).focus_field(which)
+
+    def action_focus_study(self, which: str) -> None:
+        if self.panel != "omega":
+            self.action_panel("omega")
+        self.main.query_one(OmegaPanel).focus_field(which)
 
     # -- export, help, quitting ---------------------------------------------------------------
     def action_export(self) -> None:
