@@ -101,7 +101,7 @@ class RelaxApp(Controls, Refresher, App):
     # -- building ----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
         from relaxtui.solver.methods import METHODS
-        from relaxtui.solver.methods_names import METHOD_NAMES
+        from relaxtui.solver.methods import METHOD_NAMES
 
         omega = self.cli["omega"]
         yield Banner(id="banner")
@@ -232,7 +232,7 @@ class RelaxApp(Controls, Refresher, App):
             options = params.read()
             if omega is not None:
                 options["omega"] = omega
-            run = Run(self.case, operator=self.operator, **options, **kwargs)
+            run = Run(self.case, operator=self.operator, radius_cache=Path.cwd(), **options, **kwargs)
         except RelaxError as exc:
             self._refuse(str(exc))
             return None

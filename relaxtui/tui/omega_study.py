@@ -4,7 +4,7 @@ Points come from the session's finished runs of a method with a relaxation
 factor (sor, red-black-sor) and from a ``relaxtui sweep`` CSV. Overlaid:
 
 * Young's prediction for the measured Jacobi radius μ: the SOR factor
-  ρ(ω) (:func:`relaxtui.solver.omega.sor_factor`; Young 1971) gives
+  ρ(ω) (:func:`relaxtui.solver.young.sor_factor`; Young 1971) gives
   N(ω) = K / -ln ρ(ω) sweeps, where K = ln(initial error / tolerance) is not
   known beforehand; it is taken as the median of N_i · -ln ρ(ω_i) over the
   converged runs shown (so the curve is fitted in height only, its shape is
@@ -86,7 +86,7 @@ def load_sweep_csv(path, method: str | None = None) -> list[Point]:
 def young_curve(mu: float, points: list[Point], omegas: np.ndarray) -> np.ndarray | None:
     """Predicted sweeps to tolerance at ``omegas`` (NaN where ρ >= 1), fitted in height to the
     converged ``points``; None without a converged point."""
-    from relaxtui.solver.omega import sor_factor
+    from relaxtui.solver.young import sor_factor
 
     ks = []
     for p in points:
@@ -203,7 +203,7 @@ class OmegaPanel(Vertical):
 
     def update_study(self, records, method: str, mu: float | None, scanning: str = "") -> None:
         """Redraw from the session's runs (``method``: the study's method; ``mu``: the measured radius)."""
-        from relaxtui.solver.omega import optimal_omega
+        from relaxtui.solver.young import optimal_omega
 
         self.method = method if method in STUDY_METHODS else self.method
         if mu is not None:
