@@ -5,7 +5,7 @@ to) over the whole command-line path of ``relaxtui solve`` on a mid-size picture
 preparing (assembly, the Jacobi radius, multigrid's set-up), solving, the report, and the writing
 of field, report and history. The interpreter, numba and the compiled kernels are the estimate's
 fixed part (memory.FIXED_BYTES) and are warmed up before the measurement starts, so only what the
-case itself costs is compared (the per-cell model). A fixed allowance of 8 MiB covers the
+case itself costs is compared (the per-cell model). A fixed allowance of 4 MiB covers the
 decoder's and the report's strip buffers, which do not grow with the picture.
 """
 
@@ -42,7 +42,7 @@ color = "#000000"
 kind = "outside"
 """
 
-ALLOWANCE = 8 * 1024 * 1024
+ALLOWANCE = 4 * 1024 * 1024
 
 
 def write(folder, n):

@@ -93,7 +93,7 @@ def inverse_norm(run) -> tuple[float, str]:
         mu = getattr(run, "mu", None)
         how = "from the Jacobi radius"
         if mu is None:
-            from relaxtui.solver.omega import jacobi_radius
+            from relaxtui.solver.radius import jacobi_radius
 
             # Asked only when the run is about to stop (converged or stalled): a stepper's own buffers
             # (the multigrid hierarchy) are not needed any more, and the three Lanczos vectors then

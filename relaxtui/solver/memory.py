@@ -16,23 +16,32 @@ resident
   working field         8               float64, padded by one cell all round
   class codes           1 or 2          uint8 up to 256 classes, else uint16
   region codes          1               the case's own uint8 picture codes
+  Jacobi radius         24              3 Lanczos vectors (padded), methods that use
+                                        the radius; they live until the estimate is
+                                        final (beside the sweeps on large grids, kept
+                                        paused by a run that stops first)
 phases (the largest counts)
-  Jacobi radius         24              3 Lanczos vectors (padded), every method
-                                        that uses the radius, while preparing
-  second buffer +       8 + 8           Jacobi's old/new iterate, and the exported
-  output copy                           field built for the report
-  multigrid set-up      62              multigrid only: the hierarchy's planes and
-                                        set-up temporaries, CG vectors
+  sweep buffers         8 each          ``Method.buffers`` of the registry (Jacobi:
+                                        old and new iterate), padded; released
+                                        when the run ends
+  output copy           8               the exported field built for the report
+  method's own          ``Method.bytes_per_cell``: the set-up peak of what
+                                        the method builds (multigrid 62: hierarchy
+                                        planes, set-up temporaries, CG vectors)
   decoded picture       6               while the PNG is decoded
 fixed                   200 MiB         interpreter, numba, compiled code, UI,
                                         the decoder's and report's fixed buffers
 ======================  ==============  =========================================
 
+The per-method numbers live in the method registry (``relaxtui.solver.methods``),
+the rest are named below.
+
 Measured peaks (tracemalloc, which sees numpy's allocations) over a whole
 ``relaxtui solve`` of a 1024 x 1024 picture, beyond the warmed-up
-interpreter: red-black SOR, SOR, Gauss-Seidel and Jacobi 34.3 B/cell (the
-Lanczos vectors), multigrid 71.6 B/cell (its set-up); tests/test_memory.py
-keeps the estimate an upper bound within 20 % of them.
+interpreter: red-black SOR and Jacobi stopped by a sweep limit (the Lanczos
+vectors still held) 45.2 B/cell, multigrid 71.6 B/cell (its set-up), of which
+about 3 MiB is the report's strip buffers (the fixed part covers those);
+tests/test_memory.py keeps the estimate an upper bound within 20 % of them.
 """
 
 from __future__ import annotations
@@ -45,16 +54,10 @@ CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
 REGION_CODE_BYTES_PER_CELL = 1
 RADIUS_BYTES_PER_CELL = 24  # Lanczos vectors of the Jacobi-radius estimate (padded cells)
-JACOBI_BUFFER_BYTES_PER_CELL = 8
-MULTIGRID_BYTES_PER_CELL = 62  # measured set-up peak of the hierarchy beyond the resident arrays (1024² and 4096²)
+BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
 PICTURE_BYTES_PER_CELL = 6
 FIXED_BYTES = 200 * 1024 * 1024
-
-# Methods that keep a second copy of the field.
-TWO_BUFFER_METHODS = ("jacobi",)
-HIERARCHY_METHODS = ("multigrid",)
-RADIUS_METHODS = ("jacobi", "gauss-seidel", "sor", "red-black-sor", None)  # None: the default method
 
 
 def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1) -> int:
@@ -65,8 +68,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     rows, cols : int
         Picture size in cells.
     method : str or None
-        Method name (see ``relaxtui.solver.methods_names``); ``None`` counts as the
-        default red-black SOR (one field buffer).
+        Method name (see ``relaxtui.solver.methods``); ``None`` (or a name the
+        registry does not know) counts as the default red-black SOR (one field buffer).
     materials : int
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
 
@@ -81,13 +84,19 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     padded = (rows + 2) * (cols + 2)
     code_bytes = CLASS_CODE_BYTES_SMALL if int(materials) <= CLASS_CODE_SMALL_LIMIT else CLASS_CODE_BYTES_LARGE
     resident = FIELD_BYTES_PER_CELL * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
-    phases = [PICTURE_BYTES_PER_CELL * cells + REGION_CODE_BYTES_PER_CELL * cells]
-    second = JACOBI_BUFFER_BYTES_PER_CELL * padded if method in TWO_BUFFER_METHODS else 0
-    phases.append(resident + second + OUTPUT_BYTES_PER_CELL * cells)
-    if method in RADIUS_METHODS:
-        phases.append(resident + RADIUS_BYTES_PER_CELL * padded)
-    if method in HIERARCHY_METHODS:
-        phases.append(resident + MULTIGRID_BYTES_PER_CELL * cells)
+    from relaxtui.options import DEFAULT_METHOD
+    from relaxtui.solver.methods import METHODS
+
+    m = METHODS.get(method if isinstance(method, str) else DEFAULT_METHOD)
+    buffers = BUFFER_BYTES_PER_CELL * m.buffers * padded if m is not None else 0
+    if m is None or m.uses_radius:
+        # the Lanczos vectors live until the estimate is final: a run that ends first (a limit, a
+        # cancel) keeps them, paused, for the next run on the operator
+        resident += RADIUS_BYTES_PER_CELL * padded
+    phases = [PICTURE_BYTES_PER_CELL * cells + REGION_CODE_BYTES_PER_CELL * cells,
+              resident + max(buffers, OUTPUT_BYTES_PER_CELL * cells)]  # the buffers are released before the report
+    if m is not None and m.bytes_per_cell:
+        phases.append(resident + m.bytes_per_cell * cells)
     return int(FIXED_BYTES + max(phases))
 
 
