@@ -215,7 +215,6 @@ def run(args) -> int:
             if steps <= 2:
                 pause_for_tests("solving" if steps == 1 else "solving:2")
         signals.writing = True  # from here on a signal never aborts: the set is finished first
-        pause_for_tests("writing")
         display.stop()
         result = run.result()
         if signals.first is not None and result.report.get("status") == "cancelled":
@@ -230,33 +229,10 @@ def run(args) -> int:
 
 def _write_all(result, args, out, report_path, history_path) -> list[Path]:
     """Write the output set: every temporary file first, then the renames (report last)."""
-    from relaxtui.output.atomic import OutputSet, write_json, write_npy
-    from relaxtui.output.report import stamp_outputs
+    from relaxtui.output.sets import write_run_outputs
 
-    folder = Path(report_path or out or history_path or args.picture or args.vtk or args.bundle).parent
-    with OutputSet(lock_folder=folder) as batch:
-        if out is not None:
-            write_npy(out, result.field, "field")
-        if history_path is not None:
-            result.history.to_csv(history_path)
-        if args.picture or args.vtk or args.bundle:
-            from relaxtui.output import fields, pictures
-
-            if args.picture:
-                pictures.write_picture(args.picture, result.field, result.case, scale=args.scale, isolines=args.isolines)
-            if args.vtk:
-                fields.write_vtk(args.vtk, result.field, result.case)
-            stamp_outputs(result.report, batch.pending, {"field": out, "history": history_path,
-                                                         "picture": args.picture, "vtk": args.vtk})
-            if args.bundle:
-                fields.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history,
-                                    report=result.report)
-        stamp_outputs(result.report, batch.pending, {"field": out, "history": history_path, "picture": args.picture,
-                                                     "vtk": args.vtk, "bundle": args.bundle})
-        if report_path is not None:
-            write_json(report_path, result.report, "report")
-        old_report = [report_path] if report_path is not None and os.path.lexists(report_path) else []
-        return batch.commit(first_remove=old_report)
+    return write_run_outputs(result, out=out, report=report_path, history=history_path, picture=args.picture,
+                             vtk=args.vtk, bundle=args.bundle, scale=args.scale, isolines=args.isolines)
 
 
 def _summary(result, written) -> None:

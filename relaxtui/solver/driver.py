@@ -573,14 +573,7 @@ def check_outputs(**paths) -> None:
 
 def write_outputs(result: SolveResult, *, out=None, report=None, history=None) -> list[Path]:
     """Write the field (.npy), report (.json) and history (.csv) atomically."""
-    from relaxtui.output.atomic import write_json, write_npy
+    from relaxtui.output.sets import write_run_outputs
 
     check_outputs(field=out, report=report, history=history)
-    written = []
-    if out is not None:
-        written.append(write_npy(out, result.field, "field"))
-    if history is not None:
-        written.append(result.history.to_csv(history))
-    if report is not None:
-        written.append(write_json(report, result.report, "report"))
-    return written
+    return write_run_outputs(result, out=out, report=report, history=history)  # one set: temporaries, then renames
