@@ -55,7 +55,7 @@ def write(folder, n):
     return folder / "c.toml"
 
 
-@pytest.mark.parametrize("method", ["jacobi", "red-black-sor", "multigrid"])
+@pytest.mark.parametrize("method", [pytest.param("jacobi", marks=pytest.mark.slow), "red-black-sor", "multigrid"])
 def test_estimate_bounds_the_measured_peak(tmp_path, method):
     n = 768
     small = tmp_path / "small"

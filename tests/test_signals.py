@@ -182,7 +182,8 @@ KILL_MOMENTS = ["writing", "remove", "rename:0", "rename:1", "rename:2", "rename
 
 
 @pytest.mark.parametrize("moment", _quick(KILL_MOMENTS, "rename:1"))
-@pytest.mark.parametrize("previous", [False, True], ids=["fresh", "over-a-previous-set"])
+@pytest.mark.parametrize("previous", [pytest.param(False, marks=pytest.mark.slow), True],
+                         ids=["fresh", "over-a-previous-set"])
 def test_sigkill_while_writing_leaves_a_consistent_set_or_none(tmp_path, moment, previous):
     write_case(tmp_path, n=60)
     if previous:  # a complete set of an earlier run (a different tolerance, so different files)
