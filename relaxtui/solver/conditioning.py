@@ -92,6 +92,10 @@ def inverse_norm(run) -> tuple[float, str]:
     else:
         mu = getattr(run, "mu", None)
         how = "from the Jacobi radius"
+        if mu is None:  # a radius job of the operator's may know one already (beside the sweeps)
+            job = getattr(op, "radius_job", None)
+            final = job().result() if job is not None else None
+            mu = final.mu if final is not None else None
         if mu is None:
             from relaxtui.solver.radius import jacobi_radius
 

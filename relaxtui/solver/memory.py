@@ -16,6 +16,9 @@ resident
   working field         8               float64, padded by one cell all round
   class codes           1 or 2          uint8 up to 256 classes, else uint16
   region codes          1               the case's own uint8 picture codes
+  after the decode      7               memory the allocators keep once the PNG is
+                                        decoded (measured in RSS; tracemalloc does
+                                        not see it)
   Jacobi radius         24              3 Lanczos vectors (padded), methods that use
                                         the radius; they live until the estimate is
                                         final (beside the sweeps on large grids, kept
@@ -26,7 +29,7 @@ phases (the largest counts)
                                         when the run ends
   output copy           8               the exported field built for the report
   method's own          ``Method.bytes_per_cell``: the set-up peak of what
-                                        the method builds (multigrid 62: hierarchy
+                                        the method builds (multigrid 55: hierarchy
                                         planes, set-up temporaries, CG vectors)
   decoded picture       6               while the PNG is decoded
 fixed                   200 MiB         interpreter, numba, compiled code, UI,
@@ -42,6 +45,10 @@ interpreter: red-black SOR and Jacobi stopped by a sweep limit (the Lanczos
 vectors still held) 45.2 B/cell, multigrid 71.6 B/cell (its set-up), of which
 about 3 MiB is the report's strip buffers (the fixed part covers those);
 tests/test_memory.py keeps the estimate an upper bound within 20 % of them.
+Peak RSS of the same solves at 2900 x 2900 (arrays large enough to be mapped
+and unmapped whole): red-black SOR and Jacobi 48.1 B/cell (estimate 49),
+multigrid 57.3 B/cell (estimate 72: its set-up allocates zeroed arrays whose
+pages are never all touched, which tracemalloc counts and RSS does not).
 """
 
 from __future__ import annotations
@@ -53,6 +60,7 @@ CLASS_CODE_BYTES_SMALL = 1  # up to CLASS_CODE_SMALL_LIMIT classes
 CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
 REGION_CODE_BYTES_PER_CELL = 1
+DECODE_RETAINED_BYTES_PER_CELL = 7  # resident memory the allocators keep after the PNG decode (RSS, 2900²)
 RADIUS_BYTES_PER_CELL = 24  # Lanczos vectors of the Jacobi-radius estimate (padded cells)
 BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
@@ -83,7 +91,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     cells = rows * cols
     padded = (rows + 2) * (cols + 2)
     code_bytes = CLASS_CODE_BYTES_SMALL if int(materials) <= CLASS_CODE_SMALL_LIMIT else CLASS_CODE_BYTES_LARGE
-    resident = FIELD_BYTES_PER_CELL * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
+    resident = (FIELD_BYTES_PER_CELL * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
+                + DECODE_RETAINED_BYTES_PER_CELL * cells)
     from relaxtui.options import DEFAULT_METHOD
     from relaxtui.solver.methods import METHODS
 

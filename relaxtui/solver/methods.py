@@ -195,7 +195,7 @@ METHODS: dict[str, Method] = {
         factor=None,  # no Jacobi-radius estimate: the stopping rule measures the cycle's own factor
         parallel=True,
         make=lambda operator: _multigrid().MultigridStepper(operator),
-        bytes_per_cell=62,  # set-up peak beyond the resident arrays (tracemalloc, 768² and 1024², tests/test_memory.py); 44 held after set-up (4096² demo)
+        bytes_per_cell=55,  # set-up peak beyond the resident arrays (tracemalloc, 768² and 1024², tests/test_memory.py); 44 held after set-up (4096² demo)
     ),
     "symmetric-sor": Method(
         "symmetric-sor", "ssor",
