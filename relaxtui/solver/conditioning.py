@@ -41,7 +41,10 @@ EXACT_WORK = 4e7  # unknowns * bandwidth^2 of a banded Cholesky worth doing for 
 ESTIMATE_SAFETY = 2.0  # D-norm 1/(1 - mu) to infinity-norm estimate
 NORM_OF_OPERATOR = 2.0  # ||I - W||_inf <= 2 (weights sum to at most 1 per row)
 FLOOR_SAFETY = 4.0  # on the random-sign estimate of the rounding floor (see rounding_floor)
-LANCZOS_STEPS = 120  # most Lanczos steps spent when nothing else gives the radius (multigrid, large grids)
+LANCZOS_STEPS = 120
+# SOR-type sweeps, which converge for every omega in (0, 2) on a symmetric positive definite system
+# (Ostrowski-Reich; the stopping rule then never calls growing updates divergence)
+CONVERGENT_METHODS = ("gauss-seidel", "sor", "red-black-sor", "symmetric-sor")  # most Lanczos steps spent when nothing else gives the radius (multigrid, large grids)
 
 
 def exact_inverse_norm(operator) -> float | None:
@@ -142,6 +145,7 @@ def attach(rule, run) -> None:
     rule.field_residual = lambda: op.residual(run._u)
     rule.inverse_norm = lambda: inverse_norm(run)
     rule.floor_cells = int(op.unknowns)
+    rule.convergent_by_theory = run.method in CONVERGENT_METHODS
 
 
 def _label(case) -> str:

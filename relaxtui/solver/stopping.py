@@ -244,6 +244,11 @@ class StoppingRule:
         self.reason: str | None = None  # why the run stalled, when the rule knows better than "no progress"
         self.floor: float | None = None  # the attainable accuracy once known (field units)
         self.floor_cells = 1  # unknowns of the system (the rounding floor's random-sign estimate)
+        # True when theory guarantees convergence (SOR-type sweeps with 0 < omega < 2 on the contract's
+        # symmetric positive definite systems: the Ostrowski-Reich theorem, e.g. Saad, Iterative Methods
+        # for Sparse Linear Systems, 2003, ch. 4, from memory): growing updates are then a transient
+        # (non-normal SOR near omega = 2), not divergence; only non-finite or huge values are.
+        self.convergent_by_theory = False
 
     # -- feeding ---------------------------------------------------------------
     def add(self, updates) -> None:
@@ -404,6 +409,8 @@ class StoppingRule:
         last = seg[-1]
         if last > GROWTH_LIMIT * max(self.scale, self._best):
             return True
+        if self.convergent_by_theory:
+            return False
         # Sustained growth: the update envelope rose over each of the last two windows
         # and now exceeds the best update by a large factor.
         m = max(self.min_window, int(WINDOW_FRACTION * len(seg)))
