@@ -260,11 +260,8 @@ class RadiusJob:
         """Advance in a background thread (``threads`` numba threads for its kernels) until done or paused."""
         import threading
 
-        if self.running:
+        if self.running or self._final is not None and (self._final.settled or not redo_unsettled):
             return
-        with self._lock:
-            if not self._ensure(method_sweeps, redo_unsettled):
-                return
         self._stop.clear()
 
         def work():
@@ -276,7 +273,8 @@ class RadiusJob:
             with self._lock:
                 t0 = time.perf_counter()
                 try:
-                    self._lanczos.advance(stop=self._stop)
+                    if self._ensure(method_sweeps, redo_unsettled):  # the start vector too is made here
+                        self._lanczos.advance(stop=self._stop)
                 finally:
                     self._seconds += time.perf_counter() - t0
                 self._finish_if_done()
