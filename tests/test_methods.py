@@ -264,3 +264,25 @@ def test_radius_cache_round_trip_and_corrupt_files(tmp_path):
         path.write_bytes(junk)
         again = Operator(case).radius_job()
         assert not again.load(path) and again.result() is None
+
+
+# --- the time limit covers the set-up --------------------------------------------------------------
+
+
+def test_time_limit_counts_the_set_up():
+    case = model_problem(60)
+    run = Run(case, method="red-black-sor", omega=1.5, tolerance=1e-12, time_limit=1e-9)
+    while not run.done:
+        run.step()
+    assert run.status == "time-limit" and run.rule.sweeps >= 1  # one chunk, then the limit (set-up alone exceeds it)
+    assert run.prepare_seconds > run.time_limit
+
+
+def test_a_set_up_cut_by_the_time_limit_says_so():
+    case = model_problem(60)
+    run = Run(case, method="sor", omega="auto", tolerance=1e-12, time_limit=1e-9)
+    run.prepare()
+    assert "cut to 0 s by the time limit" in run.omega_note and run.omega < 2.0
+    while not run.done:
+        run.step()
+    assert run.status == "time-limit" and "was not ready" in run.omega_note

@@ -32,6 +32,7 @@ CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
 QUICK_RADIUS_SECONDS = 1.0  # large grids with auto omega: Lanczos time before the first sweep (then beside the sweeps)
+RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
 
 
 @dataclass(frozen=True)
@@ -137,7 +138,7 @@ class Run:
         """Assemble, load the kernels, choose ω. Idempotent; step() calls it."""
         if self._prepared:
             return
-        t0 = time.perf_counter()
+        t0 = self._t_prepare = time.perf_counter()
         if self.operator is None:
             self._stage("assembling the operator")
             from relaxtui.solver.operator import Operator
@@ -224,10 +225,18 @@ class Run:
         def show(lz):
             self._stage(radius.RadiusState("running", lz.steps, lz.max_steps, lz.mu, lz.settled, 0.0, "lanczos").describe())
 
+        budget = None  # seconds the estimate may hold the run back (None: until done)
+        cut = ""
+        if self.time_limit is not None:
+            # the time limit covers the whole run: the set-up's estimate gets a share of it, then goes on beside the sweeps
+            budget = max(0.0, RADIUS_SHARE_OF_TIME_LIMIT * self.time_limit - (time.perf_counter() - self._t_prepare))
+            cut = f", cut to {budget:.2g} s by the time limit {self.time_limit:g} s"
         if self.operator.unknowns <= radius.BACKGROUND_UNKNOWNS:
-            est = job.run(self._method_sweeps, redo_unsettled=redo, on_step=show)
+            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=budget, on_step=show)
         elif request == "auto" and m.needs_radius:
-            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=QUICK_RADIUS_SECONDS, on_step=show)
+            quick = QUICK_RADIUS_SECONDS if budget is None or budget > QUICK_RADIUS_SECONDS else budget
+            cut = cut if quick == budget else ""
+            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=quick, on_step=show)
         else:
             est = job.result() if (job.result() is not None and (job.result().settled or not redo)) else None
         if est is None:
@@ -236,7 +245,7 @@ class Run:
             state = job.state()
             self.mu = state.mu
             self._radius_settled = False
-            self._radius_note = state.describe() + ", continued beside the sweeps"
+            self._radius_note = state.describe() + f"{cut}, continued beside the sweeps"
             return
         self._take_radius(est, job.state().describe())
         if cache is not None:
@@ -384,7 +393,8 @@ class Run:
                 secs = self.seconds - dt + dt * np.arange(1, k + 1) / k
                 errs = self.rule.recent_errors(k)
                 self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
-            decision = self.rule.decide(self.seconds, cancelled=self._cancel.is_set())
+            # the time limit covers the whole run, set-up included
+            decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
                 decision = replace(decision, status=stopping.DIVERGED)
             if decision.status is None:
