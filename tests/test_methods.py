@@ -224,6 +224,7 @@ def test_solve_stays_honest_while_the_estimate_runs_beside_it(monkeypatch, metho
     # every grid counts as large: the estimate runs in a background thread, the rule measures alone until it lands
     monkeypatch.setattr(radius, "BACKGROUND_UNKNOWNS", 0)
     monkeypatch.setattr("relaxtui.solver.driver.QUICK_RADIUS_SECONDS", 0.0)
+    monkeypatch.setattr("relaxtui.solver.driver.BACKGROUND_DELAY_SECONDS", 0.0)
     case = model_problem(63, hot=100.0)
     exact = exact_solution(case)
     result = solve(case, method=method, omega=omega, tolerance=1e-6, max_sweeps=2_000_000)
@@ -246,6 +247,17 @@ def test_a_run_that_ends_first_says_the_estimate_was_not_ready(monkeypatch):
         run.step()
     assert run.status == "sweep-limit"
     assert "was not ready" in run.omega_note and run.rule.prior_factor is None
+
+
+def test_a_short_run_with_a_given_omega_does_not_start_the_estimate(monkeypatch):
+    monkeypatch.setattr(radius, "BACKGROUND_UNKNOWNS", 0)
+    monkeypatch.setattr("relaxtui.solver.driver.BACKGROUND_DELAY_SECONDS", 1e9)
+    case = model_problem(63, hot=100.0)
+    op = Operator(case)
+    run = Run(case, method="red-black-sor", omega=1.9, max_sweeps=30, operator=op)
+    while not run.done:
+        run.step()
+    assert op.radius_job().state().stage == "not started" and "not estimated yet" in run.omega_note
 
 
 def test_radius_cache_round_trip_and_corrupt_files(tmp_path):

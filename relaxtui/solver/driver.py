@@ -32,6 +32,8 @@ CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
 QUICK_RADIUS_SECONDS = 1.0  # large grids with auto omega: Lanczos time before the first sweep (then beside the sweeps)
+BACKGROUND_DELAY_SECONDS = 1.0  # given omega on a large grid: seconds of sweeping before the estimate starts beside them
+BACKGROUND_MIN_SECONDS = 5.0  # ... and only when the run may still go on this long (else it is not worth a core)
 RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
 
 
@@ -115,7 +117,8 @@ class Run:
         self.mu: float | None = None  # estimated Jacobi radius
         self._radius_note = ""
         self._radius_settled = False  # only a settled estimate guides the stopping rule
-        self._radius_pending = False  # an estimate runs in the background
+        self._radius_pending = False  # an estimate runs (or is to start) in the background
+        self._radius_start = (0.0, False)  # (seconds of sweeping before it starts, redo an unsettled one)
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
@@ -240,7 +243,11 @@ class Run:
         else:
             est = job.result() if (job.result() is not None and (job.result().settled or not redo)) else None
         if est is None:
-            job.start(self._method_sweeps, redo_unsettled=redo)
+            # auto ω waits for it: at once; a given ω only refines the rule's floor: after a while, so that
+            # short runs sweep at full speed (the estimate takes a core while it runs)
+            self._radius_start = (0.0 if request == "auto" and m.needs_radius else BACKGROUND_DELAY_SECONDS, redo)
+            if self._radius_start[0] <= self.seconds:
+                job.start(self._method_sweeps, redo_unsettled=redo)
             self._radius_pending = True
             state = job.state()
             self.mu = state.mu
@@ -260,6 +267,9 @@ class Run:
         job = self.operator.radius_job()
         est = job.result()
         if est is None:
+            delay, redo = self._radius_start
+            if not job.running and self.seconds >= delay and self._remaining_seconds() >= BACKGROUND_MIN_SECONDS:
+                job.start(self._method_sweeps, redo_unsettled=redo)
             return
         cache = self._cache_file()
         if cache is not None:
@@ -279,6 +289,19 @@ class Run:
             prior, gap = self._prior()
             self.rule.prior_factor, self.rule.prior_gap = prior, gap
             self.omega_note = f"given; {self._radius_note}"
+
+    def _remaining_seconds(self) -> float:
+        """How long the run may still go on: its sweep limit, the rule's prediction and the time limit."""
+        if self._sweep_seconds is None:
+            return math.inf
+        left = self.max_sweeps - self.rule.sweeps
+        eta = self.rule.last.eta_sweeps
+        if eta is not None and math.isfinite(self.rule.last.estimated_error):
+            left = min(left, eta)
+        secs = left * self._sweep_seconds
+        if self.time_limit is not None:
+            secs = min(secs, self.time_limit - self.prepare_seconds - self.seconds)
+        return secs
 
     def _prior(self):
         from relaxtui.solver.young import sor_smooth_gap

@@ -166,6 +166,8 @@ class RadiusState:
             if self.source == "cache":
                 return f"Jacobi radius {self.mu:.6f} (cached, {how})"
             return f"Jacobi radius {self.mu:.6f} from {self.steps} Lanczos steps ({self.seconds:.2f} s, {how})"
+        if self.stage == "not started":
+            return "Jacobi radius not estimated yet (it starts beside the sweeps)"
         so_far = "" if self.mu is None else f", {self.mu:.6f} so far"
         return f"estimating the Jacobi radius: {self.steps}/{self.max_steps} Lanczos steps{so_far}"
 
