@@ -223,7 +223,7 @@ def test_radius_is_estimated_once_per_operator():
 def test_solve_stays_honest_while_the_estimate_runs_beside_it(monkeypatch, method, omega):
     # every grid counts as large: the estimate runs in a background thread, the rule measures alone until it lands
     monkeypatch.setattr(radius, "BACKGROUND_UNKNOWNS", 0)
-    monkeypatch.setattr("relaxtui.solver.driver.QUICK_RADIUS_SECONDS", 0.0)
+    monkeypatch.setattr("relaxtui.solver.driver.QUICK_RADIUS_STEPS", 5)
     monkeypatch.setattr("relaxtui.solver.driver.BACKGROUND_DELAY_SECONDS", 0.0)
     case = model_problem(63, hot=100.0)
     exact = exact_solution(case)
@@ -290,9 +290,11 @@ def test_time_limit_counts_the_set_up():
     assert run.prepare_seconds > run.time_limit
 
 
-def test_a_set_up_cut_by_the_time_limit_says_so():
+def test_a_set_up_cut_by_the_time_limit_says_so(monkeypatch):
     case = model_problem(60)
-    run = Run(case, method="sor", omega="auto", tolerance=1e-12, time_limit=1e-9)
+    op = Operator(case)
+    monkeypatch.setattr(op.radius_job(), "start", lambda *a, **k: None)  # the rest of the estimate never lands
+    run = Run(case, method="sor", omega="auto", tolerance=1e-12, time_limit=1e-9, operator=op)
     run.prepare()
     assert "cut to 0 s by the time limit" in run.omega_note and run.omega < 2.0
     while not run.done:

@@ -31,7 +31,7 @@ from relaxtui.solver.methods import MAX_CHUNK, get_method
 CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
-QUICK_RADIUS_SECONDS = 1.0  # large grids with auto omega: Lanczos time before the first sweep (then beside the sweeps)
+QUICK_RADIUS_STEPS = 30  # large grids with auto omega: Lanczos steps (beside the sweeps) before omega is set from them
 BACKGROUND_DELAY_SECONDS = 1.0  # given omega on a large grid: seconds of sweeping before the estimate starts beside them
 BACKGROUND_MIN_SECONDS = 5.0  # ... and only when the run may still go on this long (else it is not worth a core)
 RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
@@ -119,6 +119,7 @@ class Run:
         self._radius_settled = False  # only a settled estimate guides the stopping rule
         self._radius_pending = False  # an estimate runs (or is to start) in the background
         self._radius_start = (0.0, False)  # (seconds of sweeping before it starts, redo an unsettled one)
+        self._provisional = False  # auto ω waits for the first steps of a background estimate
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
@@ -212,14 +213,20 @@ class Run:
         return cache_path(self._radius_cache, self.operator)
 
     def _radius(self, request) -> None:
-        """Get the estimate: at once on small grids; on large ones beside the sweeps (a quick
-        start first when auto ω needs it). Sets ``mu`` (None while nothing is known)."""
+        """Get the estimate: at once on small grids; on large ones beside the sweeps (auto ω starts
+        from the estimate so far and is set again as it grows). Sets ``mu`` (None while nothing is known)."""
         from relaxtui.solver import radius
 
-        if self.mu is not None and not self._radius_pending:
-            return
         m = self.method_info
         job = self.operator.radius_job()
+        if self._radius_pending:  # running beside the sweeps: take what it has so far
+            state = job.state()
+            if state.mu is not None and (self.mu is None or state.mu > self.mu):
+                self.mu = state.mu
+                self._radius_note = state.describe() + ", continued beside the sweeps"
+            return
+        if self.mu is not None:
+            return
         cache = self._cache_file()
         if cache is not None and job.result() is None:
             job.load(cache)
@@ -236,16 +243,13 @@ class Run:
             cut = f", cut to {budget:.2g} s by the time limit {self.time_limit:g} s"
         if self.operator.unknowns <= radius.BACKGROUND_UNKNOWNS:
             est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=budget, on_step=show)
-        elif request == "auto" and m.needs_radius:
-            quick = QUICK_RADIUS_SECONDS if budget is None or budget > QUICK_RADIUS_SECONDS else budget
-            cut = cut if quick == budget else ""
-            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=quick, on_step=show)
         else:
             est = job.result() if (job.result() is not None and (job.result().settled or not redo)) else None
         if est is None:
             # auto ω waits for it: at once; a given ω only refines the rule's floor: after a while, so that
             # short runs sweep at full speed (the estimate takes a core while it runs)
-            self._radius_start = (0.0 if request == "auto" and m.needs_radius else BACKGROUND_DELAY_SECONDS, redo)
+            self._provisional = request == "auto" and m.needs_radius  # ω from the first steps, before the final estimate
+            self._radius_start = (0.0 if self._provisional else BACKGROUND_DELAY_SECONDS, redo)
             if self._radius_start[0] <= self.seconds:
                 job.start(self._method_sweeps, redo_unsettled=redo)
             self._radius_pending = True
@@ -268,8 +272,14 @@ class Run:
         est = job.result()
         if est is None:
             delay, redo = self._radius_start
-            if not job.running and self.seconds >= delay and self._remaining_seconds() >= BACKGROUND_MIN_SECONDS:
+            if not job.running and self.seconds >= delay and (self._provisional or self._remaining_seconds() >= BACKGROUND_MIN_SECONDS):
                 job.start(self._method_sweeps, redo_unsettled=redo)
+            state = job.state()
+            if self._provisional and state.steps >= QUICK_RADIUS_STEPS and self._omega_request == "auto":
+                self._provisional = False  # auto ω from the estimate so far (it errs low: ω below the optimum)
+                if self.mu is None or (state.mu is not None and state.mu > self.mu):
+                    self.omega_note = ""
+                    self._choose_omega("auto")
             return
         cache = self._cache_file()
         if cache is not None:
