@@ -15,6 +15,8 @@ import time
 from contextlib import contextmanager
 from pathlib import Path
 
+from relaxtui.output.text import group
+
 EXIT_CONVERGED, EXIT_NOT_CONVERGED, EXIT_INTERRUPTED = 0, 1, 130
 
 
@@ -115,7 +117,7 @@ def _summary(result, written) -> None:
     unit = f" {r['unit']}" if r["unit"] else ""
     con.print(f"[bold {style}]{r['status']}[/]: {r['message']}")
     con.print(f"  {r['method']}, omega {r['omega']:.4f} ({r['omega_note']})")
-    con.print(f"  {r['sweeps']} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
+    con.print(f"  {group(r['sweeps'])} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
               f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:
         for key in ("min", "max"):
@@ -190,8 +192,8 @@ class _Display:
             return
         err = p.estimated_error
         eta = "" if p.eta_seconds is None else f" ETA {p.eta_seconds:.0f} s"
-        info = (f"sweep {p.sweeps}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
-                if math.isfinite(err) else f"sweep {p.sweeps}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
+        info = (f"sweep {group(p.sweeps)}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
+                if math.isfinite(err) else f"sweep {group(p.sweeps)}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
         if p.background:
             info += f"  ({p.background})"
         if self.live:

@@ -15,6 +15,7 @@ from relaxtui.commands.solve import (
     _sigint_to,
 )
 from relaxtui.errors import UsageError
+from relaxtui.output.text import group
 
 
 def parse_range(text: str) -> list[float]:
@@ -114,7 +115,7 @@ def run(args) -> int:
                 "estimated_error": p.estimated_error,
             })
             if not args.quiet:
-                print(f"{label}: {p.status} after {p.sweeps} sweeps, {p.seconds:.2f} s", file=sys.stderr, flush=True)
+                print(f"{label}: {p.status} after {group(p.sweeps)} sweeps, {p.seconds:.2f} s", file=sys.stderr, flush=True)
     best = _mark_best(rows, rank_by)
     _print_table(rows, best, rank_by, case, run.tolerance if rows else None)
     if args.csv:
@@ -152,7 +153,7 @@ def _print_table(rows, best, rank_by, case, tolerance) -> None:
         if r["method"] == "gauss-seidel":
             omega = "-"
         cells = ["*" if i == best else ""] + ([] if one else [r["method"]]) + [
-            omega, str(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
+            omega, group(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
             "n/a" if r["factor"] is None else f"{r['factor']:.5f}"]
         t.add_row(*cells)
     Console().print(t)

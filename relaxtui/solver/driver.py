@@ -567,7 +567,9 @@ class Run:
 
 
 def _group(n: int) -> str:
-    return f"{n:,}".replace(",", " ")
+    from relaxtui.output.text import group
+
+    return group(n)
 
 
 def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,

@@ -181,16 +181,17 @@ class OmegaPanel(Vertical):
         yield Static(id="omega-key")
         with Horizontal(classes="param-row"):
             yield Label("scan ω", classes="param-label")
-            yield Input(placeholder="1.80:1.98:0.02 then enter", compact=True, id="omega-scan")
+            yield Input(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
         with Horizontal(classes="param-row"):
             yield Label("sweep CSV", classes="param-label")
-            yield Input(placeholder="path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
+            yield Input(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
 
     async def action_leave(self) -> None:
         await self.app.run_action("focus_panel")
 
-    def focus_scan(self) -> None:
-        self.query_one("#omega-scan", Input).focus()
+    def focus_field(self, which: str) -> None:
+        """``scan`` or ``csv``."""
+        self.query_one(f"#omega-{which}", Input).focus()
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         event.stop()
@@ -198,6 +199,7 @@ class OmegaPanel(Vertical):
             self.post_message(self.ScanRequested(self, event.value))
         elif event.input.id == "omega-csv":
             self.post_message(self.CsvRequested(self, event.value))
+        self.app.call_later(self.app.run_action, "focus_panel")
 
     def update_study(self, records, method: str, mu: float | None, scanning: str = "") -> None:
         """Redraw from the session's runs (``method``: the study's method; ``mu``: the measured radius)."""
