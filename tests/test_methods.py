@@ -257,7 +257,7 @@ def test_a_short_run_with_a_given_omega_does_not_start_the_estimate(monkeypatch)
     run = Run(case, method="red-black-sor", omega=1.9, max_sweeps=30, operator=op)
     while not run.done:
         run.step()
-    assert op.radius_job().state().stage == "not started" and "not estimated yet" in run.omega_note
+    assert op.radius_job().state().stage == "not started" and "not started: a short run sweeps at full speed" in run.omega_note
 
 
 def test_radius_cache_round_trip_and_corrupt_files(tmp_path):

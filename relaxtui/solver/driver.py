@@ -494,8 +494,9 @@ class Run:
                 cache = self._cache_file()
                 if cache is not None:
                     job.save(cache)  # for the next run; this one ended without it
-            note = (f"the Jacobi radius estimate was not ready before the run ended ({job.state().describe()}); "
-                    "the stopping rule measured the factor alone")
+            state = job.state()
+            how = "not started: a short run sweeps at full speed" if state.stage == "not started" else state.describe()
+            note = f"the Jacobi radius estimate was not ready before the run ended ({how}); the stopping rule measured the factor alone"
             self.omega_note = f"given; {note}" if self._omega_request != "auto" else f"{self.omega_note}; {note}"
         self._stepper.release()  # a stepper's own buffers are not needed any more
 
