@@ -84,7 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("solve", help="solve a case headless and write field, report and history", description="Solve a case to its tolerance without a screen.")
     p.add_argument("case", metavar="CASE.toml")
     _add_solver_options(p)
-    p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help="stop after S seconds (outputs are still written)")
+    p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help="stop after S seconds, set-up included (outputs are still written)")
     p.add_argument("--initial", metavar="FIELD.npy", help="start from this field (.npy, or a .npz bundle) instead of the default guess")
     p.add_argument("--out", metavar="FIELD.npy", help="write the field (float64, NaN outside the domain)")
     p.add_argument("--report", metavar="REPORT.json", help="write the report")
@@ -101,7 +101,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--method", type=argparse_type(parse_method), metavar="M",
                    help=f"method for the omega range ({' or '.join(OMEGA_SCAN_METHODS)}, default red-black-sor)")
     p.add_argument("--methods", metavar="M1,M2,...", help="methods to compare, each at auto omega")
-    _add_limits(p, "time limit per solve")
+    _add_limits(p, "time limit per solve, its set-up included")
     p.add_argument("--csv", metavar="FILE", help="also write the table as CSV")
     p.add_argument("-q", "--quiet", action="store_true")
 

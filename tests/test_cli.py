@@ -284,3 +284,10 @@ def test_symmetric_sor_from_the_command_line(plate, tmp_path, capsys):
     assert code == 0
     report = json.loads(rep.read_text())
     assert report["method"] == "symmetric-sor" and report["omega"] == 1.6 and report["status"] == "converged"
+
+
+def test_progress_line_says_what_is_prepared(plate, tmp_path, capsys):
+    code, _, err = run_cli(["solve", plate, "--report", tmp_path / "r.json"], capsys)
+    assert code == 0
+    assert "relaxtui: preparing: assembling the operator" in err
+    assert "preparing: estimating the Jacobi radius:" in err and "Lanczos steps" in err

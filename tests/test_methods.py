@@ -223,7 +223,8 @@ def test_radius_is_estimated_once_per_operator():
 def test_solve_stays_honest_while_the_estimate_runs_beside_it(monkeypatch, method, omega):
     # every grid counts as large: the estimate runs in a background thread, the rule measures alone until it lands
     monkeypatch.setattr(radius, "BACKGROUND_UNKNOWNS", 0)
-    monkeypatch.setattr("relaxtui.solver.driver.QUICK_RADIUS_SECONDS", 0.0)
+    monkeypatch.setattr("relaxtui.solver.driver.QUICK_RADIUS_STEPS", 5)
+    monkeypatch.setattr("relaxtui.solver.driver.BACKGROUND_DELAY_SECONDS", 0.0)
     case = model_problem(63, hot=100.0)
     exact = exact_solution(case)
     result = solve(case, method=method, omega=omega, tolerance=1e-6, max_sweeps=2_000_000)
@@ -248,6 +249,17 @@ def test_a_run_that_ends_first_says_the_estimate_was_not_ready(monkeypatch):
     assert "was not ready" in run.omega_note and run.rule.prior_factor is None
 
 
+def test_a_short_run_with_a_given_omega_does_not_start_the_estimate(monkeypatch):
+    monkeypatch.setattr(radius, "BACKGROUND_UNKNOWNS", 0)
+    monkeypatch.setattr("relaxtui.solver.driver.BACKGROUND_DELAY_SECONDS", 1e9)
+    case = model_problem(63, hot=100.0)
+    op = Operator(case)
+    run = Run(case, method="red-black-sor", omega=1.9, max_sweeps=30, operator=op)
+    while not run.done:
+        run.step()
+    assert op.radius_job().state().stage == "not started" and "not started: a short run sweeps at full speed" in run.omega_note
+
+
 def test_radius_cache_round_trip_and_corrupt_files(tmp_path):
     case = model_problem(30)
     op = Operator(case)
@@ -264,3 +276,27 @@ def test_radius_cache_round_trip_and_corrupt_files(tmp_path):
         path.write_bytes(junk)
         again = Operator(case).radius_job()
         assert not again.load(path) and again.result() is None
+
+
+# --- the time limit covers the set-up --------------------------------------------------------------
+
+
+def test_time_limit_counts_the_set_up():
+    case = model_problem(60)
+    run = Run(case, method="red-black-sor", omega=1.5, tolerance=1e-12, time_limit=1e-9)
+    while not run.done:
+        run.step()
+    assert run.status == "time-limit" and run.rule.sweeps >= 1  # one chunk, then the limit (set-up alone exceeds it)
+    assert run.prepare_seconds > run.time_limit
+
+
+def test_a_set_up_cut_by_the_time_limit_says_so(monkeypatch):
+    case = model_problem(60)
+    op = Operator(case)
+    monkeypatch.setattr(op.radius_job(), "start", lambda *a, **k: None)  # the rest of the estimate never lands
+    run = Run(case, method="sor", omega="auto", tolerance=1e-12, time_limit=1e-9, operator=op)
+    run.prepare()
+    assert "cut to 0 s by the time limit" in run.omega_note and run.omega < 2.0
+    while not run.done:
+        run.step()
+    assert run.status == "time-limit" and "was not ready" in run.omega_note

@@ -316,7 +316,10 @@ class _Display:
             return
         if self.live:
             self._progress.update(self._task, description=f"preparing: {text}", info="")
-        elif time.monotonic() - self._last_line >= 5.0 or "Lanczos" not in text:
+            return
+        kind = text.split(":")[0]  # a new stage is printed at once, the same one's progress every 5 s
+        if kind != getattr(self, "_stage_kind", None) or time.monotonic() - self._last_line >= 5.0:
+            self._stage_kind = kind
             self._last_line = time.monotonic()
             print(f"relaxtui: preparing: {text}", file=sys.stderr, flush=True)
 

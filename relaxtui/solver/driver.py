@@ -31,7 +31,10 @@ from relaxtui.solver.methods import MAX_CHUNK, get_method
 CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
-QUICK_RADIUS_SECONDS = 1.0  # large grids with auto omega: Lanczos time before the first sweep (then beside the sweeps)
+QUICK_RADIUS_STEPS = 30  # large grids with auto omega: Lanczos steps (beside the sweeps) before omega is set from them
+BACKGROUND_DELAY_SECONDS = 1.0  # given omega on a large grid: seconds of sweeping before the estimate starts beside them
+BACKGROUND_MIN_SECONDS = 5.0  # ... and only when the run may still go on this long (else it is not worth a core)
+RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
 
 
 @dataclass(frozen=True)
@@ -114,7 +117,9 @@ class Run:
         self.mu: float | None = None  # estimated Jacobi radius
         self._radius_note = ""
         self._radius_settled = False  # only a settled estimate guides the stopping rule
-        self._radius_pending = False  # an estimate runs in the background
+        self._radius_pending = False  # an estimate runs (or is to start) in the background
+        self._radius_start = (0.0, False)  # (seconds of sweeping before it starts, redo an unsettled one)
+        self._provisional = False  # auto ω waits for the first steps of a background estimate
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
@@ -137,7 +142,7 @@ class Run:
         """Assemble, load the kernels, choose ω. Idempotent; step() calls it."""
         if self._prepared:
             return
-        t0 = time.perf_counter()
+        t0 = self._t_prepare = time.perf_counter()
         if self.operator is None:
             self._stage("assembling the operator")
             from relaxtui.solver.operator import Operator
@@ -168,11 +173,17 @@ class Run:
         self.progress = self._progress()
 
     def _scale(self) -> float:
-        view = self.operator.view(self._u)
-        codes = self.case.codes
-        kinds = self.case.kind_codes()[codes]
-        vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
-        scale = float(np.max(np.abs(vals))) if vals.size else 1.0
+        """Largest |value| of the starting field's interior and fixed cells and of the boundary values."""
+        # the working array holds 0 in every other cell, so its extremes are those of the
+        # interior and fixed cells (two passes, no 16-byte-per-cell temporaries)
+        hi, lo = float(self._u.max()), float(self._u.min())
+        if math.isfinite(hi) and math.isfinite(lo) and (self.operator.unknowns or hi or lo):
+            scale = max(hi, -lo)
+        else:  # a working array with non-finite cells outside the domain: look at the domain only
+            view = self.operator.view(self._u)
+            kinds = self.case.kind_codes()[self.case.codes]
+            vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
+            scale = float(np.max(np.abs(vals))) if vals.size else 1.0
         for r in self.case.regions:
             for v in (r.value, r.ambient):
                 if v is not None:
@@ -203,14 +214,20 @@ class Run:
         return cache_path(self._radius_cache, self.operator)
 
     def _radius(self, request) -> None:
-        """Get the estimate: at once on small grids; on large ones beside the sweeps (a quick
-        start first when auto ω needs it). Sets ``mu`` (None while nothing is known)."""
+        """Get the estimate: at once on small grids; on large ones beside the sweeps (auto ω starts
+        from the estimate so far and is set again as it grows). Sets ``mu`` (None while nothing is known)."""
         from relaxtui.solver import radius
 
-        if self.mu is not None and not self._radius_pending:
-            return
         m = self.method_info
         job = self.operator.radius_job()
+        if self._radius_pending:  # running beside the sweeps: take what it has so far
+            state = job.state()
+            if state.mu is not None and (self.mu is None or state.mu > self.mu):
+                self.mu = state.mu
+                self._radius_note = state.describe() + ", continued beside the sweeps"
+            return
+        if self.mu is not None:
+            return
         cache = self._cache_file()
         if cache is not None and job.result() is None:
             job.load(cache)
@@ -219,19 +236,28 @@ class Run:
         def show(lz):
             self._stage(radius.RadiusState("running", lz.steps, lz.max_steps, lz.mu, lz.settled, 0.0, "lanczos").describe())
 
+        budget = None  # seconds the estimate may hold the run back (None: until done)
+        cut = ""
+        if self.time_limit is not None:
+            # the time limit covers the whole run: the set-up's estimate gets a share of it, then goes on beside the sweeps
+            budget = max(0.0, RADIUS_SHARE_OF_TIME_LIMIT * self.time_limit - (time.perf_counter() - self._t_prepare))
+            cut = f", cut to {budget:.2g} s by the time limit {self.time_limit:g} s"
         if self.operator.unknowns <= radius.BACKGROUND_UNKNOWNS:
-            est = job.run(self._method_sweeps, redo_unsettled=redo, on_step=show)
-        elif request == "auto" and m.needs_radius:
-            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=QUICK_RADIUS_SECONDS, on_step=show)
+            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=budget, on_step=show)
         else:
             est = job.result() if (job.result() is not None and (job.result().settled or not redo)) else None
         if est is None:
-            job.start(self._method_sweeps, redo_unsettled=redo)
+            # auto ω waits for it: at once; a given ω only refines the rule's floor: after a while, so that
+            # short runs sweep at full speed (the estimate takes a core while it runs)
+            self._provisional = request == "auto" and m.needs_radius  # ω from the first steps, before the final estimate
+            self._radius_start = (0.0 if self._provisional else BACKGROUND_DELAY_SECONDS, redo)
+            if self._radius_start[0] <= self.seconds:
+                job.start(self._method_sweeps, redo_unsettled=redo)
             self._radius_pending = True
             state = job.state()
             self.mu = state.mu
             self._radius_settled = False
-            self._radius_note = state.describe() + ", continued beside the sweeps"
+            self._radius_note = state.describe() + f"{cut}, continued beside the sweeps"
             return
         self._take_radius(est, job.state().describe())
         if cache is not None:
@@ -246,6 +272,15 @@ class Run:
         job = self.operator.radius_job()
         est = job.result()
         if est is None:
+            delay, redo = self._radius_start
+            if not job.running and self.seconds >= delay and (self._provisional or self._remaining_seconds() >= BACKGROUND_MIN_SECONDS):
+                job.start(self._method_sweeps, redo_unsettled=redo)
+            state = job.state()
+            if self._provisional and state.steps >= QUICK_RADIUS_STEPS and self._omega_request == "auto":
+                self._provisional = False  # auto ω from the estimate so far (it errs low: ω below the optimum)
+                if self.mu is None or (state.mu is not None and state.mu > self.mu):
+                    self.omega_note = ""
+                    self._choose_omega("auto")
             return
         cache = self._cache_file()
         if cache is not None:
@@ -265,6 +300,19 @@ class Run:
             prior, gap = self._prior()
             self.rule.prior_factor, self.rule.prior_gap = prior, gap
             self.omega_note = f"given; {self._radius_note}"
+
+    def _remaining_seconds(self) -> float:
+        """How long the run may still go on: its sweep limit, the rule's prediction and the time limit."""
+        if self._sweep_seconds is None:
+            return math.inf
+        left = self.max_sweeps - self.rule.sweeps
+        eta = self.rule.last.eta_sweeps
+        if eta is not None and math.isfinite(self.rule.last.estimated_error):
+            left = min(left, eta)
+        secs = left * self._sweep_seconds
+        if self.time_limit is not None:
+            secs = min(secs, self.time_limit - self.prepare_seconds - self.seconds)
+        return secs
 
     def _prior(self):
         from relaxtui.solver.young import sor_smooth_gap
@@ -379,7 +427,8 @@ class Run:
                 secs = self.seconds - dt + dt * np.arange(1, k + 1) / k
                 errs = self.rule.recent_errors(k)
                 self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
-            decision = self.rule.decide(self.seconds, cancelled=self._cancel.is_set())
+            # the time limit covers the whole run, set-up included
+            decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
                 decision = replace(decision, status=stopping.DIVERGED)
             if decision.status is None:
@@ -446,8 +495,9 @@ class Run:
                 cache = self._cache_file()
                 if cache is not None:
                     job.save(cache)  # for the next run; this one ended without it
-            note = (f"the Jacobi radius estimate was not ready before the run ended ({job.state().describe()}); "
-                    "the stopping rule measured the factor alone")
+            state = job.state()
+            how = "not started: a short run sweeps at full speed" if state.stage == "not started" else state.describe()
+            note = f"the Jacobi radius estimate was not ready before the run ended ({how}); the stopping rule measured the factor alone"
             self.omega_note = f"given; {note}" if self._omega_request != "auto" else f"{self.omega_note}; {note}"
         self._stepper.release()  # a stepper's own buffers are not needed any more
 

@@ -166,6 +166,8 @@ class RadiusState:
             if self.source == "cache":
                 return f"Jacobi radius {self.mu:.6f} (cached, {how})"
             return f"Jacobi radius {self.mu:.6f} from {self.steps} Lanczos steps ({self.seconds:.2f} s, {how})"
+        if self.stage == "not started":
+            return "Jacobi radius not estimated yet (it starts beside the sweeps)"
         so_far = "" if self.mu is None else f", {self.mu:.6f} so far"
         return f"estimating the Jacobi radius: {self.steps}/{self.max_steps} Lanczos steps{so_far}"
 
@@ -260,11 +262,8 @@ class RadiusJob:
         """Advance in a background thread (``threads`` numba threads for its kernels) until done or paused."""
         import threading
 
-        if self.running:
+        if self.running or self._final is not None and (self._final.settled or not redo_unsettled):
             return
-        with self._lock:
-            if not self._ensure(method_sweeps, redo_unsettled):
-                return
         self._stop.clear()
 
         def work():
@@ -276,7 +275,8 @@ class RadiusJob:
             with self._lock:
                 t0 = time.perf_counter()
                 try:
-                    self._lanczos.advance(stop=self._stop)
+                    if self._ensure(method_sweeps, redo_unsettled):  # the start vector too is made here
+                        self._lanczos.advance(stop=self._stop)
                 finally:
                     self._seconds += time.perf_counter() - t0
                 self._finish_if_done()
