@@ -126,20 +126,20 @@ class OmegaPlot(PlotextPlot):
         plt.clear_figure()
         plt.xlabel("ω")
         ys = []
-        for group_, rgb in ((["csv"], MUTED_RGB[1]), (None, RESIDUAL_RGB)):
-            sel = [p for p in self.points if (p.source == "csv") == (group_ is not None) and p.converged]
-            if sel:
-                plt.scatter([p.omega for p in sel], [math.log10(p.sweeps) for p in sel], marker="braille", color=rgb)
-                ys += [math.log10(p.sweeps) for p in sel]
         if curve is not None:
             w, n = curve
             ok = np.isfinite(n) & (n > 0)
             if ok.any():
                 plt.plot(w[ok].tolist(), np.log10(n[ok]).tolist(), marker="braille", color=ERROR_RGB)
+        for from_csv, marker, rgb in ((True, "+", MUTED_RGB[1]), (False, "•", RESIDUAL_RGB)):
+            sel = [p for p in self.points if (p.source == "csv") == from_csv and p.converged]
+            if sel:
+                plt.scatter([p.omega for p in sel], [math.log10(p.sweeps) for p in sel], marker=marker, color=rgb)
+                ys += [math.log10(p.sweeps) for p in sel]
         if auto is not None:
             plt.vertical_line(auto, color=OMEGA_RGB)
         if best_point is not None:
-            plt.scatter([best_point.omega], [math.log10(best_point.sweeps)], marker="●", color=BEST_RGB)
+            plt.scatter([best_point.omega], [math.log10(best_point.sweeps)], marker="◆", color=BEST_RGB)
         omegas = [p.omega for p in self.points] + ([auto] if auto is not None else [])
         if omegas:
             lo, hi = min(omegas), max(omegas)
@@ -226,19 +226,19 @@ class OmegaPanel(Vertical):
             key.append("no finished runs yet: type a scan range below, or start runs", style="italic")
         else:
             key.append("• ", style=_rgb(RESIDUAL_RGB))
-            key.append("runs  ")
+            key.append("runs ")
             if self.csv_points:
-                key.append("• ", style=_rgb(MUTED_RGB[1]))
+                key.append("+ ", style=_rgb(MUTED_RGB[1]))
                 key.append("csv  ")
             if curve is not None:
                 key.append("━ ", style=_rgb(ERROR_RGB))
-                key.append(f"Young, μ {self.mu:.6f}  ")
+                key.append(f"Young μ {self.mu:.6f}  ")
             if auto is not None:
                 key.append("│ ", style=_rgb(OMEGA_RGB))
-                key.append(f"auto ω {auto:.4f}  ")
+                key.append(f"auto {auto:.4f}  ")
             if b is not None:
-                key.append("● ", style="bold")
-                key.append(f"best {b.source} ω {b.omega:.4g}: {group(b.sweeps)} sweeps")
+                key.append("◆ ", style="bold")
+                key.append(f"best {b.source} ω {b.omega:.4g}: {group(b.sweeps)}")
         if scanning:
             key.append("  " + scanning, style="bold yellow")
         self.query_one("#omega-key", Static).update(key)
