@@ -9,7 +9,6 @@ SOR actually shows (:func:`relaxtui.solver.young.mu_from_sor_factor`).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
