@@ -67,9 +67,9 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
         child.expect("ready")
         key("s", "run #1 converged")
         key("o", "esc")  # the field has the focus: the footer shows escape
-        child.send("\x01\x0b")  # ctrl+a, ctrl+k: empty the field
-        key("1.9\r", "will be used")  # Enter checks the value and hands the focus back
-        key("c", "run #2 converged")
+        # ctrl+a, ctrl+k empty the field; then the value, Enter and the next footer key in one
+        # burst, as a fast typist sends them: Enter hands the focus back before "c" is read
+        key("\x01\x0b1.9\rc", "run #2 converged")
         key("v", "Residual")
         key("w", "ω study")
         key("e", "Export run #2")

@@ -269,12 +269,12 @@ class RelaxApp(Controls, Refresher, App):
         if name == "runs":
             self.main.query_one(RunsPanel).focus_table()
         elif name == "field":
-            self.main.query_one(FieldView).focus()
+            self.main.set_focus(self.main.query_one(FieldView))  # at once: the next key goes there
         elif name == "omega":
             self.refresh_study()
-            self.set_focus(None)
+            self.main.set_focus(None)
         else:
-            self.set_focus(None)
+            self.main.set_focus(None)
         if name == "history":
             self.plot_dirty = True
             self.call_after_refresh(self.refresh_plot)

@@ -36,6 +36,7 @@ from relaxtui.errors import UsageError
 from relaxtui.output.text import group
 from relaxtui.tui.history import ERROR_RGB, MUTED_RGB, OMEGA_RGB, RESIDUAL_RGB, TOLERANCE_RGB, _rgb
 from relaxtui.tui.messages import PanelMessage
+from relaxtui.tui.params import ParamField
 
 STUDY_METHODS = ("sor", "red-black-sor")
 BEST_RGB = (250, 250, 250)
@@ -107,6 +108,14 @@ def young_curve(mu: float, points: list[Point], omegas: np.ndarray) -> np.ndarra
 def best(points: list[Point]) -> Point | None:
     ok = [p for p in points if p.converged]
     return min(ok, key=lambda p: (p.sweeps, p.omega)) if ok else None
+
+
+class StudyField(ParamField):
+    """A field of the ω panel: keys in order, Enter hands the focus back (see ParamField)."""
+
+    async def action_submit(self) -> None:
+        await Input.action_submit(self)
+        await self.run_action("app.focus_panel")
 
 
 class OmegaPlot(PlotextPlot):
@@ -181,17 +190,17 @@ class OmegaPanel(Vertical):
         yield Static(id="omega-key")
         with Horizontal(classes="param-row"):
             yield Label("scan ω", classes="param-label")
-            yield Input(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
+            yield StudyField(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
         with Horizontal(classes="param-row"):
             yield Label("sweep CSV", classes="param-label")
-            yield Input(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
+            yield StudyField(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
 
     async def action_leave(self) -> None:
         await self.app.run_action("focus_panel")
 
     def focus_field(self, which: str) -> None:
         """``scan`` or ``csv``."""
-        self.query_one(f"#omega-{which}", Input).focus()
+        self.screen.set_focus(self.query_one(f"#omega-{which}", Input))  # at once, not after a refresh
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         event.stop()
@@ -199,7 +208,6 @@ class OmegaPanel(Vertical):
             self.post_message(self.ScanRequested(self, event.value))
         elif event.input.id == "omega-csv":
             self.post_message(self.CsvRequested(self, event.value))
-        self.app.call_later(self.app.run_action, "focus_panel")
 
     def update_study(self, records, method: str, mu: float | None, scanning: str = "") -> None:
         """Redraw from the session's runs (``method``: the study's method; ``mu``: the measured radius)."""
