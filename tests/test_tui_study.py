@@ -270,7 +270,9 @@ def test_method_change_resets_omega_unless_set_for_that_method(tmp_path):
         await type_into(pilot, app, "o", "1.5")
         # weighted Jacobi's factor max|1 - w(1 ± mu)| exceeds 1 for w > 2/(1+mu) (Young 1971)
         assert "Jacobi weight 1.5 > 1" in params.warning()
-        assert "diverges" in str(app.query_one("#param-warning").render())
+        assert "weight 1.5 > 1" in str(app.query_one("#param-warning").render())
+        status = app.query_one("#status")
+        assert app.query_one("#param-warning").region.bottom <= status.region.y  # shown, above the strip
 
     pilot_test(make_plate(tmp_path, method="sor"), body)
 

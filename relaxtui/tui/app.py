@@ -169,7 +169,7 @@ class RelaxApp(Controls, Refresher, App):
         wide = self.size.width >= WIDE[0] and self.size.height >= WIDE[1]
         self.main.set_class(wide, "-wide")
         self.main.set_class(not wide, "-compact")
-        self.main.query_one(TimingPanel).note_lines = 8 if wide else 2
+        self.main.query_one(TimingPanel).note_lines = 8 if wide else 1
 
     # -- threads and their events ---------------------------------------------------------------
     def _thread(self, target, *args) -> None:

@@ -269,8 +269,15 @@ class ParamsPanel(Vertical):
 
     # -- events ------------------------------------------------------------------------
     def _warn(self) -> None:
+        """One line under the fields (the whole sentence is the toast at start)."""
         text = self.warning()
-        self.query_one("#param-warning", Static).update(Text(text, style="bold yellow") if text else "")
+        short = ""
+        if text:
+            w = float(parse_omega(self.omega_text()))
+            verdict = "may diverge" if self.mu is None else ("diverges" if w > 2.0 / (1.0 + self.mu) else "is slower")
+            short = f"⚠ weight {w:g} > 1 {verdict}"
+        line = Text(short, style="bold yellow", no_wrap=True, overflow="ellipsis")
+        self.query_one("#param-warning", Static).update(line if short else "")
         self.set_class(bool(text), "-warning")
 
     def on_method_choice_changed(self, event: MethodChoice.Changed) -> None:
