@@ -65,11 +65,12 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
 
     try:
         child.expect("ready")
-        key("s", "run #1 converged")
+        # the method (m, left arrow: sor), Enter and start, in one burst
+        key("m\x1b[D\rs", "run #1 converged")
         key("o", "esc")  # the field has the focus: the footer shows escape
-        child.send("\x01\x0b")  # ctrl+a, ctrl+k: empty the field
-        key("1.9\r", "will be used")  # Enter checks the value and hands the focus back
-        key("c", "run #2 converged")
+        # ctrl+a, ctrl+k empty the field; then the value, Enter and the next footer key in one
+        # burst, as a fast typist sends them: Enter hands the focus back before "c" is read
+        key("\x01\x0b1.9\rc", "run #2 converged")
         key("v", "Residual")
         key("w", "ω study")
         key("e", "Export run #2")
@@ -81,5 +82,5 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
         child.logfile_read.close()
     assert child.exitstatus == 0, child.before
     report = json.loads((tmp_path / "plate.run2.report.json").read_text(encoding="utf-8"))
-    assert report["omega"] == 1.9 and report["status"] == "converged"
+    assert report["omega"] == 1.9 and report["status"] == "converged" and report["method"] == "sor"
     assert (tmp_path / "plate.run2.field.npy").exists() and (tmp_path / "plate.run2.history.csv").exists()

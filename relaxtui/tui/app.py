@@ -12,10 +12,11 @@ from __future__ import annotations
 import threading
 from pathlib import Path
 
+from textual import events
 from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.containers import Container, Horizontal, Vertical
-from textual.widgets import Footer
+from textual.widgets import Footer, Input
 
 from relaxtui.case import model
 from relaxtui.errors import RelaxError
@@ -37,6 +38,10 @@ from relaxtui.tui.timing import TimingPanel
 PLOT_INTERVAL = 1.0  # seconds between redraws of the history plot while running
 WIDE = (120, 34)  # columns and rows from which every panel is shown at once
 PANELS = ("field", "history", "runs", "omega")
+# Keys that move the focus into a field: run when read (not after the keys queued behind them),
+# so that "m→→" typed in one burst turns the method instead of moving the probe.
+FOCUS_KEYS = {"m": "focus_param('method')", "o": "focus_param('omega')", "t": "focus_param('tolerance')",
+              "r": "focus_study('scan')", "l": "focus_study('csv')"}
 
 
 class RelaxApp(Controls, Refresher, App):
@@ -138,6 +143,13 @@ class RelaxApp(Controls, Refresher, App):
         self.set_interval(PLOT_INTERVAL, self.refresh_plot)
         self._thread(w.load_case, self.case_path, self._post)
 
+    async def on_event(self, event) -> None:
+        if (isinstance(event, events.Key) and not event.is_forwarded and event.key in FOCUS_KEYS
+                and self.main is not None and self.screen is self.main and not isinstance(self.focused, Input)):
+            await self.run_action(FOCUS_KEYS[event.key])
+            return
+        await super().on_event(event)
+
     @_while_open
     def on_resize(self) -> None:
         self._apply_layout()
@@ -157,7 +169,7 @@ class RelaxApp(Controls, Refresher, App):
         wide = self.size.width >= WIDE[0] and self.size.height >= WIDE[1]
         self.main.set_class(wide, "-wide")
         self.main.set_class(not wide, "-compact")
-        self.main.query_one(TimingPanel).note_lines = 8 if wide else 2
+        self.main.query_one(TimingPanel).note_lines = 8 if wide else 1
 
     # -- threads and their events ---------------------------------------------------------------
     def _thread(self, target, *args) -> None:
@@ -269,12 +281,12 @@ class RelaxApp(Controls, Refresher, App):
         if name == "runs":
             self.main.query_one(RunsPanel).focus_table()
         elif name == "field":
-            self.main.query_one(FieldView).focus()
+            self.main.set_focus(self.main.query_one(FieldView))  # at once: the next key goes there
         elif name == "omega":
             self.refresh_study()
-            self.set_focus(None)
+            self.main.set_focus(None)
         else:
-            self.set_focus(None)
+            self.main.set_focus(None)
         if name == "history":
             self.plot_dirty = True
             self.call_after_refresh(self.refresh_plot)

@@ -169,8 +169,10 @@ class FactorPlot(PlotextPlot):
             lo, hi = min(values), max(values)
             pad = max((hi - lo) * 0.15, 1e-6)
             plt.ylim(lo - pad, hi + pad)
-        top = xmax if xmax else (float(x[-1]) if x.size else 1.0)
-        plt.xlim(0, max(top, 1.0))
+        top = max(xmax if xmax else (float(x[-1]) if x.size else 1.0), 1.0)
+        plt.xlim(0, top)
+        xt = [v for v in nice_ticks(0, top, 5) if v == int(v)]
+        plt.xticks(xt, [group(v) for v in xt])
         self.refresh()
 
 
@@ -222,7 +224,8 @@ class HistoryPanel(Vertical):
             if others:
                 key.append("  ━ ", style=_rgb(MUTED_RGB[0]))
                 key.append("other runs: " + ", ".join(s.label for s in others), style="dim")
-            key.append("  a: " + ("this run's span" if show_all else "all runs' span"), style="dim")
+            key.append("  ")
+            key.append("a: " + ("x-axis of this run only" if show_all else "x-axis of every run"), style="dim")
         self.query_one("#history-key", Static).update(key)
 
 

@@ -36,6 +36,7 @@ from relaxtui.errors import UsageError
 from relaxtui.output.text import group
 from relaxtui.tui.history import ERROR_RGB, MUTED_RGB, OMEGA_RGB, RESIDUAL_RGB, TOLERANCE_RGB, _rgb
 from relaxtui.tui.messages import PanelMessage
+from relaxtui.tui.params import ParamField
 
 STUDY_METHODS = ("sor", "red-black-sor")
 BEST_RGB = (250, 250, 250)
@@ -109,6 +110,14 @@ def best(points: list[Point]) -> Point | None:
     return min(ok, key=lambda p: (p.sweeps, p.omega)) if ok else None
 
 
+class StudyField(ParamField):
+    """A field of the ω panel: keys in order, Enter hands the focus back (see ParamField)."""
+
+    async def action_submit(self) -> None:
+        await Input.action_submit(self)
+        await self.run_action("app.focus_panel")
+
+
 class OmegaPlot(PlotextPlot):
     """Sweeps to tolerance (log axis) against ω."""
 
@@ -126,20 +135,20 @@ class OmegaPlot(PlotextPlot):
         plt.clear_figure()
         plt.xlabel("ω")
         ys = []
-        for group_, rgb in ((["csv"], MUTED_RGB[1]), (None, RESIDUAL_RGB)):
-            sel = [p for p in self.points if (p.source == "csv") == (group_ is not None) and p.converged]
-            if sel:
-                plt.scatter([p.omega for p in sel], [math.log10(p.sweeps) for p in sel], marker="braille", color=rgb)
-                ys += [math.log10(p.sweeps) for p in sel]
         if curve is not None:
             w, n = curve
             ok = np.isfinite(n) & (n > 0)
             if ok.any():
                 plt.plot(w[ok].tolist(), np.log10(n[ok]).tolist(), marker="braille", color=ERROR_RGB)
+        for from_csv, marker, rgb in ((True, "+", MUTED_RGB[1]), (False, "•", RESIDUAL_RGB)):
+            sel = [p for p in self.points if (p.source == "csv") == from_csv and p.converged]
+            if sel:
+                plt.scatter([p.omega for p in sel], [math.log10(p.sweeps) for p in sel], marker=marker, color=rgb)
+                ys += [math.log10(p.sweeps) for p in sel]
         if auto is not None:
             plt.vertical_line(auto, color=OMEGA_RGB)
         if best_point is not None:
-            plt.scatter([best_point.omega], [math.log10(best_point.sweeps)], marker="●", color=BEST_RGB)
+            plt.scatter([best_point.omega], [math.log10(best_point.sweeps)], marker="◆", color=BEST_RGB)
         omegas = [p.omega for p in self.points] + ([auto] if auto is not None else [])
         if omegas:
             lo, hi = min(omegas), max(omegas)
@@ -181,17 +190,17 @@ class OmegaPanel(Vertical):
         yield Static(id="omega-key")
         with Horizontal(classes="param-row"):
             yield Label("scan ω", classes="param-label")
-            yield Input(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
+            yield StudyField(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
         with Horizontal(classes="param-row"):
             yield Label("sweep CSV", classes="param-label")
-            yield Input(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
+            yield StudyField(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
 
     async def action_leave(self) -> None:
         await self.app.run_action("focus_panel")
 
     def focus_field(self, which: str) -> None:
         """``scan`` or ``csv``."""
-        self.query_one(f"#omega-{which}", Input).focus()
+        self.screen.set_focus(self.query_one(f"#omega-{which}", Input))  # at once, not after a refresh
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         event.stop()
@@ -199,7 +208,6 @@ class OmegaPanel(Vertical):
             self.post_message(self.ScanRequested(self, event.value))
         elif event.input.id == "omega-csv":
             self.post_message(self.CsvRequested(self, event.value))
-        self.app.call_later(self.app.run_action, "focus_panel")
 
     def update_study(self, records, method: str, mu: float | None, scanning: str = "") -> None:
         """Redraw from the session's runs (``method``: the study's method; ``mu``: the measured radius)."""
@@ -226,19 +234,19 @@ class OmegaPanel(Vertical):
             key.append("no finished runs yet: type a scan range below, or start runs", style="italic")
         else:
             key.append("• ", style=_rgb(RESIDUAL_RGB))
-            key.append("runs  ")
+            key.append("runs ")
             if self.csv_points:
-                key.append("• ", style=_rgb(MUTED_RGB[1]))
+                key.append("+ ", style=_rgb(MUTED_RGB[1]))
                 key.append("csv  ")
             if curve is not None:
                 key.append("━ ", style=_rgb(ERROR_RGB))
-                key.append(f"Young, μ {self.mu:.6f}  ")
+                key.append(f"Young μ {self.mu:.6f}  ")
             if auto is not None:
                 key.append("│ ", style=_rgb(OMEGA_RGB))
-                key.append(f"auto ω {auto:.4f}  ")
+                key.append(f"auto {auto:.4f}  ")
             if b is not None:
-                key.append("● ", style="bold")
-                key.append(f"best {b.source} ω {b.omega:.4g}: {group(b.sweeps)} sweeps")
+                key.append("◆ ", style="bold")
+                key.append(f"best {b.source} ω {b.omega:.4g}: {group(b.sweeps)}")
         if scanning:
             key.append("  " + scanning, style="bold yellow")
         self.query_one("#omega-key", Static).update(key)

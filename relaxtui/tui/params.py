@@ -21,6 +21,7 @@ weight above 1 is flagged beside the field.
 from __future__ import annotations
 
 from rich.text import Text
+from textual import events
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
@@ -78,12 +79,47 @@ def jacobi_warning(omega, mu: float | None) -> str:
 
 
 class ParamField(Input):
-    """A one-line input: Enter checks it, Escape gives the focus back."""
+    """A one-line input: Enter checks it, Escape gives the focus back.
+
+    Keys reach a widget in the order they were typed, but Textual forwards a
+    burst of keys to the widget focused when each was read, and runs a
+    widget's bindings after the characters queued behind them. So this field
+    runs its own bindings (Enter, Escape, the editing keys) in order with the
+    characters, and a key that arrives after Enter handed the focus back
+    (``1.85⏎s`` in one burst) is passed on to the app, where the footer's
+    action takes it: it never lands in the field.
+    """
 
     BINDINGS = [Binding("escape", "leave", "Back", show=True)]
 
     async def action_leave(self) -> None:
         await self.run_action("app.focus_panel")
+
+    async def action_submit(self) -> None:
+        parse = PARSERS.get((self.id or "").removeprefix("param-"))
+        ok = True
+        if parse is not None:
+            try:
+                parse(self.value)
+            except UsageError:
+                ok = False  # the panel refuses it with the message; the field keeps the focus
+        await super().action_submit()
+        if ok:
+            await self.run_action("app.focus_panel")
+
+    async def _on_key(self, event: events.Key) -> None:
+        if self.screen.focused is not self:  # set at once by set_focus (has_focus follows an event later)
+            event.stop()
+            event.prevent_default()
+            self.app.post_message(events.Key(event.key, event.character))
+            return
+        bindings = self._bindings.get_bindings_for_key(event.key) if not event.is_printable else []
+        if bindings:
+            event.stop()
+            event.prevent_default()
+            await self.run_action(bindings[0].action)
+            return
+        await super()._on_key(event)
 
 
 class MethodChoice(Widget, can_focus=True):
@@ -177,7 +213,7 @@ class ParamsPanel(Vertical):
         return self.query_one(f"#param-{which}")
 
     def focus_field(self, which: str) -> None:
-        self.field(which).focus()
+        self.screen.set_focus(self.field(which))  # at once: keys typed right after land in the field
 
     def set_defaults(self, method=None, omega=None, tolerance=None, max_sweeps=None) -> None:
         """Show the case's defaults (None leaves a field as it is)."""
@@ -233,8 +269,15 @@ class ParamsPanel(Vertical):
 
     # -- events ------------------------------------------------------------------------
     def _warn(self) -> None:
+        """One line under the fields (the whole sentence is the toast at start)."""
         text = self.warning()
-        self.query_one("#param-warning", Static).update(Text(text, style="bold yellow") if text else "")
+        short = ""
+        if text:
+            w = float(parse_omega(self.omega_text()))
+            verdict = "may diverge" if self.mu is None else ("diverges" if w > 2.0 / (1.0 + self.mu) else "is slower")
+            short = f"⚠ weight {w:g} > 1 {verdict}"
+        line = Text(short, style="bold yellow", no_wrap=True, overflow="ellipsis")
+        self.query_one("#param-warning", Static).update(line if short else "")
         self.set_class(bool(text), "-warning")
 
     def on_method_choice_changed(self, event: MethodChoice.Changed) -> None:
@@ -267,4 +310,3 @@ class ParamsPanel(Vertical):
             else:
                 self.omega_by_method.pop(self.method, None)
             self.post_message(self.OmegaSubmitted(self, event.value, value))
-        self.app.call_later(self.app.run_action, "focus_panel")

@@ -29,20 +29,18 @@ def banner_phase(phase: str, rec) -> tuple[str, str]:
     return f"{mark}{word} #{rec.id}{sweeps}" + ("…" if phase in ("preparing", "stopping", "finishing") else ""), style
 
 
-def to_go_text(rec) -> str:
-    """Sweeps and time left, and what will end the run."""
+def to_go_text(rec) -> tuple[str, str]:
+    """Time and sweeps left, and what will end the run (the limit that comes first)."""
     left = rec.to_go()
     if left.by == "":
-        return "—"
+        return "—", "—"
     parts = []
     if left.seconds is not None:
         parts.append(duration(left.seconds))
     if left.sweeps is not None:
         parts.append(f"{group(left.sweeps)} sw")
-    text = " · ".join(parts) or "—"
-    if left.by == "tolerance":
-        return f"{text} (tolerance)"
-    return f"{'≤ ' if not left.forecast else ''}{text} ({left.by})"
+    text = ("≤ " if not left.forecast else "") + (" · ".join(parts) or "—")
+    return text, left.by
 
 
 def run_message(rec) -> str:
@@ -57,6 +55,11 @@ def run_message(rec) -> str:
     left = rec.to_go()
     end = ""
     if left.by and left.sweeps is not None:
-        bound = "at most " if not left.forecast else "about "
-        end = f"; {bound}{group(left.sweeps)} sweeps to go, ended by the {left.by}"
+        n = group(left.sweeps)
+        if left.by == "tolerance":
+            end = f"; about {n} sweeps to go to the tolerance"
+        elif left.forecast:
+            end = f"; {n} sweeps to go: the {left.by} comes before the tolerance"
+        else:
+            end = f"; at most {n} sweeps to go (the {left.by})"
     return f"{rec.status}: estimated error {err}{unit}, tolerance {p.tolerance:.3g}{end}"

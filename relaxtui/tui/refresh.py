@@ -166,6 +166,14 @@ class Refresher:
                 return src.result.field, f"run {rec.id} preparing · from run {src.id}"
         return None, ""
 
+    def _no_frame_text(self, rec) -> str:
+        what = {"residual": "the residual of each cell", "update": "the update per sweep"}.get(self.view_mode, "the field")
+        if rec is None:
+            return f"no run yet: s starts one, and {what} shows here (v cycles the views)"
+        if rec.result is not None and self.view_mode == "update":
+            return "no update recorded for this run: switch to this view while a run sweeps"
+        return f"{what} shows after the first chunk of sweeps…"
+
     def show_owned_frame(self, vp=None) -> None:
         view = self.main.query_one(FieldView)
         vp = vp or view.viewport
@@ -175,8 +183,8 @@ class Refresher:
         field, label = self._owned_field(rec)
         if field is None:
             frame = rec.frames.get(self.view_mode) if rec is not None else None
-            if frame is None and self.view_mode == "update" and rec is not None and rec.result is not None:
-                view.set_placeholder("no update recorded: switch to this view while a run sweeps")
+            if frame is None:
+                view.set_placeholder(self._no_frame_text(rec))
             view.show_frame(frame, rec.status if rec is not None else "")
             return
         frame = self._plan(vp).frame(field, cursor=vp.cursor, label=label, viewport=vp, mode=self.view_mode)

@@ -129,7 +129,7 @@ class RunsPanel(Vertical):
         detail.update(text, layout=False)
 
     def focus_table(self) -> None:
-        self.table.focus()
+        self.screen.set_focus(self.table)
 
     def on_data_table_row_selected(self, event: DataTable.RowSelected) -> None:
         event.stop()

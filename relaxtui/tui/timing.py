@@ -51,13 +51,13 @@ class TimingPanel(Static):
         self.unit = ""
         self.note = "no run yet"
         self.note_lines = 2  # lines of the omega note shown (the app sets it by layout)
-        self.to_go = "—"
+        self.to_go = ("—", "—")
 
-    def show(self, progress, sweep_rate: float | None = None, note: str | None = None, to_go: str | None = None) -> None:
-        """Display ``progress`` (or a note when there is none); ``to_go`` is what is left, in words."""
+    def show(self, progress, sweep_rate: float | None = None, note: str | None = None, to_go=None) -> None:
+        """Display ``progress`` (or a note when there is none); ``to_go`` is (what is left, what ends the run)."""
         self.progress = progress
         self.sweep_rate = sweep_rate
-        self.to_go = to_go or "—"
+        self.to_go = to_go or ("—", "—")
         if note is not None:
             self.note = note
         self.update(self._table(), layout=False)  # the panel's height is fixed by the stylesheet
@@ -67,7 +67,7 @@ class TimingPanel(Static):
         if p is None:
             return Text(self.note, style="italic")
         t = Table.grid(padding=(0, 1), expand=True)
-        t.add_column(style="dim", no_wrap=True)
+        t.add_column(style="dim", no_wrap=True, min_width=8)
         t.add_column(no_wrap=True, overflow="ellipsis")
         rate = self.sweep_rate
         if rate is None and p.seconds > 0:
@@ -76,7 +76,9 @@ class TimingPanel(Static):
         t.add_row("rate", "—" if not rate else f"{group_float(rate)} sweeps/s")
         t.add_row("speed", f"{p.mcells_per_s:.1f} Mcell/s" if p.mcells_per_s else "—")
         t.add_row("elapsed", duration(p.seconds))
-        t.add_row("to go", self.to_go if p.status is None else "done")
+        t.add_row("to go", self.to_go[0] if p.status is None else "done")
+        if p.status is None:
+            t.add_row("ends by", self.to_go[1])
         t.add_row("factor", "—" if p.factor is None else f"ρ {p.factor:.6f}")
         t.add_row("ω", f"{p.omega:.4f}")
         t.add_row("residual", sci(p.residual, self.unit))

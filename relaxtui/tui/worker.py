@@ -170,10 +170,12 @@ def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False)
     sent = 0
     last_frame = -math.inf
     serial_done = -1
+    frame_sweeps = -1  # the sweep of the latest frame posted
 
     def snapshot() -> Frame | None:
-        nonlocal serial_done
+        nonlocal serial_done, frame_sweeps
         serial_done = control.view()[1]
+        frame_sweeps = run.progress.sweeps
         return snaps.frame(run, control, run.progress.sweeps)
 
     frame = snapshot()
@@ -192,7 +194,8 @@ def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False)
         if control.paused and not control.stopping and not cancelled():
             one = control.take_step()
             if not one:
-                if control.view()[1] != serial_done:
+                # a new view, or the field moved on since the last frame: the paused field, now
+                if control.view()[1] != serial_done or frame_sweeps != run.progress.sweeps:
                     frame = snapshot()
                     if frame is not None:
                         post(FrameReady(run_id, frame))
