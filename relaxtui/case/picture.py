@@ -387,13 +387,19 @@ def match(decoded: Decoded, declared: list[int], *, snap: bool = False, label: s
     if decoded.table is not None:
         where = {int(c): i for i, c in reversed(list(enumerate(declared)))}
         lut = np.array([where.get(int(c), UNMATCHED) for c in decoded.table], np.uint8)
-        codes = lut[decoded.index]
     else:
         lut = np.full((1 << 24) + 1, UNMATCHED, np.uint8)
         for i in range(len(declared) - 1, -1, -1):
             lut[int(declared[i])] = i
-        codes = lut[decoded.index]
-    if not (codes == UNMATCHED).any():
+    # the look-up in row strips: no full-size temporary beside the codes
+    codes = np.empty((rows, cols), np.uint8)
+    step = max(1, STRIP_PIXELS // max(cols, 1))
+    unmatched = False
+    for r in range(0, rows, step):
+        part = codes[r : r + step]
+        np.take(lut, decoded.index[r : r + step], out=part)
+        unmatched = unmatched or bool((part == UNMATCHED).any())
+    if not unmatched:
         return codes, 0
 
     flat = codes.reshape(-1)
