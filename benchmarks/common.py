@@ -93,21 +93,22 @@ def round_robin(fns: dict, repeats: int = REPEATS) -> dict:
 
 # --- memory ------------------------------------------------------------------------------
 
+def proc_field(path: str, key: str) -> int:
+    """A "Key:   N kB" line of a /proc file (status, meminfo) in bytes."""
+    with open(path) as f:
+        for line in f:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) * 1024
+    raise RuntimeError(f"no {key} in {path}")
+
+
 def peak_rss() -> int:
     """Peak resident set size of this process (VmHWM) in bytes."""
-    with open("/proc/self/status") as f:
-        for line in f:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) * 1024
-    raise RuntimeError("no VmHWM in /proc/self/status")
+    return proc_field("/proc/self/status", "VmHWM")
 
 
 def current_rss() -> int:
-    with open("/proc/self/status") as f:
-        for line in f:
-            if line.startswith("VmRSS:"):
-                return int(line.split()[1]) * 1024
-    raise RuntimeError("no VmRSS in /proc/self/status")
+    return proc_field("/proc/self/status", "VmRSS")
 
 
 def reset_peak_rss() -> bool:
@@ -307,3 +308,18 @@ def busy_processes() -> list[str]:
             except ValueError:
                 pass
     return busy
+
+
+def format_rows(rows: list[dict]) -> str:
+    """Plain-text table of benchmark rows (dicts with name, value, unit, detail, target, ok)."""
+    width = max(len(r["name"]) for r in rows)
+    lines = []
+    for r in rows:
+        mark = "" if r["ok"] is None else ("  ok" if r["ok"] else "  MISS")
+        target = f"  [{r['target']}]" if r["target"] else ""
+        lines.append(f"{r['name']:<{width}}  {str(r['value']):>10} {r['unit']:<8} {r['detail']}{target}{mark}")
+    return "\n".join(lines)
+
+
+def print_rows(rows: list[dict], as_json: bool = False) -> None:
+    print(json.dumps(rows, indent=1) if as_json else format_rows(rows))

@@ -306,16 +306,6 @@ def run(quick: bool = False, size: int | None = None) -> list[dict]:
     return rows
 
 
-def format_table(rows: list[dict]) -> str:
-    lines = []
-    width = max(len(r["name"]) for r in rows)
-    for r in rows:
-        mark = "" if r["ok"] is None else ("  ok" if r["ok"] else "  MISS")
-        target = f"  [{r['target']}]" if r["target"] else ""
-        lines.append(f"{r['name']:<{width}}  {str(r['value']):>10} {r['unit']:<8} {r['detail']}{target}{mark}")
-    return "\n".join(lines)
-
-
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="1024 x 1024 instead of 4096 x 4096")
@@ -323,7 +313,10 @@ def main(argv=None) -> int:
     p.add_argument("--json", action="store_true", help="print the rows as JSON")
     args = p.parse_args(argv)
     rows = run(args.quick, args.size)
-    print(json.dumps(rows, indent=1) if args.json else format_table(rows))
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from common import print_rows
+
+    print_rows(rows, args.json)
     return 0
 
 

@@ -114,15 +114,11 @@ def model_matrix(n: int):
 
 
 def homogeneous(case):
+    """The same operator with every held value, flux, ambient and source 0 (its answer is 0)."""
     from dataclasses import replace
 
-    regions = []
-    for r in case.regions:
-        kw = {key: 0.0 for key in ("value", "flux", "ambient") if getattr(r, key) is not None}
-        if r.kind == "interior":
-            kw["source"] = 0.0
-        regions.append(replace(r, **kw))
-    return replace(case, regions=tuple(regions))
+    keys = ("value", "flux", "ambient", "source")
+    return replace(case, regions=tuple(replace(r, **{k: 0.0 for k in keys if getattr(r, k) is not None}) for r in case.regions))
 
 
 # --- measurements -------------------------------------------------------------------------------
@@ -354,21 +350,10 @@ def run(quick: bool = False) -> list[dict]:
 
 
 def _available() -> int:
-    with open("/proc/meminfo") as f:
-        for line in f:
-            if line.startswith("MemAvailable:"):
-                return int(line.split()[1]) * 1024
-    return 8 << 30
+    sys.path.insert(0, str(HERE))
+    from common import proc_field
 
-
-def format_table(rows: list[dict]) -> str:
-    width = max(len(r["name"]) for r in rows)
-    lines = []
-    for r in rows:
-        mark = "" if r["ok"] is None else ("  ok" if r["ok"] else "  MISS")
-        target = f"  [{r['target']}]" if r["target"] else ""
-        lines.append(f"{r['name']:<{width}}  {str(r['value']):>10} {r['unit']:<8} {r['detail']}{target}{mark}")
-    return "\n".join(lines)
+    return proc_field("/proc/meminfo", "MemAvailable")
 
 
 def main(argv=None) -> int:
@@ -377,7 +362,10 @@ def main(argv=None) -> int:
     p.add_argument("--json", action="store_true", help="print the rows as JSON")
     args = p.parse_args(argv)
     rows = run(args.quick)
-    print(json.dumps(rows, indent=1) if args.json else format_table(rows))
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from common import print_rows
+
+    print_rows(rows, args.json)
     return 0
 
 

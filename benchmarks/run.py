@@ -13,6 +13,8 @@ starts one more child per measurement):
 5. startup    `relaxtui solve` on a tiny case (cold and warm numba cache), `relaxtui --help`
 6. memory     peak resident memory per cell of `relaxtui solve` on the large demo
 +  multigrid  benchmarks/multigrid.py, when that file exists
++  scale      benchmarks/scale.py: the rows of the scale issue (multigrid vs pyamg, set-up vs
+              cycles, the 16 383² picture, sweep rates vs the copy kernel, peak memory, auto ω share)
    kernels    benchmarks/kernels.py (the kernel developer's checks): only with --only kernels
 
 Timings are medians of 5 repeats after a warm-up, with min–max; where a single
@@ -39,10 +41,10 @@ sys.path.insert(0, str(HERE))
 
 import common  # noqa: E402
 
-SECTIONS = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "kernels", "multigrid")
+SECTIONS = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "kernels", "multigrid", "scale")
 MODULES = {"roofline": "roofline", "tolerance": "tolerance", "scaling": "scaling", "threads": "threads",
            "startup": "startup", "memory": "footprint"}
-DEFAULT = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "multigrid")
+DEFAULT = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "multigrid", "scale")
 # benchmarks/kernels.py (its own 4096² speed table, memory and kernel-loading checks in a few dozen
 # subprocesses) repeats much of section 1 and takes minutes: run it with --only kernels.
 

@@ -122,12 +122,10 @@ def assemble(case):
 
 def scatter(x, index, case) -> np.ndarray:
     """The (rows, cols) field of a solution vector: fixed cells at their value, NaN outside the domain."""
-    field = np.full(index.shape, np.nan)
-    mask = index >= 0
-    field[mask] = x[index[mask]]
-    for n, region in enumerate(case.regions):
-        if region.kind == "fixed":
-            field[case.codes == n] = float(region.value)
+    held = np.array([r.kind == "fixed" for r in case.regions])
+    value = np.array([float(r.value) if r.kind == "fixed" else np.nan for r in case.regions])
+    field = np.where(held[case.codes], value[case.codes], np.nan)
+    field[index >= 0] = x[index[index >= 0]]
     return field
 
 

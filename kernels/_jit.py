@@ -11,6 +11,7 @@ struct of fields and stop LLVM from seeing through it).
 """
 
 import os
+import types
 
 # numba's OpenMP threading layer makes idle threads spin between parallel
 # regions by default. A sweep has one or two short regions, and on a small or
@@ -33,3 +34,19 @@ def kernel(fn=None, *, parallel=False, inline=False):
         return njit(parallel=parallel, inline="always" if inline else "never", **JIT_OPTIONS)(f)
 
     return wrap(fn) if fn is not None else wrap
+
+
+def serial_twin(parallel_kernel):
+    """The one-thread build of a ``parallel=True`` kernel, compiled from the same Python source.
+
+    ``prange`` runs as ``range``; the copy carries its own qualified name, so
+    numba's disk cache (keyed by name and byte code, not by the parallel flag)
+    keeps the two builds apart. Under ``NUMBA_DISABLE_JIT`` both are the
+    plain Python function.
+    """
+    f = getattr(parallel_kernel, "py_func", parallel_kernel)
+    g = types.FunctionType(f.__code__, f.__globals__, f.__name__ + "_one_thread", f.__defaults__, f.__closure__)
+    g.__qualname__ = f.__qualname__ + "_one_thread"
+    g.__module__ = f.__module__
+    g.__doc__ = f.__doc__
+    return njit(parallel=False, inline="never", **JIT_OPTIONS)(g)

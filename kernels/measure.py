@@ -11,6 +11,7 @@ from numba import prange
 from relaxtui.kernels._bits import abs_bits, from_bits
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.assemble import face_conductance, film_conductance
+from relaxtui.kernels.blocks import segment, span, wsum, wsum_of
 
 INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
 
@@ -18,7 +19,7 @@ INTERIOR, FIXED, OUTSIDE, FLUX, CONVECTION = 0, 1, 2, 3, 4
 @kernel(inline=True)
 def _residual_bulk(up, mid, dn, wn, ws, ww, we, q, out, write, mr):
     for k in range(up.shape[0]):
-        s = (((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]) + q
+        s = wsum(up, mid, dn, k, wn, ws, ww, we) + q
         r = s - mid[k + 1]
         if write:
             out[k] = r
@@ -30,7 +31,7 @@ def _residual_bulk(up, mid, dn, wn, ws, ww, we, q, out, write, mr):
 def _residual_mixed(up, mid, dn, crow, table, out, write, mr):
     for k in range(up.shape[0]):
         c = crow[k]
-        s = (((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]) + table[c, 4]
+        s = wsum_of(up, mid, dn, k, table, c)
         r = s - mid[k + 1]
         r = r if c != 0 else 0.0
         if write and c != 0:
@@ -50,16 +51,12 @@ def residual(u, cls, table, row_ptr, seg_start, seg_end, seg_class, out, write, 
     blk = np.zeros(nblk, dtype=np.int64)
     for b in prange(nblk):
         mr = 0
-        for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            up = u[i - 1]
-            mid = u[i]
-            dn = u[i + 1]
-            crow = cls[i]
+        lo, hi = span(b, n, nblk)
+        for i in range(1 + lo, 1 + hi):
+            up, mid, dn, crow = u[i - 1], u[i], u[i + 1], cls[i]
             orow = out[i - 1] if write else out[0]
             for s in range(row_ptr[i], row_ptr[i + 1]):
-                j0 = seg_start[s]
-                j1 = seg_end[s]
-                c = seg_class[s]
+                j0, j1, c = segment(seg_start, seg_end, seg_class, s)
                 o = orow[j0 - 1 : j1 - 1] if write else orow
                 if c > 0:
                     mr = _residual_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1],
@@ -73,14 +70,14 @@ def residual(u, cls, table, row_ptr, seg_start, seg_end, seg_class, out, write, 
 @kernel(inline=True)
 def _apply_bulk(up, mid, dn, out, wn, ws, ww, we):
     for k in range(out.shape[0]):
-        out[k] = ((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]
+        out[k] = wsum(up, mid, dn, k, wn, ws, ww, we)
 
 
 @kernel(inline=True)
 def _apply_mixed(up, mid, dn, out, crow, table):
     for k in range(out.shape[0]):
         c = crow[k]
-        out[k] = ((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]
+        out[k] = wsum(up, mid, dn, k, table[c, 0], table[c, 1], table[c, 2], table[c, 3])
 
 
 @kernel(parallel=True)
@@ -88,16 +85,11 @@ def jacobi_apply(x, out, cls, table, row_ptr, seg_start, seg_end, seg_class, nbl
     """out = J x on the unknowns (J: the weights, no right-hand side); out must be zero elsewhere on entry."""
     n = x.shape[0] - 2
     for b in prange(nblk):
-        for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
-            up = x[i - 1]
-            mid = x[i]
-            dn = x[i + 1]
-            orow = out[i]
-            crow = cls[i]
+        lo, hi = span(b, n, nblk)
+        for i in range(1 + lo, 1 + hi):
+            up, mid, dn, orow, crow = x[i - 1], x[i], x[i + 1], out[i], cls[i]
             for s in range(row_ptr[i], row_ptr[i + 1]):
-                j0 = seg_start[s]
-                j1 = seg_end[s]
-                c = seg_class[s]
+                j0, j1, c = segment(seg_start, seg_end, seg_class, s)
                 if c > 0:
                     _apply_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], orow[j0:j1], table[c, 0], table[c, 1], table[c, 2], table[c, 3])
                 else:

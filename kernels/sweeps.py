@@ -30,27 +30,7 @@ after a sweep whose largest update is not finite. The maxima are integer
 reductions over bit patterns (:mod:`relaxtui.kernels._bits`), computed in the
 same loop as the update.
 
-Choices, and what was measured to make them (4096 x 4096 uniform grid, this
-project's 2-core Sapphire Rapids machine, shared with other work, so +-15 %):
-- Bulk runs with broadcast weights instead of a table gather per cell: a
-  gather per cell ran at about 550 Mcell/s on 2 threads, broadcast weights at
-  about 1600 (as fast as an unmasked 5-point loop); checking 64-cell chunks
-  for a single class at run time reached about 1300. Row segments are built
-  once, so the sweep pays nothing per cell to find its weights.
-- Maximum reductions as integer max over bit patterns (``_bits``): a float
-  ``max`` reduction keeps LLVM from vectorising the loop without fastmath
-  (about 780 Mcell/s instead of 1600).
-- Loops run over slices starting at a constant 0: with a loop start read from
-  memory numba's negative-index wraparound turned every load into a gather
-  (about 1000 instead of 1600 Mcell/s).
-- Red-black: the whole segment's s into a scratch row, then a blend that
-  writes only the colour's cells, beat both a half-width scratch row and an
-  in-place stride-2 loop (about 1090 vs 850 and 780 Mcell/s on 2 threads).
-- Lexicographic: the plain row-by-row loop waits on one dependency chain per
-  cell (about 200-280 Mcell/s); 4 rows on a skewed front with the short
-  west-neighbour chain reached about 350-390. Column strips for cache
-  blocking made Jacobi slower (460 vs 630 Mcell/s on one thread), so rows
-  are swept whole.
+Why the kernels are shaped this way, with the measurements: docs/design/kernels.md.
 
 Coarse grids whose weights vary per cell (multigrid) use the same kernels:
 give every cell its own class (``cls`` uint32 = 1 + cell number, ``table`` one
@@ -61,7 +41,8 @@ row per cell, the right-hand side in column 4) and build segments with
 import numpy as np
 from numba import prange
 from relaxtui.kernels._bits import abs_bits, from_bits
-from relaxtui.kernels._jit import kernel
+from relaxtui.kernels._jit import kernel, serial_twin
+from relaxtui.kernels.blocks import copy_into, segment, span, wsum, wsum_of
 
 RED, BLACK = 0, 1  # colour of cell (i, j) is (i + j) & 1, padded or not (the padding shifts both by 1)
 
@@ -74,15 +55,21 @@ RED, BLACK = 0, 1  # colour of cell (i, j) is (i + j) & 1, padded or not (the pa
 
 
 @kernel(inline=True)
+def _jacobi_cell(u, s, omega, live, mu, mr):
+    """(new value, running maxima) of one Jacobi update from the stencil sum s; a cell that is not
+    live keeps u and counts a residual of 0."""
+    r = s - u
+    v = u + omega * r
+    v = v if live else u
+    r = r if live else 0.0
+    return v, max(mu, abs_bits(v - u)), max(mr, abs_bits(r))
+
+
+@kernel(inline=True)
 def _jacobi_bulk(up, mid, dn, out, wn, ws, ww, we, q, omega, mu, mr):
     for k in range(out.shape[0]):
-        u = mid[k + 1]
-        s = (((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]) + q
-        r = s - u
-        v = u + omega * r
+        v, mu, mr = _jacobi_cell(mid[k + 1], wsum(up, mid, dn, k, wn, ws, ww, we) + q, omega, True, mu, mr)
         out[k] = v
-        mu = max(mu, abs_bits(v - u))
-        mr = max(mr, abs_bits(r))
     return mu, mr
 
 
@@ -90,30 +77,22 @@ def _jacobi_bulk(up, mid, dn, out, wn, ws, ww, we, q, omega, mu, mr):
 def _jacobi_mixed(up, mid, dn, out, crow, table, omega, mu, mr):
     for k in range(out.shape[0]):
         c = crow[k]
-        u = mid[k + 1]
-        s = (((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]) + table[c, 4]
-        r = s - u
-        v = u + omega * r
-        live = c != 0
-        v = v if live else u
-        r = r if live else 0.0
+        v, mu, mr = _jacobi_cell(mid[k + 1], wsum_of(up, mid, dn, k, table, c), omega, c != 0, mu, mr)
         out[k] = v
-        mu = max(mu, abs_bits(v - u))
-        mr = max(mr, abs_bits(r))
     return mu, mr
 
 
 @kernel(inline=True)
 def _stencil_bulk(up, mid, dn, t, wn, ws, ww, we, q):
     for k in range(t.shape[0]):
-        t[k] = (((wn * up[k] + ws * dn[k]) + ww * mid[k]) + we * mid[k + 2]) + q
+        t[k] = wsum(up, mid, dn, k, wn, ws, ww, we) + q
 
 
 @kernel(inline=True)
 def _stencil_mixed(up, mid, dn, t, crow, table):
     for k in range(t.shape[0]):
         c = crow[k]
-        t[k] = (((table[c, 0] * up[k] + table[c, 1] * dn[k]) + table[c, 2] * mid[k]) + table[c, 3] * mid[k + 2]) + table[c, 4]
+        t[k] = wsum_of(up, mid, dn, k, table, crow[k])
 
 
 @kernel(inline=True)
@@ -147,15 +126,9 @@ def _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, o
     mu = 0
     mr = 0
     for i in range(r0, r1):
-        up = src[i - 1]
-        mid = src[i]
-        dn = src[i + 1]
-        out = dst[i]
-        crow = cls[i]
+        up, mid, dn, out, crow = src[i - 1], src[i], src[i + 1], dst[i], cls[i]
         for s in range(row_ptr[i], row_ptr[i + 1]):
-            j0 = seg_start[s]
-            j1 = seg_end[s]
-            c = seg_class[s]
+            j0, j1, c = segment(seg_start, seg_end, seg_class, s)
             if c > 0:
                 mu, mr = _jacobi_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], out[j0:j1],
                                       table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], omega, mu, mr)
@@ -167,14 +140,9 @@ def _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, o
 @kernel
 def _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, colour, tmp, mu):
     """Update the cells of one colour in row i (in place): s for the whole segment into tmp, then blend."""
-    up = u[i - 1]
-    mid = u[i]
-    dn = u[i + 1]
-    crow = cls[i]
+    up, mid, dn, crow = u[i - 1], u[i], u[i + 1], cls[i]
     for s in range(row_ptr[i], row_ptr[i + 1]):
-        j0 = seg_start[s]
-        j1 = seg_end[s]
-        c = seg_class[s]
+        j0, j1, c = segment(seg_start, seg_end, seg_class, s)
         t = tmp[: j1 - j0]
         parity = (colour + i + j0) & 1  # cell j0 + k has the colour iff (k & 1) == parity
         if c > 0:
@@ -231,10 +199,8 @@ def jacobi(u, tmp, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sw
     for it in range(sweeps):
         src, dst = (u, tmp) if it % 2 == 0 else (tmp, u)
         for b in prange(nblk):
-            mu, mr = _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, omega,
-                                  1 + b * n // nblk, 1 + (b + 1) * n // nblk)
-            blk_u[b] = mu
-            blk_r[b] = mr
+            lo, hi = span(b, n, nblk)
+            blk_u[b], blk_r[b] = _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1 + lo, 1 + hi)
         updates[it] = from_bits(blk_u.max())
         residuals[it] = from_bits(blk_r.max())
         done = it + 1
@@ -242,7 +208,8 @@ def jacobi(u, tmp, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sw
             break
     if done % 2 == 1:
         for b in prange(nblk):
-            for i in range(1 + b * n // nblk, 1 + (b + 1) * n // nblk):
+            lo, hi = span(b, n, nblk)
+            for i in range(1 + lo, 1 + hi):
                 for s in range(row_ptr[i], row_ptr[i + 1]):
                     u[i, seg_start[s] : seg_end[s]] = tmp[i, seg_start[s] : seg_end[s]]
     return done
@@ -264,13 +231,11 @@ def sor_red_black(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 
     done = 0
     for it in range(sweeps):
         for b in prange(nblk):
-            tmp = np.empty(width)
-            blk[b] = _rb_block_inner(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega,
-                                     1 + b * n // nblk, 1 + (b + 1) * n // nblk, tmp)
+            lo, hi = span(b, n, nblk)
+            blk[b] = _rb_block_inner(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1 + lo, 1 + hi, np.empty(width))
         for b in prange(nblk):
-            tmp = np.empty(width)
-            mu = _rb_block_edges(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega,
-                                 1 + b * n // nblk, 1 + (b + 1) * n // nblk, tmp)
+            lo, hi = span(b, n, nblk)
+            mu = _rb_block_edges(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1 + lo, 1 + hi, np.empty(width))
             blk[b] = max(blk[b], mu)
         updates[it] = from_bits(blk.max())
         residuals[it] = updates[it] / omega
@@ -280,41 +245,22 @@ def sor_red_black(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 
     return done
 
 
-@kernel
-def sor_red_black_serial(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sweeps, updates, residuals):
-    """The same sweeps as :func:`sor_red_black` on one thread, without parallel start-up (small grids)."""
-    n = u.shape[0] - 2
-    tmp = np.empty(u.shape[1])
-    done = 0
-    for it in range(sweeps):
-        mu = _rb_block_inner(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1, n + 1, tmp)
-        mu = max(mu, _rb_block_edges(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1, n + 1, tmp))
-        updates[it] = from_bits(mu)
-        residuals[it] = updates[it] / omega
-        done = it + 1
-        if not np.isfinite(updates[it]):
-            break
-    return done
+# One-thread builds of the same two functions (small grids: no parallel start-up), with
+# the call shape of the parallel ones less ``nblk``.
+_jacobi_one_thread = serial_twin(jacobi)
+_sor_red_black_one_thread = serial_twin(sor_red_black)
 
 
 @kernel
 def jacobi_serial(u, tmp, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sweeps, updates, residuals):
-    """The same sweeps as :func:`jacobi` on one thread (small grids)."""
-    n = u.shape[0] - 2
-    done = 0
-    for it in range(sweeps):
-        src, dst = (u, tmp) if it % 2 == 0 else (tmp, u)
-        mu, mr = _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, 1, n + 1)
-        updates[it] = from_bits(mu)
-        residuals[it] = from_bits(mr)
-        done = it + 1
-        if not np.isfinite(updates[it]):
-            break
-    if done % 2 == 1:
-        for i in range(1, n + 1):
-            for s in range(row_ptr[i], row_ptr[i + 1]):
-                u[i, seg_start[s] : seg_end[s]] = tmp[i, seg_start[s] : seg_end[s]]
-    return done
+    """The sweeps of :func:`jacobi` on one thread (its Python source built without ``parallel``)."""
+    return _jacobi_one_thread(u, tmp, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sweeps, updates, residuals, 1)
+
+
+@kernel
+def sor_red_black_serial(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sweeps, updates, residuals):
+    """The sweeps of :func:`sor_red_black` on one thread (its Python source built without ``parallel``)."""
+    return _sor_red_black_one_thread(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, sweeps, updates, residuals, 1)
 
 
 GROUP = 4  # rows a lexicographic sweep advances together
@@ -358,13 +304,4 @@ def sor_lexicographic(u, cls, table, omega, sweeps, updates, residuals):
     return done
 
 
-@kernel(parallel=True)
-def copy_kernel(src, dst, nblk):
-    """dst[...] = src, row blocks in parallel: the bandwidth yardstick of the benchmarks."""
-    n = src.shape[0]
-    for b in prange(nblk):
-        for i in range(b * n // nblk, (b + 1) * n // nblk):
-            a = src[i]
-            o = dst[i]
-            for j in range(a.shape[0]):
-                o[j] = a[j]
+copy_kernel = copy_into  # dst[...] = src: the bandwidth yardstick of the benchmarks

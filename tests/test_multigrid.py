@@ -21,17 +21,7 @@ import numpy as np
 import pytest
 import scipy.ndimage
 import scipy.sparse as sp
-from cases import (
-    case_from_codes,
-    convection,
-    feature_case,
-    fixed,
-    flux,
-    interior,
-    make_case,
-    model_problem,
-    outside,
-)
+from cases import case_from_codes, convection, feature_case, fixed, flux, interior, make_case, model_problem, outside
 
 from relaxtui.case import load_case
 from relaxtui.errors import UsageError

@@ -233,11 +233,11 @@ def test_ill_posed_groups_are_refused():
     # a pocket of 2 x 3 interior cells walled off by outside cells, with only a flux face: no unique solution
     art = ["H....xxxxx", "H....x...x", "H....x...^", "H....xxxxx"]
     case = make_case(art, {"H": fixed("hot", 1.0), ".": interior(), "x": outside(), "^": flux("q", 1.0)})
-    with pytest.raises(CaseError, match=r"group of 6 interior cells \(one at row 1, column 6\)"):
+    with pytest.raises(CaseError, match=r"group of 6 interior cells \(one (?:of them )?at row 1, column 6\)"):
         Operator(case)
     # a single interior cell with no neighbour at all
     case = make_case(["xxx", "x.x", "xxx"], {".": interior(), "x": outside(), "H": fixed("h", 0.0)})
-    with pytest.raises(CaseError, match="group of 1 interior cell "):
+    with pytest.raises(CaseError, match="group of 1 interior cells? "):
         Operator(case)
     # touching a convection face is enough
     Operator(make_case(["x..~"], {".": interior(), "x": outside(), "~": convection("c", 1.0, 0.0)}))

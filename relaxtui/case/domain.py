@@ -146,10 +146,23 @@ def check_domain(codes: np.ndarray, regions: Sequence[Region], label: str) -> No
     """Refuse a domain without interior cells, or with a group of interior
     cells (4-connected) that touches no fixed or convection cell (the
     contract: such a group has no unique solution)."""
-    kinds = np.array([r.kind_code for r in regions], np.int8)
-    cell_kind = kinds[codes]
-    interior, touch = anchored_interior(cell_kind)
+    _check(codes, np.array([r.kind_code for r in regions], np.int8), label, need_interior=True)
+
+
+def check_anchored(codes: np.ndarray, kinds: np.ndarray, label: str) -> None:
+    """Refuse a group of interior cells that touches no fixed or convection cell.
+
+    The one anchoring check: the loader (through :func:`check_domain`) and the
+    operator call it. ``kinds`` holds the per-region kind integers.
+    """
+    _check(codes, np.asarray(kinds, np.int8), label, need_interior=False)
+
+
+def _check(codes: np.ndarray, kinds: np.ndarray, label: str, need_interior: bool) -> None:
+    interior, touch = anchored_interior(kinds[codes])
     if not interior.any():
+        if not need_interior:
+            return
         raise CaseError(f"{label}: no interior cells: no pixel belongs to a region of kind 'interior', so there is nothing to solve for")
     nbad, size, (r, c) = floating_groups(interior, touch)
     if nbad:

@@ -1,11 +1,18 @@
 """PNG pictures: decoding every flavour, and matching colours to regions.
 
-Decoding goes through Pillow (its decompression-bomb guard stays on) and ends
-in a :class:`Decoded` picture: an index per pixel plus a table of *packed
+Decoding goes through Pillow and ends in a :class:`Decoded` picture: an index per pixel plus a table of *packed
 colours*. A packed colour is a ``uint32``: ``r | g << 8 | b << 16`` for an
 opaque pixel, and :data:`TRANSPARENT` (bit 24 alone) for a pixel whose alpha
 is 0, whatever its RGB. Matching then works on the few distinct colours, not
 on each pixel, so a 4096 x 4096 picture takes a fraction of a second.
+
+Size limit: Pillow's default decompression-bomb guard (about 179 M pixels) is
+replaced by this module's own (:func:`_guard`): a picture is refused when its
+declared pixels are more than its compressed bytes could hold (deflate packs
+at most about 1032:1) or when decoding them would not fit the available
+memory; a limit set on ``PIL.Image.MAX_IMAGE_PIXELS`` by the user still holds.
+Large palette and grey pictures are copied out of Pillow in row strips, so a
+decode holds Pillow's buffer and the index array, about 2 bytes per pixel.
 
 Flavours (the contract, ../shared/case-format.md "The picture"):
 
@@ -24,6 +31,7 @@ Flavours (the contract, ../shared/case-format.md "The picture"):
 from __future__ import annotations
 
 import struct
+import threading
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -38,6 +46,12 @@ MAX_REGIONS = 255
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 LIST_LIMIT = 20  # unmatched colours listed one by one in an error message
 _SNAP_CHUNK = 4096  # unmatched colours compared with the declared ones per step (U x R x 3 int64)
+PILLOW_DEFAULT_LIMIT = 1024 * 1024 * 1024 // 4 // 3  # PIL.Image.MAX_IMAGE_PIXELS unless someone changed it
+DEFLATE_RATIO = 1032  # the most bytes one byte of a deflate stream can expand to (common practice, from memory)
+STRIP_PIXELS = 1 << 22  # pixels copied out of Pillow per strip for large pictures
+# Peak bytes per pixel while decoding a flavour (Pillow's buffer, the copies made here, the index).
+DECODE_BYTES = {0: 4, 2: 24, 3: 4, 4: 16, 6: 20}
+_LIMIT_LOCK = threading.Lock()
 
 
 def pack_rgb(r: int, g: int, b: int) -> int:
@@ -149,6 +163,62 @@ def read_header(path: Path, label: str | None = None) -> Header:
     return Header(int(width), int(height), int(depth), int(ctype))
 
 
+def _guard(path: Path, header: Header, label: str) -> None:
+    """Refuse a picture whose declared size its file cannot honestly hold, or whose decoding does not fit
+    the available memory (instead of Pillow's default pixel limit)."""
+    from relaxtui.solver import memory
+
+    channels = {0: 1, 2: 3, 3: 1, 4: 2, 6: 4}[header.color_type]
+    raw = header.height * (1 + (header.width * channels * header.bit_depth + 7) // 8)
+    size = path.stat().st_size
+    pixels = f"{header.width} x {header.height} pixels"
+    if raw > DEFLATE_RATIO * size + (1 << 20):
+        raise CaseError(f"{label}: picture refused by the decompression-bomb guard ({pixels} declared, more "
+                        f"than its {size} bytes of compressed data can hold)")
+    need = header.width * header.height * DECODE_BYTES[header.color_type] * (2 if header.bit_depth == 16 else 1)
+    have = memory.available_bytes()
+    if have is not None and need > have:
+        raise CaseError(f"{label}: picture refused by the decompression-bomb guard (decoding {pixels} needs about "
+                        f"{memory.format_bytes(need)}, more than the {memory.format_bytes(have)} of memory available)")
+
+
+class _Limit:
+    """While held: Pillow's default pixel limit lifted (this module's :func:`_guard` has run instead)."""
+
+    def __enter__(self):
+        from PIL import Image
+
+        _LIMIT_LOCK.acquire()
+        self.saved = Image.MAX_IMAGE_PIXELS
+        if self.saved == PILLOW_DEFAULT_LIMIT:
+            Image.MAX_IMAGE_PIXELS = None
+        return self
+
+    def __exit__(self, *exc):
+        from PIL import Image
+
+        if Image.MAX_IMAGE_PIXELS is None and self.saved == PILLOW_DEFAULT_LIMIT:
+            Image.MAX_IMAGE_PIXELS = self.saved
+        _LIMIT_LOCK.release()
+        return False
+
+
+def _rows(im) -> np.ndarray:
+    """``np.asarray(im)`` of a one-band picture, copied out in row strips for a large one (no
+    full-size bytes object on the way)."""
+    w, h = im.size
+    if w * h <= STRIP_PIXELS:
+        return np.asarray(im)
+    step = max(1, STRIP_PIXELS // w)
+    out = None
+    for r in range(0, h, step):
+        part = np.asarray(im.crop((0, r, w, min(h, r + step))))
+        if out is None:
+            out = np.empty((h,) + part.shape[1:], part.dtype)
+        out[r : r + part.shape[0]] = part
+    return out
+
+
 def _open(path: Path, label: str):
     """Image.open with the bomb guard's warning and error turned into CaseError."""
     from PIL import Image, UnidentifiedImageError
@@ -197,7 +267,8 @@ def _grey_table(transparent_index: int | None = None, size: int = 256) -> np.nda
 
 def _low_bytes_rgb16(path: Path, label: str) -> np.ndarray:
     """Low bytes of a 16-bit RGB picture's samples (Pillow keeps the high ones)."""
-    im = _open(path, label)
+    with _Limit():
+        im = _open(path, label)
     try:
         tile = im.tile[0]
         args = tile.args
@@ -208,7 +279,8 @@ def _low_bytes_rgb16(path: Path, label: str) -> np.ndarray:
         # The same zip stream read with the little-endian unpacker yields the
         # second (low) byte of each big-endian sample.
         im.tile = [tile._replace(args=args)]
-        _load(im, label)
+        with _Limit():
+            _load(im, label)
         return np.asarray(im)
     finally:
         im.close()
@@ -224,18 +296,25 @@ def decode(path: str | Path, label: str | None = None) -> Decoded:
     path = Path(path)
     label = label or str(path)
     header = read_header(path, label)
-    im = _open(path, label)
+    with _Limit() as limit:
+        if limit.saved == PILLOW_DEFAULT_LIMIT:
+            _guard(path, header, label)
+        im = _open(path, label)
+        try:
+            _load(im, label)
+        except CaseError:
+            im.close()
+            raise
     try:
-        _load(im, label)
         mode = im.mode
         info_t = im.info.get("transparency")
         if mode == "1":
-            index = np.asarray(im).astype(np.uint8)  # bool -> 0/1
+            index = _rows(im).astype(np.uint8)  # bool -> 0/1
             table = np.array([0, 0xFFFFFF], np.uint32)
             if info_t is not None:
                 table[1 if info_t else 0] = TRANSPARENT
         elif mode == "L":
-            index = np.asarray(im)
+            index = _rows(im)
             t = None
             if isinstance(info_t, int):
                 t = info_t
@@ -244,7 +323,7 @@ def decode(path: str | Path, label: str | None = None) -> Decoded:
                 t = t if 0 <= t <= 255 else None
             table = _grey_table(t)
         elif mode in ("I;16", "I;16B", "I;16L", "I"):
-            raw = np.asarray(im)
+            raw = _rows(im)
             index = (raw >> 8).astype(np.uint16)
             if isinstance(info_t, int):
                 index[raw == info_t] = 256
@@ -257,7 +336,7 @@ def decode(path: str | Path, label: str | None = None) -> Decoded:
             table = _grey_table(size=257)
             table[256] = TRANSPARENT
         elif mode == "P":
-            index = np.asarray(im)
+            index = _rows(im)
             pal = im.getpalette("RGB") or []
             pal = np.array(pal[: 256 * 3], np.uint32)
             pal = np.concatenate([pal, np.zeros(256 * 3 - len(pal), np.uint32)]).reshape(256, 3)
@@ -331,13 +410,19 @@ def match(decoded: Decoded, declared: list[int], *, snap: bool = False, label: s
     if decoded.table is not None:
         where = {int(c): i for i, c in reversed(list(enumerate(declared)))}
         lut = np.array([where.get(int(c), UNMATCHED) for c in decoded.table], np.uint8)
-        codes = lut[decoded.index]
     else:
         lut = np.full((1 << 24) + 1, UNMATCHED, np.uint8)
         for i in range(len(declared) - 1, -1, -1):
             lut[int(declared[i])] = i
-        codes = lut[decoded.index]
-    if not (codes == UNMATCHED).any():
+    # the look-up in row strips: no full-size temporary beside the codes
+    codes = np.empty((rows, cols), np.uint8)
+    step = max(1, STRIP_PIXELS // max(cols, 1))
+    unmatched = False
+    for r in range(0, rows, step):
+        part = codes[r : r + step]
+        np.take(lut, decoded.index[r : r + step], out=part)
+        unmatched = unmatched or bool((part == UNMATCHED).any())
+    if not unmatched:
         return codes, 0
 
     flat = codes.reshape(-1)

@@ -1,79 +1,15 @@
-"""Multigrid for relaxtui: work linear in the cells, built on the project's red-black SOR kernel.
+"""Multigrid for relaxtui: conjugate gradients preconditioned by one symmetric multigrid W-cycle.
 
-What it is
-----------
-Conjugate gradients on the contract's equations, each iteration preconditioned by one symmetric
-multigrid W-cycle. One iteration is one "sweep" of the driver (``MultigridStepper.sweep``); its
-update is the exact change of the field, |alpha p|, which the stopping rule turns into its bound.
-
-Levels (kernels in :mod:`relaxtui.kernels.multigrid`)
-- *Coarsening*: every other cell in each direction is kept (coarse cell (I, J) on fine cell
-  (2I, 2J)), a vertex-style choice on the cell grid, so the coarse grid of an R x C level is
-  ((R + 1) // 2) x ((C + 1) // 2) whatever the mask.
-- *Interpolation*: operator-dependent, by the collapsed-stencil rule of black-box multigrid
-  (Dendy 1982): a cell between two coarse cells takes weights from the conductances toward them;
-  sources that are not unknowns are dropped and their couplings folded in, so insulated holes keep
-  constants constant and held cells pull weights below 1, with no rule per case. A cell that would
-  get no weight (a one-cell channel on an odd row, an isolated cell) is *aggregated* into its own
-  2 x 2 block's coarse cell instead: nothing becomes invisible to the coarse levels (measured in
-  a prototype, V-cycles on the finned heat-sink demo: factor 0.99 without this, 0.45 with it and
-  the same coarsest size). Weights never sum above 1.
-- *Coarse operators*: Galerkin P^T A P of the unnormalised symmetric operator. Every source of a
-  fine cell lies in the 2 x 2 coarse cells from (i // 2, j // 2), so each coarse cell's support
-  stays within one fine cell of its centre and P^T A P is a 9-point stencil on every level, stored
-  as 5 planes (centre, E, S, SE, SW; the rest by symmetry): symmetric by construction, positive
-  definite (P has full rank), row sums equal to the restricted boundary terms where P reproduces
-  constants (tests/test_multigrid.py checks all three against scipy). A coarse cell whose 5 x 5
-  fine neighbourhood is one material takes a precomputed bulk stencil (same numbers, bit for bit;
-  set-up 2x faster on large uniform regions).
-- *Coarsest level*: at most 2048 unknowns, banded Cholesky. Problems of at most 64 unknowns are
-  solved directly on their own grid.
-
-The cycle
-- Finest level: the project's red-black SOR kernel (``Operator.sweep``), ω = 1.2 by default
-  (measured best of 1.0-1.4; ``omega`` is the smoothers' factor), 2 sweeps before the coarse
-  correction; after it, 2 sweeps of the *adjoint* order, black then red, from the same kernel run
-  on a copy of the field shifted by one row (every cell's colour flips). Coarse levels:
-  four-colour SOR over the 9-point planes, forward before and backward after. Below level 1 each
-  level is visited twice (W-cycle: about 13 % more work per iteration than a V-cycle at 2047², for
-  factors that stay put as the grid grows: plain cycles at ω 1, V 0.062 -> 0.073 from 255² to
-  2047², W 0.050 at both).
-  The cycle is therefore a symmetric positive definite preconditioner, as CG needs (tested).
-
-Why CG around the cycle (measured, homogeneous problems from a random start, factor per iteration)
-
-    case                                  plain W(2,1) cycle   CG + symmetric W(2,2)
-    model problem 255² .. 2047²           0.032 .. 0.033       0.024 .. 0.025
-    demo composite / electrodes / fins    0.065 / 0.065 / 0.089  0.029 / 0.029 / 0.026
-    demo large aquifer 4096²              0.167                0.069
-    noise mask, 35-45 % outside (40²-96²) 0.68 .. 0.98         0.13 .. 0.27
-    1000x materials in blobs, weakly held 0.98                 0.12
-
-A coarse grid that keeps one cell in four cannot give every small, highly conducting island or
-one-cell fragment its own coarse unknown; the plain cycle then crawls on such pictures. CG picks
-up the few modes the hierarchy misses. An iteration costs 19 red-black sweeps' time against 12 for
-a plain W(2,1) cycle (2047², one thread), about what the better factor gains back on easy cases
-(both need about 7 iterations to 1e-6 on the model problem), so CG is the default everywhere;
-``krylov=False`` gives the plain cycle.
-
-Stopping
-- CG's steps fall by 30x or more per iteration and steadily (monotone in the A-norm); the stopping
-  rule is asked (``rule_options``) for a rate window of 2 and no running maximum, and the driver
-  for one iteration per chunk (``max_chunk``): at most 5 iterations before the first bound, none
-  spent between checks. Honesty checked against spsolve from 1e-2 to 1e-8 on the model problem,
-  two materials, random masks and a demo (tests/test_multigrid.py).
-
-Memory, per cell of the picture, beyond the operator's 17 B (field, classes, output copy): the
-coarse levels about 27 B (level 1 holds 8 planes of a quarter of the cells), CG's work field and
-direction 16 B, the shifted class codes 1 B: 61 B held against red-black SOR's 17 B. Peak resident
-memory of a whole solve of the 4096² demo: 1.24x red-black SOR's (whose Jacobi-radius estimate
-needs several field-sized vectors), since the hierarchy is released before the report is built.
-
-Measured on the shared 2-core machine (benchmarks/multigrid.py; timings vary 2x with others' load):
-time to a true error of 1e-6 on the model problem, assembly + set-up + iterations, 7 iterations at
-every size: 2047² 1.4 s (pyamg Ruge-Stuben + CG at its best iteration count 12.8 s, spsolve 139 s),
-4095² 6.6 s (pyamg 54.5 s; spsolve does not fit in 17 GiB); time grows as cells^1.08 from 511² to
-4095².
+One CG iteration is one "sweep" of the driver (:class:`MultigridStepper`); its update is the
+exact change of the field, |alpha p|, which the stopping rule turns into its bound. Levels keep
+every other cell in each direction; interpolation follows the collapsed-stencil rule of
+black-box multigrid (Dendy 1982), with cells that would get no weight aggregated into their
+block; coarse operators are Galerkin products P^T A P, 9-point on every level (kernels in
+:mod:`relaxtui.kernels.multigrid`); the coarsest level (at most ``COARSEST_UNKNOWNS`` unknowns)
+is solved by banded Cholesky. The finest level is smoothed by the project's red-black SOR
+kernel (backward, black then red, after the correction), coarse levels by four-colour SOR.
+The design, the alternatives and their measurements: docs/design/multigrid.md
+(``benchmarks/multigrid.py`` regenerates them).
 """
 
 from __future__ import annotations

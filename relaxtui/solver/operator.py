@@ -35,7 +35,7 @@ Assembly (:mod:`relaxtui.kernels.assemble`) is compiled and parallel: bulk
 cells (all 5 regions equal) take their region's class at once; the others are
 keyed, the distinct keys sorted, and each such cell finds its class by binary
 search. Every 4-connected group of interior cells is checked for a fixed or
-convection face (union-find over horizontal runs).
+convection face by the loader's check (:func:`relaxtui.case.domain.check_anchored`).
 
 Numba is imported only when an Operator is built.
 """
@@ -46,6 +46,7 @@ import math
 
 import numpy as np
 
+from relaxtui.case.domain import check_anchored
 from relaxtui.case.model import CONVECTION, FIXED, FLUX, INTERIOR, Case
 from relaxtui.errors import CaseError, UsageError
 from relaxtui.solver.methods import METHODS
@@ -109,7 +110,7 @@ class Operator:
 
         from relaxtui.kernels import assemble
 
-        self._check_anchored(assemble)
+        check_anchored(self.codes, self.kind, str(case.path or case.mask_path))
         self._assemble(assemble)
         self._scratch = None
         self._radius = None
@@ -145,14 +146,6 @@ class Operator:
                 self.ambient[i] = _finite(r.ambient, f"{where}: ambient")
             elif r.kind != "outside":
                 raise CaseError(f"{where}: unknown kind {r.kind!r}")
-
-    def _check_anchored(self, assemble) -> None:
-        size, row, col = assemble.unanchored_group(self.codes, self.interior, self.kind)
-        if size:
-            raise CaseError(
-                f"a group of {int(size)} interior cell{'s' if size != 1 else ''} (one at row {int(row)}, column {int(col)}) "
-                "touches no fixed or convection face, so its field is not determined"
-            )
 
     def _assemble(self, assemble) -> None:
         rows, cols = self.shape
