@@ -42,7 +42,7 @@ def _sigint_to(event: threading.Event):
 
 def _default_outputs(args, case):
     """Paths of field, report and history: the ones given, else next to the current folder."""
-    given = [args.out, args.report, args.history, args.picture, args.vtk, args.bundle]
+    given = [args.out, args.report, args.history, args.picture, args.vtk, args.bundle, getattr(args, "probes", None)]
     if any(p is not None for p in given):
         return args.out, args.report, args.history
     stem = case.name
@@ -55,7 +55,13 @@ def run(args) -> int:
 
     case = load_case(args.case)
     out, report_path, history_path = _default_outputs(args, case)
-    check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
+    probes_path = getattr(args, "probes", None)
+    if probes_path is not None and not case.probes:
+        from relaxtui.errors import UsageError
+
+        raise UsageError(f"--probes {probes_path}: the case declares no [[probe]] to record")
+    check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle,
+                  probes=probes_path)
     initial = None
     if args.initial is not None:
         from relaxtui.output.fields import load_field
@@ -85,7 +91,7 @@ def run(args) -> int:
 def _write_all(result, args, out, report_path, history_path) -> list[Path]:
     from relaxtui.solver.driver import write_outputs
 
-    written = write_outputs(result, out=out, report=report_path, history=history_path)
+    written = write_outputs(result, out=out, report=report_path, history=history_path, probes=getattr(args, "probes", None))
     if args.picture or args.vtk or args.bundle:
         from relaxtui.output import fields, pictures
 
@@ -127,6 +133,8 @@ def _summary(result, written) -> None:
         t.add_row("  sources", _g(r["source_total"], 6))
         t.add_row("  imbalance", _g(r["imbalance"], 3))
         con.print(t)
+    if r.get("probes"):
+        con.print("  probes: " + ", ".join(f"{name} {_g(v, 6)}{unit}" for name, v in r["probes"].items()))
     for p in written:
         con.print(f"wrote {p}")
     con.print(f"[dim]{r['caution']}[/]")

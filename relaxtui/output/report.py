@@ -88,6 +88,10 @@ def build_report(run, field: np.ndarray) -> dict:
     from relaxtui.output.flux import peak_flux
 
     report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
+    from relaxtui.output.probes import ProbeSet  # case format v1.1: the value at each [[probe]]
+
+    report["probes"] = {name: _f(v) for name, v in ProbeSet(case).as_dict(field).items()}
+    report["geometry"] = getattr(case, "geometry", "planar")
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION

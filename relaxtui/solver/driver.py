@@ -114,6 +114,7 @@ class SolveResult:
     report: dict
     history: History
     case: model.Case
+    probes: object = None  # relaxtui.output.probes.ProbeLog of a case with probes (case format v1.1)
 
 
 def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
@@ -172,6 +173,11 @@ class Run:
         self._initial = initial
         self._continue = field
         self.history = History()
+        self.probe_log = None  # probe values after every chunk (case format v1.1 probes)
+        if getattr(case, "probes", ()):
+            from relaxtui.output.probes import ProbeLog
+
+            self.probe_log = ProbeLog(case)
         self._cancel = threading.Event()
         self._prepared = False
         self._u = None
@@ -354,6 +360,8 @@ class Run:
                 secs = self.seconds - dt + dt * np.arange(1, k + 1) / k
                 errs = self.rule.recent_errors(k)
                 self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
+                if self.probe_log is not None:
+                    self.probe_log.record(self.rule.sweeps, self.seconds, self._u)
             decision = self.rule.decide(self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
                 decision = replace(decision, status=stopping.DIVERGED)
@@ -480,7 +488,7 @@ class Run:
 
         field = self.operator.finish(self._u)
         report = build_report(self, field)
-        return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case)
+        return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case, probes=self.probe_log)
 
 
 def _group(n: int) -> str:
@@ -532,16 +540,22 @@ def check_outputs(**paths) -> None:
             check_target(path, what)
 
 
-def write_outputs(result: SolveResult, *, out=None, report=None, history=None) -> list[Path]:
-    """Write the field (.npy), report (.json) and history (.csv) atomically."""
+def write_outputs(result: SolveResult, *, out=None, report=None, history=None, probes=None) -> list[Path]:
+    """Write the field (.npy), report (.json), history (.csv) and probe log (.csv, v1.1) atomically."""
     from relaxtui.output.atomic import write_json, write_npy
 
-    check_outputs(field=out, report=report, history=history)
+    check_outputs(field=out, report=report, history=history, probes=probes)
     written = []
     if out is not None:
         written.append(write_npy(out, result.field, "field"))
     if history is not None:
         written.append(result.history.to_csv(history))
+    if probes is not None:
+        if result.probes is None:
+            from relaxtui.errors import UsageError
+
+            raise UsageError("--probes: the case declares no [[probe]]")
+        written.append(result.probes.to_csv(probes))
     if report is not None:
         written.append(write_json(report, result.report, "report"))
     return written
