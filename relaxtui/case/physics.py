@@ -318,3 +318,33 @@ def check_case_extras(regions, codes, contacts, probes, geometry, maps, cell_siz
         lo, hi = check_map(values, codes == index[m.region], m.key, f"{where}: region {m.region!r}: {m.key}_map {m.file!r}")
         out_maps.append(CoefficientMap(region=m.region, key=m.key, file=m.file, values=values, low=lo, high=hi, line=m.line))
     return tuple(out_contacts), tuple(probes), tuple(out_maps)
+
+
+# ---------------------------------------------------------------------------
+# Per-cell coefficients (for flux fields, exports and the UI)
+
+
+def cell_coefficients(case) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(kx, ky, s) per cell, (rows, cols) float64: an interior cell's conductivity in x and y and its
+    source, from its region or the region's maps; NaN on every other cell."""
+    codes = case.codes
+    n = len(case.regions)
+    kx = np.full(n, np.nan)
+    ky = np.full(n, np.nan)
+    s = np.full(n, np.nan)
+    index = {}
+    for i, r in enumerate(case.regions):
+        index[r.name] = i
+        if r.kind == "interior":
+            kx[i] = 1.0 if r.conductivity is None else float(r.conductivity)
+            ky[i] = kx[i] if getattr(r, "conductivity_y", None) is None else float(r.conductivity_y)
+            s[i] = float(r.source)
+    kx, ky, s = kx[codes], ky[codes], s[codes]
+    for m in getattr(case, "maps", ()):
+        cells = codes == index[m.region]
+        if m.key == "conductivity":
+            kx[cells] = m.values[cells]
+            ky[cells] = m.values[cells]
+        else:
+            s[cells] = m.values[cells]
+    return kx, ky, s

@@ -102,7 +102,8 @@ def _write_all(result, args, out, report_path, history_path) -> list[Path]:
             fields.write_vtk(args.vtk, result.field, result.case)
             written.append(Path(args.vtk))
         if args.bundle:
-            fields.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history, report=result.report)
+            fields.write_bundle(args.bundle, field=result.field, case=result.case, history=result.history, report=result.report,
+                                probes=result.probes)
             written.append(Path(args.bundle))
     return written
 
