@@ -499,7 +499,8 @@ def load_case(path: str | Path) -> Case:
     if mask_path.is_dir():
         raise CaseError(f"{mask_label}: is a folder, not a PNG picture")
     header = picture.read_header(mask_path, mask_label)
-    check_memory(header.height, header.width, solver.method, len(regions), mask_label)
+    per_cell = geometry == "axisymmetric" or any(k in f for f, _ in parsed for k in physics.MAP_KEYS)
+    check_memory(header.height, header.width, solver.method, len(regions), mask_label, per_cell=per_cell)
     decoded = picture.decode(mask_path, mask_label)
     codes, snapped = picture.match(decoded, [f["packed"] for f, _ in parsed], snap=snap, label=mask_label)
     del decoded
@@ -532,9 +533,9 @@ def load_case(path: str | Path) -> Case:
     )
 
 
-def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str) -> None:
+def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str, per_cell: bool = False) -> None:
     """Refuse a picture whose solve would need more memory than is available."""
-    need = memory.estimate_solve_bytes(rows, cols, method, materials)
+    need = memory.estimate_solve_bytes(rows, cols, method, materials, per_cell=per_cell)
     have = memory.available_bytes()
     if have is not None and need > have:
         raise CaseError(

@@ -114,7 +114,8 @@ def describe(case: Case, console=None) -> None:
     unknowns = int(counts[kinds == INTERIOR].sum())
     faces, border = faces_with_interior(case)
     method = case.solver.method or DEFAULT_METHOD
-    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions))
+    per_cell = bool(getattr(case, "maps", ())) or getattr(case, "geometry", "planar") == "axisymmetric"
+    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions), per_cell=per_cell)
     have = memory.available_bytes()
     h = case.cell_size
     unit = case.unit

@@ -42,7 +42,14 @@ TWO_BUFFER_METHODS = ("jacobi",)
 HIERARCHY_METHODS = ("multigrid",)
 
 
-def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1) -> int:
+# Case format v1.1 per-cell path (coefficient maps, axisymmetry; relaxtui.solver.assembly): a uint32
+# class code (3 B more than uint8), a table row (40 B) and a diagonal (8 B) per cell, 8 B per value of
+# up to two maps, and the numpy assembly's transient peak above what it keeps. Measured with tracemalloc
+# on the 1024² model problem with one map: 52 B per cell held, 183 B per cell at the assembly's peak.
+PER_CELL_PATH_BYTES_PER_CELL = 3 + 40 + 8 + 16 + 128
+
+
+def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False) -> int:
     """Bytes a solve of a ``rows`` x ``cols`` picture is expected to need.
 
     Parameters
@@ -54,6 +61,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         default red-black SOR (one field buffer).
     materials : int
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
+    per_cell : bool
+        The case takes the v1.1 per-cell path (coefficient maps or axisymmetric geometry).
 
     Returns
     -------
@@ -74,6 +83,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         total += MULTIGRID_BYTES_PER_CELL * cells
     total += OUTPUT_BYTES_PER_CELL * cells
     total += PICTURE_BYTES_PER_CELL * cells
+    if per_cell:
+        total += PER_CELL_PATH_BYTES_PER_CELL * cells
     return int(total)
 
 
