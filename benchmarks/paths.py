@@ -7,7 +7,9 @@ The model problem (n x n unknowns in a one-cell fixed frame) is assembled three 
 * ``class-v11``: the same case with ``conductivity = [1.0, 1.0]`` (orthotropic, equal): the v1.1
   class path (same classes, table recomputed), which must sweep as fast as v1;
 * ``per-cell``: the same case with a constant conductivity map: every unknown its own class
-  (uint32 code, one table row of 40 B and a diagonal of 8 B per cell), mixed segments only.
+  (uint32 code, one table row of 40 B and a diagonal of 8 B per cell), mixed segments only;
+* ``axisym``: the same case as axisymmetric (no map): one class per (v1 class, column), a
+  table of about one row per column read from cache, mixed segments with 2-byte codes.
 
 For each it times ``sweeps`` sweeps of jacobi, red-black-sor and sor (median of ``repeats``
 calls after a warm-up call, round robin so the machine's load hits all alike) and one multigrid
@@ -48,6 +50,7 @@ def cases(n: int):
         "v1": base,
         "class-v11": build_case(base.codes, ortho, cell_size=base.cell_size),
         "per-cell": build_case(base.codes, regions, cell_size=base.cell_size, maps=[kmap]),
+        "axisym": build_case(base.codes, regions, cell_size=base.cell_size, geometry="axisymmetric"),
     }
 
 

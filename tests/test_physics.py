@@ -340,8 +340,8 @@ def test_thiem_steady_drawdown_around_a_well():
     # confined aquifer of transmissivity T pumped at Q, the steady head between the well (radius
     # r_w, head h_w) and a boundary of fixed head h_0 at R is h(r) = h_w + (h_0 - h_w) ln(r/r_w) / ln(R/r_w),
     # and Q = 2 pi T (h_0 - h_w) / ln(R / r_w). Discretely, ln is replaced by the midpoint sums.
-    h, conductivity, b = 0.5, 2e-4, 12.0  # cell 0.5 m, hydraulic conductivity m/s, aquifer thickness m
-    jw, jr = 1, 120  # the well's columns 0..jw are held at h_w; column jr is the outer boundary
+    h, conductivity, b = 1.0, 2e-4, 12.0  # cell 1 m, hydraulic conductivity m/s, aquifer thickness m
+    jw, jr = 1, 60  # the well's columns 0..jw are held at h_w; column jr is the outer boundary
     rows = int(b / h)
     codes = np.zeros((rows, jr + 1), dtype=np.uint8)
     codes[:, : jw + 1] = 1

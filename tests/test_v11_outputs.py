@@ -99,3 +99,39 @@ def test_flux_uses_the_direction_conductivity(tmp_path):
     field = 2.0 * (jj + 0.5) * 0.01 + 3.0 * (rows - ii - 0.5) * 0.01  # du/dx = 2, du/dy = 3
     qx, qy = flux(field, case)
     assert qx[5, 2] == pytest.approx(-8.0 * 2.0) and qy[5, 2] == pytest.approx(-0.5 * 3.0)
+
+
+REPO = __import__("pathlib").Path(__file__).resolve().parents[1]
+
+
+@pytest.mark.parametrize("name", ["power-module", "well-drawdown"])
+def test_v11_demos_load_use_their_features_and_are_redrawn_identically(tmp_path, name):
+    import sys
+
+    case = load_case(REPO / "grids" / f"{name}.toml")
+    assert case.snapped == 0 and (case.region_counts() > 0).all()
+    assert case.per_face_physics and len(case.probes) >= 3
+    if name == "power-module":
+        assert len(case.contacts) == 3 and any(r.conductivity_y is not None for r in case.regions)
+    else:
+        assert case.geometry == "axisymmetric"
+    sys.path.insert(0, str(REPO / "grids"))
+    try:
+        import make_demos
+    finally:
+        sys.path.remove(str(REPO / "grids"))
+    make_demos.main([name, "--out", str(tmp_path)])
+    (tmp_path / f"{name}.toml").write_text((REPO / "grids" / f"{name}.toml").read_text(encoding="utf-8"), encoding="utf-8")
+    np.testing.assert_array_equal(load_case(tmp_path / f"{name}.toml").codes, case.codes)
+
+
+def test_well_demo_balances_and_its_heads_fall_towards_the_well():
+    # the maximum principle (references.md §12, common practice): heads lie between the held 42 and 50 m,
+    # and fall monotonically towards the well along the piezometer line
+    from relaxtui.solver.driver import solve
+
+    r = solve(load_case(REPO / "grids" / "well-drawdown.toml"))
+    assert r.report["status"] == "converged" and r.report["imbalance"] < 1e-5
+    p = r.report["probes"]
+    assert 42.0 < p["P10"] < p["P50"] < p["P150"] < 50.0
+    assert r.report["flows"]["screen"] < 0  # the well takes water out

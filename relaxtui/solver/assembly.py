@@ -252,9 +252,63 @@ class Physics:
 
     # --- entry points ----------------------------------------------------------------------
 
+    def _assemble_columns(self, assemble) -> None:
+        """Axisymmetric without maps: a cell's weights depend on its v1 class and its column only,
+        so the classes are the distinct (v1 class, column) pairs; the table stays small (it is
+        read from cache) and a sweep streams a class code of 1-4 B per cell, not 48 B of weights."""
+        from relaxtui.solver.operator import MIN_RUN, _class_dtype
+
+        op = self.op
+        op._assemble(assemble)
+        rows, cols = op.shape
+        inner = op.cls[1:-1, 1:-1]
+        live = inner != 0
+        pair = inner.astype(np.int64) * cols + np.arange(cols, dtype=np.int64)[None, :]
+        pairs, inverse = np.unique(pair[live], return_inverse=True)
+        v1_class, column = pairs // cols, pairs % cols
+        base = self.border + 1
+        keys = op.class_keys[v1_class]
+        k = keys.copy()
+        regs = []
+        for _ in range(4):
+            regs.append(k % base)
+            k //= base
+        re, rw, rs, rn = regs
+        rp = k
+        d = np.zeros(pairs.shape[0])
+        b = np.zeros(pairs.shape[0])
+        gs = []
+        for side, ((_, _, direction), rx) in enumerate(zip(SIDES, (rn, rs, rw, re))):
+            kd = self.kx if direction == "x" else self.ky
+            kn = np.where(self.kind[rx] == FIXED, self.fixed_k[rx], kd[rx])
+            g, a, c = self._terms(rp, rx, kd[rp], kn, self._factor(column, direction, side))
+            gs.append(g)
+            d = d + (g + a)
+            b = b + c
+        b = b + self.source[rp] * self.h * self.h * self.volume_factor(column)
+        classes = pairs.shape[0] + 1
+        cls = np.zeros((rows + 2, cols + 2), dtype=_class_dtype(classes))
+        cls[1:-1, 1:-1][live] = (inverse.ravel() + 1).astype(cls.dtype)
+        op.cls = cls
+        op.classes = classes
+        table = np.zeros((classes, 5))
+        for side in range(4):
+            table[1:, side] = gs[side] / d
+        table[1:, 4] = b / d
+        op.table = table
+        op.diag = np.concatenate(([0.0], d))
+        op.class_keys = np.concatenate(([-1], keys)).astype(np.int64)
+        op.class_cells = np.bincount(cls[1:-1, 1:-1].ravel(), minlength=classes).astype(np.int64)
+        op.class_cells[0] = 0
+        op.row_ptr, op.seg_start, op.seg_end, op.seg_class = assemble.segments(op.cls, MIN_RUN)
+        op._segments = (op.row_ptr, op.seg_start, op.seg_end, op.seg_class)
+        op.cells_streamed = int((op.seg_end.astype(np.int64) - op.seg_start).sum())
+
     def assemble(self, assemble) -> None:
         """Fill the operator's arrays (``cls``, ``table``, ``diag``, segments, counts)."""
-        if self.per_cell:
+        if self.axisymmetric and not self.case.maps:
+            self._assemble_columns(assemble)
+        elif self.per_cell:
             self._assemble_cells(assemble)
         else:
             self.op._assemble(assemble)
