@@ -8,6 +8,8 @@ The model problem (n x n unknowns in a one-cell fixed frame) is assembled three 
   class path (same classes, table recomputed), which must sweep as fast as v1;
 * ``per-cell``: the same case with a constant conductivity map: every unknown its own class
   (uint32 code, one table row of 40 B and a diagonal of 8 B per cell), mixed segments only;
+* ``part-map``: the model problem with a square insert (a sixteenth of the area) whose
+  conductivity is a map: only the insert's cells and their neighbours get classes of their own;
 * ``axisym``: the same case as axisymmetric (no map): one class per (v1 class, column), a
   table of about one row per column read from cache, mixed segments with 2-byte codes.
 
@@ -50,8 +52,26 @@ def cases(n: int):
         "v1": base,
         "class-v11": build_case(base.codes, ortho, cell_size=base.cell_size),
         "per-cell": build_case(base.codes, regions, cell_size=base.cell_size, maps=[kmap]),
+        "part-map": part_map(base, regions),
         "axisym": build_case(base.codes, regions, cell_size=base.cell_size, geometry="axisymmetric"),
     }
+
+
+def part_map(base, regions):
+    """The model problem with a square insert of a sixteenth of the area whose k is a map."""
+    from relaxtui.case.loader import build_case
+    from relaxtui.case.model import Region
+    from relaxtui.case.physics import CoefficientMap
+
+    codes = base.codes.copy()
+    n = codes.shape[0]
+    a, b = 3 * n // 8, 5 * n // 8
+    insert = len(regions)
+    codes[a:b, a:b] = insert
+    regions = list(regions) + [Region("insert", "#123456", "interior", conductivity=1.0)]
+    y, x = np.mgrid[0:n, 0:n] / n
+    k = 1.0 + 0.5 * np.sin(6.0 * x) * np.cos(5.0 * y)
+    return build_case(codes, regions, cell_size=base.cell_size, maps=[CoefficientMap("insert", "conductivity", "<array>", k)])
 
 
 def main(argv=None) -> int:

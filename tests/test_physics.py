@@ -443,3 +443,28 @@ def test_every_method_on_every_feature_matches_scipy(variant, method):
     u = op.new_field(want)
     assert op.residual(u) <= 1e-12
     assert np.nanmax(np.abs(op.residual_field(op.new_field(r.field)) - exact.exact_residual(case, r.field))) <= 1e-12
+
+
+def test_a_map_on_part_of_the_picture_gives_own_classes_only_where_it_reaches():
+    # a conductivity map changes the equations of its region's cells and of their neighbours (the
+    # harmonic-mean faces); every other cell keeps its class-coded equation
+    codes = np.zeros((40, 60), dtype=np.uint8)
+    codes[10:20, 10:25] = 1
+    codes[0, :] = 2
+    codes[-1, :] = 3
+    regions = [interior("plate", 3.0), interior("insert", 1.0), fixed("top", 1.0), fixed("foot", 0.0)]
+    k = _smooth_map(codes.shape, 5, 0.5, 4.0)
+    case = _case(codes, regions, maps=[CoefficientMap("insert", "conductivity", "k.npy", k)])
+    op = Operator(case)
+    insert = codes == 1
+    reach = insert.copy()
+    reach[1:] |= insert[:-1]
+    reach[:-1] |= insert[1:]
+    reach[:, 1:] |= insert[:, :-1]
+    reach[:, :-1] |= insert[:, 1:]
+    assert op.physics.cells_with_own_class == int(reach.sum())
+    assert np.unique(op.cls[1:-1, 1:-1][~reach & (codes == 0)]).size <= 12  # the class-coded rest
+    want = exact.exact_solution(case)
+    for method in ALL_METHODS:
+        r = solve(case, method=method, tolerance=1e-9)
+        assert np.nanmax(np.abs(r.field - want)) <= 1e-9, method

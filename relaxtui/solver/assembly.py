@@ -12,8 +12,17 @@ y faces ky) and the contact resistance of the pair of regions on each face.
 A class is still a 5-tuple of regions, so the sweeps, the Jacobi radius and
 multigrid run unchanged, with the same speed.
 
-*Per-cell path* (any coefficient map, or axisymmetric geometry). Every
-unknown is its own class: ``cls`` (uint32) numbers the interior cells 1..N in
+*Column classes* (axisymmetric, no maps): a cell's weights depend on its v1
+class and its column (the radius), so the distinct (class, column) pairs are
+the classes; the table has about one row per column and material and is read
+from cache.
+
+*Mapped cells* (planar, with maps): the class path everywhere, then a class
+of its own for every cell a map touches (its region's cells and, for a
+conductivity map, their interior neighbours).
+
+*Per-cell path* (axisymmetric with maps; and the mapped cells above). Every
+such unknown is its own class: ``cls`` (uint32) numbers the interior cells 1..N in
 row-major order and ``table`` holds one row (wN, wS, wW, wE, q) per cell, with
 ``diag`` the unnormalised diagonal. The sweep kernels then see one mixed
 segment per row run (a table gather per cell, the table read in order), and
@@ -208,14 +217,8 @@ class Physics:
         kn = np.where(inside, k[a, c], 1.0)
         return rp, rn, kp, kn, self._factor(jj, direction, side)
 
-    def _assemble_cells(self, assemble) -> None:
-        from relaxtui.solver.operator import MIN_RUN
-
-        op = self.op
-        codes = op.codes
-        rows, cols = codes.shape
-        interior = self.kind[codes] == INTERIOR
-        ii, jj = np.nonzero(interior)
+    def _cell_rows(self, ii, jj):
+        """Per-cell (G to each neighbour, diagonal D, right-hand side b) of the interior cells (ii, jj)."""
         n = ii.shape[0]
         kx, ky = self.cell_conductivities()
         d = np.zeros(n)
@@ -231,6 +234,64 @@ class Physics:
             from relaxtui.errors import CaseError
 
             raise CaseError("an interior cell has neither a domain neighbour nor a convection face")
+        return gs, d, b
+
+    def _assemble_mapped(self, assemble) -> None:
+        """Planar maps: the class path everywhere, then a class of its own for every cell whose
+        equation a map touches (the mapped region's cells and, for a conductivity map, their
+        interior neighbours). A map over a small part of a picture costs only that part."""
+        from relaxtui.solver.operator import MIN_RUN, _class_dtype
+
+        op = self.op
+        op._assemble(assemble)
+        self._class_table()
+        codes = op.codes
+        rows, cols = codes.shape
+        index = {r.name: i for i, r in enumerate(self.case.regions)}
+        touched = np.zeros(codes.shape, dtype=bool)
+        for m in self.case.maps:
+            cells = codes == index[m.region]
+            touched |= cells
+            if m.key == "conductivity":
+                touched[1:] |= cells[:-1]
+                touched[:-1] |= cells[1:]
+                touched[:, 1:] |= cells[:, :-1]
+                touched[:, :-1] |= cells[:, 1:]
+        touched &= self.kind[codes] == INTERIOR
+        ii, jj = np.nonzero(touched)
+        n = ii.shape[0]
+        gs, d, b = self._cell_rows(ii, jj)
+        base = op.classes
+        classes = base + n
+        cls = np.zeros((rows + 2, cols + 2), dtype=_class_dtype(classes))
+        cls[...] = op.cls
+        cls[1:-1, 1:-1][touched] = np.arange(base, classes, dtype=np.int64).astype(cls.dtype)
+        rows_new = np.zeros((n, 5))
+        for side in range(4):
+            rows_new[:, side] = gs[side] / d
+        rows_new[:, 4] = b / d
+        op.table = np.concatenate((op.table, rows_new))
+        op.diag = np.concatenate((op.diag, d))
+        op.cls = cls
+        op.classes = classes
+        # face counts come from the codes (Physics.face_counts): no per-class keys or counts are kept
+        op.class_keys = np.full(1, -1, dtype=np.int64)
+        op.class_cells = np.zeros(1, dtype=np.int64)
+        op.row_ptr, op.seg_start, op.seg_end, op.seg_class = assemble.segments(op.cls, MIN_RUN)
+        op._segments = (op.row_ptr, op.seg_start, op.seg_end, op.seg_class)
+        op.cells_streamed = int((op.seg_end.astype(np.int64) - op.seg_start).sum())
+        self.cells_with_own_class = int(n)
+
+    def _assemble_cells(self, assemble) -> None:
+        from relaxtui.solver.operator import MIN_RUN
+
+        op = self.op
+        codes = op.codes
+        rows, cols = codes.shape
+        interior = self.kind[codes] == INTERIOR
+        ii, jj = np.nonzero(interior)
+        n = ii.shape[0]
+        gs, d, b = self._cell_rows(ii, jj)
         op.classes = n + 1
         op.cls = np.zeros((rows + 2, cols + 2), dtype=np.uint32)
         op.cls[1:-1, 1:-1][interior] = np.arange(1, n + 1, dtype=np.uint32)
@@ -308,6 +369,8 @@ class Physics:
         """Fill the operator's arrays (``cls``, ``table``, ``diag``, segments, counts)."""
         if self.axisymmetric and not self.case.maps:
             self._assemble_columns(assemble)
+        elif self.case.maps and not self.axisymmetric:
+            self._assemble_mapped(assemble)
         elif self.per_cell:
             self._assemble_cells(assemble)
         else:
