@@ -153,3 +153,11 @@ def test_probe_outside_the_domain_is_refused(tmp_path):
     p.write_text(text + '\n[[probe]]\nname = "corner"\nx = 0.005\ny = 0.055\n')
     with pytest.raises(CaseError, match=r"c.toml:\d+: probe 'corner': .* outside the domain \(cell row 0, column 0 is outside\)"):
         load_case(p)
+
+
+def test_npy_map_header_is_checked_before_reading(tmp_path):
+    np.save(tmp_path / "c16.npy", np.ones((6, 8), dtype=np.complex64))
+    (tmp_path / "junk.npy").write_bytes(b"not an array")
+    for name, message in (("c16.npy", r"must hold real numbers, not complex64"), ("junk.npy", r"not a readable .npy array")):
+        with pytest.raises(CaseError, match=message):
+            load_case(_write(tmp_path, HEAD + REGIONS.replace("conductivity = 150.0", f'conductivity_map = "{name}"')))

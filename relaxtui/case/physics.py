@@ -218,6 +218,17 @@ def read_map(path: Path, shape: tuple[int, int], value_range, label: str) -> np.
     if path.is_dir():
         raise CaseError(f"{label}: is a folder, not a map file")
     if path.suffix.lower() == ".npy":
+        try:  # the header first: a wrong shape or type is refused before any data is read
+            with open(path, "rb") as f:
+                version = np.lib.format.read_magic(f)
+                read = np.lib.format.read_array_header_1_0 if version == (1, 0) else np.lib.format.read_array_header_2_0
+                head_shape, _, head_dtype = read(f)
+        except (ValueError, OSError, EOFError) as exc:
+            raise CaseError(f"{label}: not a readable .npy array ({exc})") from None
+        if head_dtype.kind not in "fiu":
+            raise CaseError(f"{label}: the map must hold real numbers, not {head_dtype}")
+        if tuple(head_shape) != tuple(shape):
+            raise CaseError(f"{label}: the map has shape {tuple(head_shape)}, the picture is {shape[0]} rows x {shape[1]} columns")
         try:
             arr = np.load(path, allow_pickle=False)
         except (ValueError, OSError, EOFError) as exc:

@@ -92,6 +92,8 @@ def build_report(run, field: np.ndarray) -> dict:
 
     report["probes"] = {name: _f(v) for name, v in ProbeSet(case).as_dict(field).items()}
     report["geometry"] = getattr(case, "geometry", "planar")
+    if report["geometry"] == "axisymmetric":
+        report["depth"] = None  # flows are totals around the axis
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION
