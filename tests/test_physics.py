@@ -418,15 +418,15 @@ def _feature_case(variant):
     regions = [interior("a", 2.0, 1.0), replace(interior("b", 5.0), conductivity_y=0.5), fixed("cold", 0.0),
                fixed("hot", 3.0, conductivity=4.0), flux("in", 2.0), convection("air", 3.0, 1.0), outside("hole")]
     kw = {"contacts": [Contact("a", "b", 0.3), Contact("b", "hot", 0.1)], "cell_size": 0.1}
-    if variant == "maps":
+    if variant in ("maps", "axisymmetric+maps"):
         kw["maps"] = [CoefficientMap("a", "conductivity", "<array>", 1 + rng.random((rows, cols))),
                       CoefficientMap("b", "source", "<array>", rng.random((rows, cols)))]
-    if variant == "axisymmetric":
+    if variant.startswith("axisymmetric"):
         kw["geometry"] = "axisymmetric"
     return _case(codes, regions, **kw)
 
 
-@pytest.mark.parametrize("variant", ["contacts+orthotropy", "maps", "axisymmetric"])
+@pytest.mark.parametrize("variant", ["contacts+orthotropy", "maps", "axisymmetric", "axisymmetric+maps"])
 @pytest.mark.parametrize("method", ALL_METHODS)
 def test_every_method_on_every_feature_matches_scipy(variant, method):
     case = _feature_case(variant)
@@ -440,6 +440,8 @@ def test_every_method_on_every_feature_matches_scipy(variant, method):
         assert r.report["flows"][name] == pytest.approx(v, rel=1e-6, abs=1e-8), name
     # the residual agrees with the reference's (b - A x) / diag
     op = Operator(case)
+    if variant == "axisymmetric+maps":
+        assert op.classes == op.unknowns + 1  # the per-cell path: every unknown its own class
     u = op.new_field(want)
     assert op.residual(u) <= 1e-12
     assert np.nanmax(np.abs(op.residual_field(op.new_field(r.field)) - exact.exact_residual(case, r.field))) <= 1e-12

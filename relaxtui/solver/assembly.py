@@ -22,7 +22,7 @@ of its own for every cell a map touches (its region's cells and, for a
 conductivity map, their interior neighbours).
 
 *Per-cell path* (axisymmetric with maps; and the mapped cells above). Every
-such unknown is its own class: ``cls`` (uint32) numbers the interior cells 1..N in
+such unknown is its own class: ``cls`` (uint8/16/32 by the count) numbers the interior cells 1..N in
 row-major order and ``table`` holds one row (wN, wS, wW, wE, q) per cell, with
 ``diag`` the unnormalised diagonal. The sweep kernels then see one mixed
 segment per row run (a table gather per cell, the table read in order), and
@@ -283,7 +283,7 @@ class Physics:
         self.cells_with_own_class = int(n)
 
     def _assemble_cells(self, assemble) -> None:
-        from relaxtui.solver.operator import MIN_RUN
+        from relaxtui.solver.operator import MIN_RUN, _class_dtype
 
         op = self.op
         codes = op.codes
@@ -293,8 +293,8 @@ class Physics:
         n = ii.shape[0]
         gs, d, b = self._cell_rows(ii, jj)
         op.classes = n + 1
-        op.cls = np.zeros((rows + 2, cols + 2), dtype=np.uint32)
-        op.cls[1:-1, 1:-1][interior] = np.arange(1, n + 1, dtype=np.uint32)
+        op.cls = np.zeros((rows + 2, cols + 2), dtype=_class_dtype(n + 1))
+        op.cls[1:-1, 1:-1][interior] = np.arange(1, n + 1, dtype=np.int64).astype(op.cls.dtype)
         table = np.zeros((n + 1, 5))
         for side in range(4):
             table[1:, side] = gs[side] / d
