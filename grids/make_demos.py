@@ -1,6 +1,6 @@
 """Redraw the demo pictures in grids/ (deterministic: only numpy and Pillow, no randomness).
 
-    python grids/make_demos.py            # redraw all four PNGs next to this script
+    python grids/make_demos.py            # redraw all six PNGs next to this script
     python grids/make_demos.py --check    # redraw, then load every demo case
 
 Each picture is a palette PNG; the colours here are the ones the TOML files
@@ -189,11 +189,51 @@ def large_aquifer() -> np.ndarray:
     return a
 
 
+# ---------------------------------------------------------------------------
+# (e) power module (case format v1.1: contact resistance, orthotropy, probes): a cross-section of a
+# power switch on a laminate board with copper planes, screwed to a cold plate through a gap pad
+
+POWER_MODULE = ["#e6f2ff", "#2b2b2b", "#9aa0a6", "#d4882b", "#3f7f3f", "#1e4fa0"]
+
+
+def power_module() -> np.ndarray:
+    air, mold, die, tab, board, plate = range(6)
+    rows, cols = 67, 400  # 0.1 mm cells: 40 mm x 6.7 mm
+    a = np.full((rows, cols), air, np.uint8)
+    a[4:46, 100:300] = mold  # the moulded package, 20 mm wide
+    a[34:46, 140:260] = tab  # copper tab, 12 mm x 1.2 mm, flush with the package's underside
+    a[31:34, 175:225] = die  # silicon die, 5 mm x 0.3 mm, soldered on the tab
+    a[46:62, :] = board  # laminate board, 1.6 mm
+    a[62:, :] = plate  # aluminium cold plate under the gap pad
+    return a
+
+
+# ---------------------------------------------------------------------------
+# (f) well drawdown (case format v1.1: axisymmetric geometry, orthotropy, probes): a pumped well
+# screened in a confined sand aquifer under a clay aquitard, radius 400 m
+
+WELL = ["#4a90e8", "#8c6d4f", "#e8d9a8", "#d62828", "#303030", "#1f5fbf"]
+
+
+def well_drawdown() -> np.ndarray:
+    upper, clay, sand, screen, casing, far = range(6)
+    rows, cols = 40, 400  # 1 m cells: 400 m radius, 40 m deep
+    a = np.full((rows, cols), sand, np.uint8)
+    a[:5, :] = upper  # the upper aquifer, its head held by recharge
+    a[5:15, :] = clay  # the aquitard, 10 m
+    a[5:15, 0] = casing  # the well's casing through the aquitard (no flow)
+    a[20:35, 0] = screen  # the screen, 15 m of the 25 m aquifer
+    a[15:, -1] = far  # the far field at 400 m
+    return a
+
+
 DEMOS = {
     "heat-spreader": (heat_spreader, HEAT_SPREADER),
     "electrodes": (electrodes, ELECTRODES),
     "composite": (composite, COMPOSITE),
     "large-aquifer": (large_aquifer, AQUIFER),
+    "power-module": (power_module, POWER_MODULE),
+    "well-drawdown": (well_drawdown, WELL),
 }
 
 

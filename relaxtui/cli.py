@@ -89,6 +89,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", metavar="FIELD.npy", help="write the field (float64, NaN outside the domain)")
     p.add_argument("--report", metavar="REPORT.json", help="write the report")
     p.add_argument("--history", metavar="HIST.csv", help="write the per-sweep history")
+    p.add_argument("--probes", metavar="PROBES.csv", help="write the [[probe]] values after every chunk (columns sweep,seconds,<name>...)")
     p.add_argument("--picture", metavar="FIELD.png", help="write a colour picture of the field")
     p.add_argument("--vtk", metavar="FIELD.vti", help="write the field as VTK ImageData XML")
     p.add_argument("--bundle", metavar="RUN.npz", help="write field, codes, history and report in one numpy archive")

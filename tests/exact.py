@@ -26,34 +26,98 @@ import scipy.sparse.linalg
 
 STEPS = ((-1, 0), (1, 0), (0, -1), (0, 1))  # north, south, west, east
 
+# Case format v1.1 (docs/case-format.md, "v1.1 additions"), read from the text of that section:
+# x faces use kx, y faces ky (an orthotropic interior region gives conductivity = [kx, ky]);
+# a coefficient map gives the k (both directions) or s of each cell of its region; a contact of
+# resistance R between two regions makes a face's conductance 1 / (1/G + R/h); axisymmetric
+# geometry multiplies every face term by the radius of the face (x faces r = j*h for the west
+# face of column j, (j+1)*h for the east; y faces and sources by the centre's (j + 1/2)*h) and
+# the flows by 2*pi instead of the depth.
 
-def _k_interior(region) -> float:
+
+def _k_interior(region, case=None, cell=None, direction="x") -> float:
+    if case is not None and cell is not None:
+        for m in getattr(case, "maps", ()):
+            if m.key == "conductivity" and m.region == region.name:
+                return float(m.values[cell])
+    if direction == "y" and getattr(region, "conductivity_y", None) is not None:
+        return float(region.conductivity_y)
     return 1.0 if region.conductivity is None else float(region.conductivity)
 
 
-def _conductance(k_p: float, neighbour) -> float:
+def _source(region, case, cell) -> float:
+    for m in getattr(case, "maps", ()):
+        if m.key == "source" and m.region == region.name:
+            return float(m.values[cell])
+    return float(region.source)
+
+
+def _conductance(k_p: float, neighbour, k_n_interior=None) -> float:
     """G_PN for a face between an interior cell of conductivity k_p and a domain cell."""
     if neighbour.kind == "fixed" and neighbour.conductivity is None:
         k_n = k_p
+    elif neighbour.kind == "interior" and k_n_interior is not None:
+        k_n = k_n_interior
     else:
         k_n = float(neighbour.conductivity) if neighbour.conductivity is not None else 1.0
     return 2.0 * k_p * k_n / (k_p + k_n)
 
 
-def _film(region_p, convection, h: float) -> float:
+def _contact(case, rp, rn) -> float:
+    for c in getattr(case, "contacts", ()):
+        if {c.a, c.b} == {rp.name, rn.name}:
+            return float(c.resistance)
+    return 0.0
+
+
+def _radius(case, j, step) -> float:
+    """The axisymmetric weight of a face of a cell in column j (1.0 when planar)."""
+    if getattr(case, "geometry", "planar") != "axisymmetric":
+        return 1.0
+    h = float(case.cell_size)
+    if step == (0, -1):
+        return j * h
+    if step == (0, 1):
+        return (j + 1) * h
+    return (j + 0.5) * h
+
+
+def _film(region_p, convection, h: float, k_p=None) -> float:
     """U * h for a convection face of interior cell P (contract, region kinds table)."""
-    k_p = _k_interior(region_p)
+    if k_p is None:
+        k_p = _k_interior(region_p)
     u = 1.0 / (1.0 / float(convection.coefficient) + h / (2.0 * k_p))
     return u * h
 
 
 def _faces(case, i, j):
-    """Yield the region of each of the 4 neighbours of (i, j) that lies inside the picture."""
+    """Yield (row, col, region, step) of each of the 4 neighbours of (i, j) inside the picture."""
     rows, cols = case.codes.shape
     for di, dj in STEPS:
         a, b = i + di, j + dj
         if 0 <= a < rows and 0 <= b < cols:
-            yield a, b, case.regions[int(case.codes[a, b])]
+            yield a, b, case.regions[int(case.codes[a, b])], (di, dj)
+
+
+def _face_terms(case, i, j, a, c, rp, rn, step):
+    """(G to the neighbour or U*h, rhs constant) of one face of interior cell (i, j), radius-weighted."""
+    h = float(case.cell_size)
+    direction = "x" if step[0] == 0 else "y"
+    f = _radius(case, j, step)
+    k_p = _k_interior(rp, case, (i, j), direction)
+    if rn.kind in ("interior", "fixed"):
+        k_n = _k_interior(rn, case, (a, c), direction) if rn.kind == "interior" else None
+        g = _conductance(k_p, rn, k_n)
+        r = _contact(case, rp, rn)
+        if r > 0:
+            g = 1.0 / (1.0 / g + r / h)
+        return g * f, (g * f * float(rn.value) if rn.kind == "fixed" else 0.0)
+    if rn.kind == "flux":
+        return 0.0, float(rn.flux) * h * f
+    if rn.kind == "convection":
+        uh = _film(rp, rn, h, k_p) * f
+        return uh, uh * float(rn.ambient)
+    return 0.0, 0.0
 
 
 def assemble(case):
@@ -76,27 +140,17 @@ def assemble(case):
             if p < 0:
                 continue
             rp = case.regions[int(codes[i, j])]
-            k_p = _k_interior(rp)
             diag = 0.0
-            for a, c, rn in _faces(case, i, j):
+            for a, c, rn, step in _faces(case, i, j):
+                g, const = _face_terms(case, i, j, a, c, rp, rn, step)
+                diag += g
+                b[p] += const
                 if rn.kind == "interior":
-                    g = _conductance(k_p, rn)
-                    diag += g
                     data.append(-g)
                     ri.append(p)
                     ci.append(index[a, c])
-                elif rn.kind == "fixed":
-                    g = _conductance(k_p, rn)
-                    diag += g
-                    b[p] += g * float(rn.value)
-                elif rn.kind == "flux":
-                    b[p] += float(rn.flux) * h
-                elif rn.kind == "convection":
-                    uh = _film(rp, rn, h)
-                    diag += uh
-                    b[p] += uh * float(rn.ambient)
                 # outside: nothing
-            b[p] += float(rp.source) * h * h
+            b[p] += _source(rp, case, (i, j)) * h * h * _radius(case, j, (0, 0))
             data.append(diag)
             ri.append(p)
             ci.append(p)
@@ -132,7 +186,7 @@ def exact_flows(case, field):
     codes = case.codes
     rows, cols = codes.shape
     h = float(case.cell_size)
-    d = float(case.depth)
+    d = 2.0 * np.pi if getattr(case, "geometry", "planar") == "axisymmetric" else float(case.depth)
     flows = {r.name: 0.0 for r in case.regions if r.kind in ("fixed", "flux", "convection")}
     source_total = 0.0
     for i in range(rows):
@@ -141,15 +195,11 @@ def exact_flows(case, field):
             if rp.kind != "interior":
                 continue
             u_p = float(field[i, j])
-            k_p = _k_interior(rp)
-            source_total += d * float(rp.source) * h * h
-            for _a, _c, rn in _faces(case, i, j):
-                if rn.kind == "fixed":
-                    flows[rn.name] += d * _conductance(k_p, rn) * (float(rn.value) - u_p)
-                elif rn.kind == "flux":
-                    flows[rn.name] += d * float(rn.flux) * h
-                elif rn.kind == "convection":
-                    flows[rn.name] += d * _film(rp, rn, h) * (float(rn.ambient) - u_p)
+            source_total += d * _source(rp, case, (i, j)) * h * h * _radius(case, j, (0, 0))
+            for a, c, rn, step in _faces(case, i, j):
+                if rn.kind in ("fixed", "flux", "convection"):
+                    g, const = _face_terms(case, i, j, a, c, rp, rn, step)
+                    flows[rn.name] += d * (const - g * u_p)
     total = sum(flows.values()) + source_total
     scale = sum(abs(v) for v in flows.values()) + abs(source_total)
     imbalance = abs(total) / scale if scale > 0 else 0.0

@@ -31,7 +31,7 @@ from typing import Sequence
 
 import numpy as np
 
-from relaxtui.case import picture
+from relaxtui.case import physics, picture
 from relaxtui.case.domain import check_domain
 from relaxtui.case.model import (
     KINDS,
@@ -43,12 +43,12 @@ from relaxtui import options
 from relaxtui.errors import CaseError, UsageError
 from relaxtui.solver import memory
 
-TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region")
+TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region") + physics.TOP_KEYS_V11
 SOLVER_KEYS = ("method", "omega", "tolerance", "max_sweeps")
 COMMON_KEYS = ("name", "color", "kind")
 # Keys each kind takes besides name, color and kind; and which of them are required.
 KIND_KEYS = {
-    "interior": ("conductivity", "source"),
+    "interior": ("conductivity", "source") + physics.INTERIOR_KEYS_V11,
     "fixed": ("value", "conductivity"),
     "outside": (),
     "flux": ("flux",),
@@ -66,7 +66,7 @@ NUMBER_RANGES = {
 }
 MAX_MAGNITUDE = 1e150  # |value|, |ambient|, |flux|, |source|
 MAX_NESTING = 64  # deepest [...]/{...} nesting of a case file (tomllib recurses per level)
-ALL_REGION_KEYS = COMMON_KEYS + ("conductivity", "source", "value", "flux", "coefficient", "ambient")
+ALL_REGION_KEYS = COMMON_KEYS + ("conductivity", "source", "value", "flux", "coefficient", "ambient") + physics.INTERIOR_KEYS_V11
 DEFAULT_CONDUCTIVITY = 1.0
 MAX_REGIONS = picture.MAX_REGIONS
 
@@ -113,6 +113,7 @@ class KeyLines:
         self.top: dict[str, int] = {}
         self.tables: dict[str, dict[str, int]] = {}
         self.regions: list[tuple[int, dict[str, int]]] = []
+        self.arrays: dict[str, list[tuple[int, dict[str, int]]]] = {}  # other [[name]] entries
         current = self.top
         open_quote = None
         for no, raw in enumerate(text.splitlines(), 1):
@@ -133,7 +134,9 @@ class KeyLines:
                     self.regions.append((no, entry))
                     current = entry
                 else:
-                    current = {}
+                    entry = {}
+                    self.arrays.setdefault(_unquote(name), []).append((no, entry))
+                    current = entry
                 continue
             m = _TABLE_RE.match(s)
             if m:
@@ -166,6 +169,14 @@ class KeyLines:
         if key is not None and key in lines:
             return lines[key]
         return lines.get("", self.top.get(table))
+
+    def entry_line(self, array: str, i: int, key: str | None = None) -> int | None:
+        """Line of ``key`` in the i-th ``[[array]]`` entry (its header without a key)."""
+        entries = self.arrays.get(array, [])
+        if i < len(entries):
+            header, keys = entries[i]
+            return keys.get(key, header) if key is not None else header
+        return self.top.get(array)
 
     def region_line(self, i: int, key: str | None = None) -> int | None:
         if i < len(self.regions):
@@ -396,8 +407,10 @@ def _parse_region(i: int, raw, lines: KeyLines, chk: _Checker) -> tuple[dict, in
     else:
         name = None
     fields: dict = {"name": name, "color": picture.color_name(packed), "kind": kind, "packed": packed}
+    extras = physics.parse_region_extras(raw, kind, lambda key: lines.region_line(i, key), chk, who)
+    fields.update(extras)
     for key in KIND_KEYS[kind]:
-        if key in raw:
+        if key in raw and key not in extras and key not in physics.INTERIOR_KEYS_V11:
             fields[key] = chk.number(raw[key], key, lines.region_line(i, key), who, positive=key in POSITIVE_KEYS)
     if kind == "interior":
         fields.setdefault("conductivity", DEFAULT_CONDUCTIVITY)
@@ -450,6 +463,7 @@ def _name_regions(parsed: list[tuple[dict, int | None]], lines: KeyLines, label:
                 coefficient=fields.get("coefficient"),
                 ambient=fields.get("ambient"),
                 line=header,
+                conductivity_y=fields.get("conductivity_y"),
             )
         )
     return regions
@@ -506,6 +520,17 @@ def load_case(path: str | Path) -> Case:
         chk.fail(lines.region_line(MAX_REGIONS), f"{len(raw_regions)} regions declared; at most {MAX_REGIONS} are supported")
     parsed = [_parse_region(i, raw, lines, chk) for i, raw in enumerate(raw_regions)]
     regions = _name_regions(parsed, lines, label)
+    geometry = physics.parse_geometry(doc["geometry"], lines.top_line("geometry"), chk) if "geometry" in doc else "planar"
+    if geometry == "axisymmetric" and "depth" in doc:
+        chk.fail(lines.top_line("depth"), "key 'depth' does not apply to geometry \"axisymmetric\" (flows are totals around the axis)")
+    contacts = []
+    if "contact" in doc:
+        for a, b, r, line in physics.parse_contacts(doc["contact"], lines.top_line("contact"),
+                                                    lambda i, key: lines.entry_line("contact", i, key), chk):
+            contacts.append(physics.Contact(a=a, b=b, resistance=r, line=line))
+    probes = []
+    if "probe" in doc:
+        probes = physics.parse_probes(doc["probe"], lines.top_line("probe"), lambda i, key: lines.entry_line("probe", i, key), chk)
 
     mask_line = lines.top_line("mask")
     mask_path = path.parent / mask_text
@@ -516,10 +541,20 @@ def load_case(path: str | Path) -> Case:
         raise CaseError(f"{mask_label}: is a folder, not a PNG picture")
     picture.require_regular_file(mask_path, mask_label, "PNG picture")
     header = picture.read_header(mask_path, mask_label)
-    check_memory(header.height, header.width, solver.method, len(regions), mask_label)
+    per_cell = geometry == "axisymmetric" or any(k in f for f, _ in parsed for k in physics.MAP_KEYS)
+    check_memory(header.height, header.width, solver.method, len(regions), mask_label, per_cell=per_cell)
     decoded = picture.decode(mask_path, mask_label)
     codes, snapped = picture.match(decoded, [f["packed"] for f, _ in parsed], snap=snap, label=mask_label)
     del decoded
+    maps = []
+    for (fields, _), region in zip(parsed, regions):
+        for key in physics.MAP_KEYS:
+            if key in fields:
+                text, line = fields[key]
+                where = f"{_where(label, line)}: region {region.name!r}: {key} {text!r}"
+                values = physics.read_map(path.parent / text, codes.shape, fields["map_range"].get(key), where)
+                maps.append(physics.CoefficientMap(region=region.name, key=key.removesuffix("_map"), file=text,
+                                                   values=values, line=line))
     return build_case(
         codes,
         regions,
@@ -533,12 +568,16 @@ def load_case(path: str | Path) -> Case:
         quantity=quantity if quantity is not None else "field",
         unit=unit if unit is not None else "",
         solver=solver,
+        contacts=contacts,
+        probes=probes,
+        geometry=geometry,
+        maps=maps,
     )
 
 
-def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str) -> None:
+def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str, per_cell: bool = False) -> None:
     """Refuse a picture whose solve would need more memory than is available."""
-    need = memory.estimate_solve_bytes(rows, cols, method, materials)
+    need = memory.estimate_solve_bytes(rows, cols, method, materials, per_cell=per_cell)
     have = memory.available_bytes()
     if have is not None and need > have:
         raise CaseError(
@@ -573,8 +612,11 @@ def _check_region_object(i: int, r: Region, label: str) -> None:
 
     if r.kind == "interior":
         finite("conductivity", r.conductivity, positive=True, required=True)
+        finite("conductivity_y", r.conductivity_y, positive=True)
         finite("source", r.source, required=True)
-    elif r.kind == "fixed":
+    if r.kind != "interior" and getattr(r, "conductivity_y", None) is not None:
+        raise _fail(label, r.line, f"{who}: an orthotropic conductivity [kx, ky] applies to interior regions only")
+    if r.kind == "fixed":
         finite("value", r.value, required=True)
         finite("conductivity", r.conductivity, positive=True)
     elif r.kind == "flux":
@@ -598,6 +640,10 @@ def build_case(
     quantity: str = "field",
     unit: str = "",
     solver: SolverDefaults | None = None,
+    contacts: Sequence = (),
+    probes: Sequence = (),
+    geometry: str = "planar",
+    maps: Sequence = (),
 ) -> Case:
     """Build a validated :class:`Case` from an array of region codes.
 
@@ -658,6 +704,8 @@ def build_case(
     arr = np.ascontiguousarray(arr)
 
     check_domain(arr, regions, label)
+    contacts, probes, maps = physics.check_case_extras(regions, arr, contacts, probes, geometry, maps,
+                                                       float(cell_size), False, label)
     return Case(
         path=path,
         mask_path=mask_path,
@@ -671,4 +719,8 @@ def build_case(
         quantity=quantity,
         unit=unit,
         solver=solver if solver is not None else SolverDefaults(),
+        contacts=contacts,
+        probes=probes,
+        geometry=geometry,
+        maps=maps,
     )

@@ -42,6 +42,11 @@ class Region:
     coefficient: float | None = None  # convection: film coefficient
     ambient: float | None = None  # convection
     line: int | None = None  # line of the [[region]] header in the TOML file
+    conductivity_y: float | None = None  # v1.1, interior: ky of an orthotropic region (conductivity is kx)
+
+    @property
+    def orthotropic(self) -> bool:
+        return self.conductivity_y is not None
 
     @property
     def kind_code(self) -> int:
@@ -78,6 +83,17 @@ class Case:
     quantity: str = "field"
     unit: str = ""
     solver: SolverDefaults = field(default_factory=SolverDefaults)
+    # v1.1 (relaxtui.case.physics): contact resistances, probes, geometry, coefficient maps
+    contacts: tuple = ()
+    probes: tuple = ()
+    geometry: str = "planar"
+    maps: tuple = ()
+
+    @property
+    def per_face_physics(self) -> bool:
+        """True when a v1.1 key changes the operator (contacts, orthotropy, maps, axisymmetry)."""
+        return bool(self.contacts or self.maps or self.geometry != "planar"
+                    or any(r.conductivity_y is not None for r in self.regions))
 
     @property
     def shape(self) -> tuple[int, int]:

@@ -76,7 +76,8 @@ def _params(r, unit: str) -> str:
     """The region's parameters in a compact form: k, s, u, q, h, ambient."""
     u = f" {unit}" if unit else ""
     if r.kind == "interior":
-        text = f"k={r.conductivity:g}"
+        ky = getattr(r, "conductivity_y", None)
+        text = f"k={r.conductivity:g}" if ky is None else f"kx={r.conductivity:g} ky={ky:g} (orthotropic)"
         if r.source:
             text += f" s={r.source:g}"
         return text
@@ -92,6 +93,16 @@ def _params(r, unit: str) -> str:
     return ""
 
 
+def _map_params(case: Case, r, text: str) -> str:
+    """A region's parameters with its coefficient maps (case format v1.1) in place of k or s."""
+    for m in getattr(case, "maps", ()):
+        if m.region == r.name:
+            short = "k" if m.key == "conductivity" else "s"
+            parts = [p for p in text.split(" ") if not p.startswith(short + "=")]
+            text = " ".join(parts + [f"{short} from {m.file}"])
+    return text
+
+
 def describe(case: Case, console=None) -> None:
     """Print the description of a loaded case to a rich console."""
     from rich.console import Console
@@ -105,7 +116,8 @@ def describe(case: Case, console=None) -> None:
     unknowns = int(counts[kinds == INTERIOR].sum())
     faces, border = faces_with_interior(case)
     method = case.solver.method or DEFAULT_METHOD
-    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions))
+    per_cell = bool(getattr(case, "maps", ())) or getattr(case, "geometry", "planar") == "axisymmetric"
+    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions), per_cell=per_cell)
     have = memory.available_bytes()
     h = case.cell_size
     unit = case.unit
@@ -124,7 +136,12 @@ def describe(case: Case, console=None) -> None:
     facts.add_row("unknowns", f"{unknowns:,} interior cells")
     facts.add_row("cell size", _with_si(h))
     facts.add_row("size", f"{cols * h:g} m wide × {rows * h:g} m high" + _si_suffix(cols * h, rows * h))
-    facts.add_row("depth", _with_si(case.depth))
+    geometry = getattr(case, "geometry", "planar")
+    if geometry == "axisymmetric":
+        facts.add_row("geometry", "axisymmetric: left edge is the axis, x is the radius; flows are totals around the axis")
+    else:
+        facts.add_row("geometry", "planar")
+        facts.add_row("depth", _with_si(case.depth))
     facts.add_row("snapped", f"{case.snapped:,} pixels" + ("" if case.snap else " (snap is off)"))
     s = case.solver
     solver = [method, f"omega {s.omega if s.omega is not None else 'auto'}"]
@@ -156,12 +173,53 @@ def describe(case: Case, console=None) -> None:
         else:
             face = f"{int(faces[i]):,}"
         table.add_row(str(i + 1), Text(printable(r.name)), r.kind, swatch, f"{int(counts[i]):,}", face,
-                      Text(printable(_params(r, unit))))
+                      Text(printable(_map_params(case, r, _params(r, unit)))))
     table.add_row("", Text("(image border)", style="dim"), Text("outside", style="dim"), "", "", f"{border:,}", "")
     console.print(table)
     console.print(Text("* faces with interior cells: cell faces between an interior cell and a cell of "
                        "the region (for an interior region: with cells of other interior regions). "
                        "k conductivity, s source, u fixed value, q flux, h film coefficient.", style="dim"))
+    describe_v11(case, console)
+
+
+def describe_v11(case: Case, console) -> None:
+    """The case format v1.1 parts: contacts with face counts, coefficient maps with ranges, probes."""
+    from rich.table import Table
+    from rich.text import Text
+
+    contacts = getattr(case, "contacts", ())
+    maps = getattr(case, "maps", ())
+    probes = getattr(case, "probes", ())
+    names = {r.name: i for i, r in enumerate(case.regions)}
+    if contacts:
+        m = face_matrix(case.codes, len(case.regions))
+        t = Table(title="contacts", title_justify="left", show_edge=False, pad_edge=False)
+        for col, justify in (("between", "left"), ("resistance", "right"), ("faces", "right")):
+            t.add_column(col, justify=justify)
+        for c in contacts:
+            t.add_row(f"{c.a} | {c.b}", f"{c.resistance:g} per unit area", f"{int(m[names[c.a], names[c.b]]):,}")
+        console.print(t)
+    if maps:
+        t = Table(title="coefficient maps", title_justify="left", show_edge=False, pad_edge=False)
+        for col, justify in (("region", "left"), ("key", "left"), ("file", "left"), ("range on the region", "right")):
+            t.add_column(col, justify=justify)
+        for mp in maps:
+            t.add_row(mp.region, mp.key, mp.file, f"{mp.low:.6g} .. {mp.high:.6g}")
+        console.print(t)
+    if probes:
+        from relaxtui.output.probes import probe_points
+
+        t = Table(title="probes", title_justify="left", show_edge=False, pad_edge=False)
+        for col, justify in (("name", "left"), ("x", "right"), ("y", "right"), ("cell", "left")):
+            t.add_column(col, justify=justify)
+        rows = case.shape[0]
+        for p, (_, fr, fc) in zip(probes, probe_points(case)):
+            row, col = min(rows - 1, max(0, int(round(fr)))), max(0, min(case.shape[1] - 1, int(round(fc))))
+            t.add_row(p.name, f"{p.x:g} m", f"{p.y:g} m", f"near row {row}, column {col} ({case.regions[case.codes[row, col]].name})")
+        console.print(t)
+    if contacts or maps or probes or getattr(case, "geometry", "planar") != "planar" or any(
+            getattr(r, "conductivity_y", None) is not None for r in case.regions):
+        console.print(Text("case format v1.1 keys in use (docs/case-format.md, v1.1 additions)", style="dim"))
 
 
 def run(args) -> int:

@@ -85,7 +85,7 @@ _sigint_to = _stop_signals_to
 
 def _default_outputs(args, case):
     """Paths of field, report and history: the ones given, else next to the current folder."""
-    given = [args.out, args.report, args.history, args.picture, args.vtk, args.bundle]
+    given = [args.out, args.report, args.history, args.picture, args.vtk, args.bundle, getattr(args, "probes", None)]
     if any(p is not None for p in given):
         return args.out, args.report, args.history
     stem = case.name
@@ -185,8 +185,13 @@ def run(args) -> int:
 
     case = load_case(args.case)
     out, report_path, history_path = _default_outputs(args, case)
+    probes_path = getattr(args, "probes", None)
+    if probes_path is not None and not case.probes:
+        from relaxtui.errors import UsageError
+
+        raise UsageError(f"--probes {probes_path}: the case declares no [[probe]] to record")
     outputs = {"field": out, "report": report_path, "history": history_path, "picture": args.picture,
-               "VTK file": args.vtk, "bundle": args.bundle}
+               "VTK file": args.vtk, "bundle": args.bundle, "probe log": probes_path}
     check_output_set(outputs, {"case file": args.case, "picture": case.mask_path, "initial field": args.initial})
     _check_picture_options(args, case)
     # every solver option is validated before anything is loaded or solved
@@ -232,7 +237,8 @@ def _write_all(result, args, out, report_path, history_path) -> list[Path]:
     from relaxtui.output.sets import write_run_outputs
 
     return write_run_outputs(result, out=out, report=report_path, history=history_path, picture=args.picture,
-                             vtk=args.vtk, bundle=args.bundle, scale=args.scale, isolines=args.isolines)
+                             vtk=args.vtk, bundle=args.bundle, scale=args.scale, isolines=args.isolines,
+                             probes=getattr(args, "probes", None))
 
 
 def _summary(result, written) -> None:
@@ -269,6 +275,8 @@ def _summary(result, written) -> None:
         t.add_row("  sources", _g(r["source_total"], 6))
         t.add_row("  imbalance", _g(r["imbalance"], 3))
         con.print(t)
+    if r.get("probes"):
+        con.print("  probes: " + ", ".join(f"{name} {_g(v, 6)}{unit}" for name, v in r["probes"].items()))
     for p in written:
         con.print(f"wrote {safe(p)}")
     con.print(f"[dim]{r['caution']}[/]")

@@ -57,6 +57,7 @@ def write_vtk(path, field, case: Case) -> Path:
         ("region", "Int32", 1, lambda: flipped(case.codes).astype("<i4")),
         ("flux", "Float64", 3, lambda: np.stack([flipped(qx), flipped(qy), np.zeros((rows, cols))], axis=-1).astype("<f8", copy=False)),
     ]
+    arrays += _coefficient_arrays(case, flipped)
     with atomic_write(target, "wb", "VTK file") as f:
         f.write(b'<?xml version="1.0"?>\n')
         f.write(b'<VTKFile type="ImageData" version="1.0" byte_order="LittleEndian" header_type="UInt64">\n')
@@ -74,6 +75,20 @@ def write_vtk(path, field, case: Case) -> Path:
             del data
         f.write(b"      </CellData>\n    </Piece>\n  </ImageData>\n</VTKFile>\n")
     return target
+
+
+def _coefficient_arrays(case: Case, flipped) -> list:
+    """Case format v1.1: the per-cell conductivity (kx, ky) and source of a case with orthotropy or maps,
+    NaN outside the interior cells (cell data beside the field)."""
+    if not (getattr(case, "maps", ()) or any(getattr(r, "conductivity_y", None) is not None for r in case.regions)):
+        return []
+    from relaxtui.case.physics import cell_coefficients
+
+    kx, ky, s = cell_coefficients(case)
+    return [
+        ("conductivity", "Float64", 2, lambda: np.stack([flipped(kx), flipped(ky)], axis=-1).astype("<f8", copy=False)),
+        ("source", "Float64", 1, lambda: flipped(s).astype("<f8", copy=False)),
+    ]
 
 
 def _write_base64(f, head: bytes, body: memoryview) -> None:
@@ -99,7 +114,7 @@ def _xml_text(text: str) -> str:
 HISTORY_COLUMNS = ("sweep", "seconds", "residual", "estimated_error")
 
 
-def write_bundle(path, *, field, case: Case, history, report) -> Path:
+def write_bundle(path, *, field, case: Case, history, report, probes=None) -> Path:
     """Write one ``.npz`` archive of a run, atomically; return the path.
 
     Arrays (all loadable with ``numpy.load(path, allow_pickle=False)``):
@@ -111,7 +126,13 @@ def write_bundle(path, *, field, case: Case, history, report) -> Path:
       named by ``history_columns`` — sweep, seconds, residual, estimated_error,
       and omega when the history records it;
     * ``history_columns``: unicode (k,);
-    * ``report``: a 0-d unicode array holding the report as JSON text.
+    * ``report``: a 0-d unicode array holding the report as JSON text;
+    * case format v1.1, only where the case has them: ``probe_names`` (unicode (p,)),
+      ``probe_xy`` (float64 (p, 2), metres), ``probe_history`` (float64 (chunks, 2 + p):
+      sweep, seconds, then each probe's value, from ``probes``, a
+      :class:`relaxtui.output.probes.ProbeLog`); ``conductivity`` (float64 (rows, cols, 2),
+      kx and ky per interior cell, NaN elsewhere) and ``source`` (float64 (rows, cols)) for a
+      case with orthotropy or coefficient maps; ``geometry`` (0-d unicode) when not planar.
 
     ``history`` is an object with 1-D array attributes ``sweep``, ``seconds``,
     ``residual``, ``estimated_error`` (and optionally ``omega``), such as
@@ -131,6 +152,23 @@ def write_bundle(path, *, field, case: Case, history, report) -> Path:
             raise UsageError(f"history columns differ in length: {dict(zip(columns, map(len, cols)))}")
         table = np.column_stack(cols) if cols[0].size else np.empty((0, len(columns)))
     text = json.dumps(report, indent=2, ensure_ascii=False, allow_nan=False)
+    extra = {}
+    if getattr(case, "probes", ()):
+        extra["probe_names"] = np.array([p.name for p in case.probes], dtype=str)
+        extra["probe_xy"] = np.array([[p.x, p.y] for p in case.probes], dtype=np.float64)
+        if probes is not None and probes.rows:
+            extra["probe_history"] = np.column_stack([np.asarray(probes.sweep, dtype=np.float64),
+                                                      np.asarray(probes.seconds), np.array(probes.rows)])
+        else:
+            extra["probe_history"] = np.empty((0, 2 + len(case.probes)))
+    if getattr(case, "maps", ()) or any(getattr(r, "conductivity_y", None) is not None for r in case.regions):
+        from relaxtui.case.physics import cell_coefficients
+
+        kx, ky, s = cell_coefficients(case)
+        extra["conductivity"] = np.stack([kx, ky], axis=-1)
+        extra["source"] = s
+    if getattr(case, "geometry", "planar") != "planar":
+        extra["geometry"] = np.array(case.geometry, dtype=str)
     with atomic_write(target, "wb", "bundle") as f:
         np.savez(
             f,
@@ -140,6 +178,7 @@ def write_bundle(path, *, field, case: Case, history, report) -> Path:
             history=table,
             history_columns=np.array(columns, dtype=str),
             report=np.array(text, dtype=str),
+            **extra,
         )
     return target
 

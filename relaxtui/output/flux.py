@@ -127,8 +127,17 @@ def flux(field, case: Case) -> tuple[np.ndarray, np.ndarray]:
     """
     gx, gy = gradient(field, case)
     k = cell_conductivity(case)
-    np.multiply(gx, k, out=gx)
-    np.multiply(gy, k, out=gy)
+    kx = ky = k
+    if getattr(case, "per_face_physics", False):
+        # case format v1.1: orthotropic regions use ky in y, mapped regions their cells' own k
+        from relaxtui.case.physics import cell_coefficients
+
+        ckx, cky, _ = cell_coefficients(case)
+        interior = np.isfinite(ckx)
+        kx = np.where(interior, ckx, k)
+        ky = np.where(interior, cky, k)
+    np.multiply(gx, kx, out=gx)
+    np.multiply(gy, ky, out=gy)
     np.negative(gx, out=gx)
     np.negative(gy, out=gy)
     return gx, gy

@@ -163,6 +163,12 @@ def build_report(run, field: np.ndarray) -> dict:
 
         report["mask"] = os.path.realpath(case.mask_path)  # resolved: a shared picture elsewhere is visible
         report["mask_outside_case_folder"] = mask_outside_folder(case) is not None
+    from relaxtui.output.probes import ProbeSet  # case format v1.1: the value at each [[probe]]
+
+    report["probes"] = {name: _f(v) for name, v in ProbeSet(case).as_dict(field).items()}
+    report["geometry"] = getattr(case, "geometry", "planar")
+    if report["geometry"] == "axisymmetric":
+        report["depth"] = None  # flows are totals around the axis
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION

@@ -16,12 +16,12 @@ from pathlib import Path
 
 
 def write_run_outputs(result, *, out=None, report=None, history=None, picture=None, vtk=None, bundle=None,
-                      scale: int = 1, isolines=None) -> list[Path]:
+                      scale: int = 1, isolines=None, probes=None) -> list[Path]:
     """Write the outputs of a :class:`relaxtui.solver.driver.SolveResult` as one set; returns the paths."""
     from relaxtui.output.atomic import OutputSet, pause_for_tests, write_json, write_npy
     from relaxtui.output.report import stamp_outputs
 
-    given = [p for p in (report, out, history, picture, vtk, bundle) if p is not None]
+    given = [p for p in (report, out, history, picture, vtk, bundle, probes) if p is not None]
     if not given:
         return []
     pause_for_tests("writing")
@@ -30,6 +30,12 @@ def write_run_outputs(result, *, out=None, report=None, history=None, picture=No
             write_npy(out, result.field, "field")
         if history is not None:
             result.history.to_csv(history)
+        if probes is not None:  # case format v1.1: the probe log
+            if result.probes is None:
+                from relaxtui.errors import UsageError
+
+                raise UsageError("--probes: the case declares no [[probe]]")
+            result.probes.to_csv(probes)
         if picture or vtk or bundle:
             from relaxtui.output import fields, pictures
 
@@ -41,9 +47,9 @@ def write_run_outputs(result, *, out=None, report=None, history=None, picture=No
                 stamp_outputs(result.report, batch.pending, {"field": out, "history": history, "picture": picture,
                                                              "vtk": vtk})
                 fields.write_bundle(bundle, field=result.field, case=result.case, history=result.history,
-                                    report=result.report)
+                                    report=result.report, probes=result.probes)
         stamp_outputs(result.report, batch.pending, {"field": out, "history": history, "picture": picture, "vtk": vtk,
-                                                     "bundle": bundle})
+                                                     "bundle": bundle, "probes": probes})
         if report is not None:
             write_json(report, result.report, "report")
         old_report = [report] if report is not None and os.path.lexists(report) else []

@@ -64,6 +64,7 @@ class SolveResult:
     report: dict
     history: History
     case: model.Case
+    probes: object = None  # relaxtui.output.probes.ProbeLog of a case with probes (case format v1.1)
 
 
 def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
@@ -107,6 +108,11 @@ class Run:
         self._radius_cache = radius_cache
         self.on_prepare = on_prepare
         self.history = History()
+        self.probe_log = None  # probe values after every chunk (case format v1.1 probes)
+        if getattr(case, "probes", ()):
+            from relaxtui.output.probes import ProbeLog
+
+            self.probe_log = ProbeLog(case)
         self._cancel = threading.Event()
         self._prepared = False
         self._u = None
@@ -427,6 +433,8 @@ class Run:
                 secs = self.seconds - dt + dt * np.arange(1, k + 1) / k
                 errs = self.rule.recent_errors(k)
                 self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
+                if self.probe_log is not None:
+                    self.probe_log.record(self.rule.sweeps, self.seconds, self._u)
             # the time limit covers the whole run, set-up included
             decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
@@ -567,7 +575,7 @@ class Run:
 
         field = self.operator.finish(self._u)
         report = build_report(self, field)
-        return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case)
+        return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case, probes=self.probe_log)
 
 
 def _group(n: int) -> str:
@@ -621,9 +629,9 @@ def check_outputs(**paths) -> None:
             check_target(path, what)
 
 
-def write_outputs(result: SolveResult, *, out=None, report=None, history=None) -> list[Path]:
-    """Write the field (.npy), report (.json) and history (.csv) atomically."""
+def write_outputs(result: SolveResult, *, out=None, report=None, history=None, probes=None) -> list[Path]:
+    """Write the field (.npy), report (.json), history (.csv) and probe log (.csv, v1.1) as one set."""
     from relaxtui.output.sets import write_run_outputs
 
-    check_outputs(field=out, report=report, history=history)
-    return write_run_outputs(result, out=out, report=report, history=history)  # one set: temporaries, then renames
+    check_outputs(field=out, report=report, history=history, probes=probes)
+    return write_run_outputs(result, out=out, report=report, history=history, probes=probes)  # temporaries, then renames

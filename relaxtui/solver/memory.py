@@ -68,7 +68,14 @@ PICTURE_BYTES_PER_CELL = 6
 FIXED_BYTES = 200 * 1024 * 1024
 
 
-def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1) -> int:
+# Case format v1.1 per-cell path (coefficient maps, axisymmetry; relaxtui.solver.assembly): a uint32
+# class code (3 B more than uint8), a table row (40 B) and a diagonal (8 B) per cell, 8 B per value of
+# up to two maps, and the numpy assembly's transient peak above what it keeps. Measured with tracemalloc
+# on the 1024² model problem with one map: 52 B per cell held, 183 B per cell at the assembly's peak.
+PER_CELL_PATH_BYTES_PER_CELL = 3 + 40 + 8 + 16 + 128
+
+
+def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False) -> int:
     """Bytes a solve of a ``rows`` x ``cols`` picture is expected to need.
 
     Parameters
@@ -80,6 +87,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         registry does not know) counts as the default red-black SOR (one field buffer).
     materials : int
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
+    per_cell : bool
+        The case takes the v1.1 per-cell path (coefficient maps or axisymmetric geometry).
 
     Returns
     -------
@@ -106,6 +115,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
               resident + max(buffers, OUTPUT_BYTES_PER_CELL * cells)]  # the buffers are released before the report
     if m is not None and m.bytes_per_cell:
         phases.append(resident + m.bytes_per_cell * cells)
+    if per_cell:  # case format v1.1 per-cell path: its weight arrays stay resident
+        return int(FIXED_BYTES + max(phases) + PER_CELL_PATH_BYTES_PER_CELL * cells)
     return int(FIXED_BYTES + max(phases))
 
 

@@ -366,7 +366,9 @@ class MultigridStepper:
         from relaxtui.kernels import multigrid as mg
 
         operator = self.operator
-        self.h = Hierarchy(operator, self.coarsest)
+        # per-cell operators (case format v1.1 maps, axisymmetry) have one class per cell: no bulk shortcut
+        per_cell = getattr(getattr(operator, "physics", None), "per_cell", False)
+        self.h = Hierarchy(operator, self.coarsest, bulk=not per_cell)
         self.direct = not self.h.levels and operator.unknowns > 0
         shape = operator.padded_shape
         held = 0

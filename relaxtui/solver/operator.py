@@ -111,7 +111,14 @@ class Operator:
         from relaxtui.kernels import assemble
 
         check_anchored(self.codes, self.kind, str(case.path or case.mask_path))
-        self._assemble(assemble)
+        self.physics = None  # the v1.1 features (relaxtui.solver.assembly), None for a v1 case
+        if getattr(case, "per_face_physics", False):
+            from relaxtui.solver.assembly import Physics
+
+            self.physics = Physics(self, case)
+            self.physics.assemble(assemble)
+        else:
+            self._assemble(assemble)
         self._scratch = None
         self._radius = None
         self._fingerprint = None
@@ -199,6 +206,8 @@ class Operator:
 
     def face_counts(self) -> np.ndarray:
         """Number of faces between interior cells and each region (int64, one entry per region)."""
+        if self.physics is not None and self.physics.per_cell:
+            return self.physics.face_counts()
         nreg = len(self.kind)
         base = nreg + 1
         out = np.zeros(nreg + 1, dtype=np.int64)
@@ -361,6 +370,8 @@ class Operator:
         imbalance = |sum of flows + source total| / (sum of |flows| + |source total|), 0 when that is 0.
         """
         self._check_field(u)
+        if self.physics is not None:
+            return self.physics.flows(u)
         from relaxtui.kernels import measure
 
         nblk = max(1, min(FLOW_BLOCKS, self.shape[0]))
