@@ -50,6 +50,14 @@ def _default_outputs(args, case):
 
 
 def run(args) -> int:
+    from relaxtui.parallel import launched_ranks
+
+    if launched_ranks() > 1:  # started by mpiexec: only then is mpi4py imported
+        from relaxtui.parallel.solve import run as run_on_ranks
+
+        code = run_on_ranks(args)
+        if code is not None:
+            return code
     from relaxtui.case import load_case
     from relaxtui.solver.driver import Run, check_outputs
 

@@ -224,11 +224,14 @@ class Run:
         self.progress = self._progress()
 
     def _scale(self) -> float:
-        view = self.operator.view(self._u)
-        codes = self.case.codes
-        kinds = self.case.kind_codes()[codes]
-        vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
-        scale = float(np.max(np.abs(vals))) if vals.size else 1.0
+        if hasattr(self.operator, "field_scale"):  # an operator split across MPI ranks reduces it itself
+            scale = self.operator.field_scale(self._u)
+        else:
+            view = self.operator.view(self._u)
+            codes = self.case.codes
+            kinds = self.case.kind_codes()[codes]
+            vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
+            scale = float(np.max(np.abs(vals))) if vals.size else 1.0
         for r in self.case.regions:
             for v in (r.value, r.ambient):
                 if v is not None:
@@ -250,7 +253,10 @@ class Run:
 
                 op = self.operator
                 t0 = time.perf_counter()
-                est = jacobi_radius(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
+                if hasattr(op, "estimate_radius"):  # an operator split across MPI ranks runs its own Lanczos
+                    est = op.estimate_radius(method_sweeps)
+                else:
+                    est = jacobi_radius(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
                 how = "settled" if est.settled else "not settled, corrected from the observed factor"
                 cached = (est.mu, est.settled,
                           f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s, {how})")
