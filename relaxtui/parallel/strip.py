@@ -32,9 +32,9 @@ INTERIOR, FIXED = 0, 1  # kind codes (relaxtui.case.model)
 def split_rows(weights: np.ndarray, parts: int) -> list[tuple[int, int]]:
     """Cut rows 0..len(weights)-1 into ``parts`` consecutive strips of about equal total weight.
 
-    Every strip gets at least one row; the cut k lies where the running sum
-    first reaches k/parts of the total (rows without weight go with the strip
-    before them). Needs ``len(weights) >= parts``.
+    Every strip gets at least one row; cut k is the row boundary where the
+    running sum comes nearest to k/parts of the total. Needs
+    ``len(weights) >= parts``.
     """
     rows = len(weights)
     if rows < parts:
@@ -44,7 +44,10 @@ def split_rows(weights: np.ndarray, parts: int) -> list[tuple[int, int]]:
     cuts = [0]
     for k in range(1, parts):
         if total > 0:
-            c = int(np.searchsorted(csum, total * k / parts, side="left")) + 1
+            target = total * k / parts
+            i = int(np.searchsorted(csum, target, side="left"))  # csum[i] is the first sum >= target
+            before = csum[i - 1] if i > 0 else 0.0
+            c = i + 1 if csum[min(i, rows - 1)] - target < target - before else i  # the nearer of the two cuts
         else:
             c = rows * k // parts
         c = max(c, cuts[-1] + 1)  # at least one row for the strip before
