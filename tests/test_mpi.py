@@ -230,6 +230,9 @@ def test_info_prints_the_per_rank_memory(tmp_path, capsys):
 def test_jacobi_is_bit_for_bit_the_single_process_field(ranks, tmp_path, capsys):
     case = masked_case(tmp_path)
     opts = ["--method", "jacobi", "--tolerance", "1e-12", "--max-sweeps", "150", "-q"]
+    if ranks == 3:  # also scatter a starting field: the converged-looking field of a short red-black run
+        assert single(["solve", case, "--max-sweeps", "40", "-q", "--out", tmp_path / "start.npy"], tmp_path, capsys) == 1
+        opts += ["--initial", str(tmp_path / "start.npy")]
     assert single(["solve", case, *opts, *outputs(str(tmp_path / "one"))], tmp_path, capsys) == 1
     code, _, err = mpirun(ranks, ["solve", case, *opts, *outputs("many")], tmp_path)
     assert code == 1, err
@@ -310,8 +313,8 @@ def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
     t0 = time.time()
     code, _, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
     assert code != 0
-    assert "error on rank 1: RuntimeError: a strip could not be read" in err
-    assert "Traceback" not in err
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert lines == ["relaxtui solve: error on rank 1: RuntimeError: a strip could not be read"], err
     assert time.time() - t0 < 120
 
 

@@ -57,6 +57,10 @@ def abort(comm, code: int, message: str | None = None) -> None:
     if message:
         try:
             print(message, file=sys.stderr, flush=True)
+            # MPICH's Abort prints a line of its own ("application called MPI_Abort ..."):
+            # the user gets ours only
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, 2)
         except Exception:  # pragma: no cover - a closed stderr must not stop the abort
             pass
     try:
