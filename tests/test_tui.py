@@ -113,17 +113,28 @@ def centre_mean(field) -> float:
     return float(field[h - 1 : h + 1, h - 1 : h + 1].mean())
 
 
-def test_run_converge_change_omega_run_again_and_export(tmp_path):
+async def first_run(pilot, app):
+    await loaded(pilot, app)
+    assert app.phase == "ready"
+    await pilot.press("s")
+    await finished(pilot, app, 1)
+    return app.records[0]
+
+
+async def second_run_at_1_5(pilot, app):
+    await set_param(pilot, app, "omega", "1.5")
+    await pilot.press("s")
+    await finished(pilot, app, 2)
+    return app.records[1]
+
+
+def test_run_converges_to_the_superposition_value(tmp_path):
     case = make_plate(tmp_path)
 
     async def scenario():
         app = RelaxApp(case)
         async with app.run_test(size=(80, 24)) as pilot:
-            await loaded(pilot, app)
-            assert app.phase == "ready"
-            await pilot.press("s")
-            await finished(pilot, app, 1)
-            first = app.records[0]
+            first = await first_run(pilot, app)
             assert first.status == "converged"
             field = first.result.field
             # superposition and symmetry: the centre is a quarter of the hot value (tolerance 1e-3)
@@ -136,11 +147,18 @@ def test_run_converge_change_omega_run_again_and_export(tmp_path):
             assert "converged" in status_text(app)
             assert "imbalance" in status_text(app)
 
+    asyncio.run(scenario())
+
+
+def test_second_run_at_another_omega_is_compared_and_chosen(tmp_path):
+    case = make_plate(tmp_path)
+
+    async def scenario():
+        app = RelaxApp(case)
+        async with app.run_test(size=(80, 24)) as pilot:
+            first = await first_run(pilot, app)
             # a second run at omega 1.5, compared with the first in the history plot
-            await set_param(pilot, app, "omega", "1.5")
-            await pilot.press("s")
-            await finished(pilot, app, 2)
-            second = app.records[1]
+            second = await second_run_at_1_5(pilot, app)
             assert second.status == "converged"
             assert second.progress.omega == 1.5 and second.result.report["omega"] == 1.5
             assert second.progress.sweeps > first.progress.sweeps  # 1.5 is far from the optimum on 28 x 28
@@ -164,6 +182,22 @@ def test_run_converge_change_omega_run_again_and_export(tmp_path):
             assert plot.current.run_id == 1 and [s.run_id for s in plot.others] == [2]
             assert app.query_one(FieldView).frame.label.startswith("run 1")
 
+    asyncio.run(scenario())
+
+
+def test_export_writes_the_chosen_run(tmp_path):
+    case = make_plate(tmp_path)
+
+    async def scenario():
+        app = RelaxApp(case)
+        async with app.run_test(size=(80, 24)) as pilot:
+            first = await first_run(pilot, app)
+            await second_run_at_1_5(pilot, app)
+            await pilot.press("3")
+            app.query_one(RunsPanel).table.move_cursor(row=0)
+            await pilot.press("enter")
+            await pilot.pause(0.1)
+            assert app.selected == 1
             # export run 1 to files in tmp_path
             await pilot.press("escape", "e")
             assert isinstance(app.screen, ExportScreen)

@@ -10,6 +10,11 @@ a finished field it owns.
 Keys (while the panel has focus): arrows move the probe one pixel (the view
 follows it), shift+arrows a quarter of the panel, ``+``/``-`` zoom in and out
 around the probe, ``0`` shows the whole grid.
+
+Views (:attr:`FieldView.mode`, the app cycles it): the solution, on the range of
+the domain's own values (:attr:`FieldView.include_held` widens it to the held
+values and ambients); the residual of each cell and the latest update per
+sweep, each on its own symmetric log scale (:func:`relaxtui.tui.scales.symlog`).
 """
 
 from __future__ import annotations
@@ -18,11 +23,10 @@ import math
 
 from rich.console import Group
 from rich.text import Text
-from textual.binding import Binding
-from textual.message import Message
 from textual.widget import Widget
 
 from relaxtui.tui.heatmap import LEGEND_LINES, render_heatmap
+from relaxtui.tui.messages import PanelMessage, hidden_keys
 from relaxtui.tui.sampling import (
     MAX_MAGNIFY,
     Frame,
@@ -31,6 +35,9 @@ from relaxtui.tui.sampling import (
     clamp_viewport,
     fit_zoom,
 )
+from relaxtui.tui.scales import domain_range, symlog
+
+VIEW_TITLES = {"solution": "Field", "residual": "Residual r (symlog)", "update": "Update per sweep (symlog)"}
 
 PROBE_LINES = 1
 
@@ -44,32 +51,22 @@ def _num(v: float) -> str:
 class FieldView(Widget, can_focus=True):
     """Heatmap of the selected run's field with a probe cursor."""
 
-    BINDINGS = [
-        Binding("up", "move(-1, 0)", "Probe up", show=False),
-        Binding("down", "move(1, 0)", "Probe down", show=False),
-        Binding("left", "move(0, -1)", "Probe left", show=False),
-        Binding("right", "move(0, 1)", "Probe right", show=False),
-        Binding("shift+up", "jump(-1, 0)", "Pan up", show=False),
-        Binding("shift+down", "jump(1, 0)", "Pan down", show=False),
-        Binding("shift+left", "jump(0, -1)", "Pan left", show=False),
-        Binding("shift+right", "jump(0, 1)", "Pan right", show=False),
-        Binding("plus,equals_sign", "zoom(-1)", "Zoom in", show=False),
-        Binding("minus", "zoom(1)", "Zoom out", show=False),
-        Binding("0", "fit", "Whole grid", show=False),
-    ]
+    BINDINGS = hidden_keys(
+        ("up", "move(-1, 0)", "Probe up"), ("down", "move(1, 0)", "Probe down"),
+        ("left", "move(0, -1)", "Probe left"), ("right", "move(0, 1)", "Probe right"),
+        ("shift+up", "jump(-1, 0)", "Pan up"), ("shift+down", "jump(1, 0)", "Pan down"),
+        ("shift+left", "jump(0, -1)", "Pan left"), ("shift+right", "jump(0, 1)", "Pan right"),
+        ("plus,equals_sign", "zoom(-1)", "Zoom in"), ("minus", "zoom(1)", "Zoom out"), ("0", "fit", "Whole grid"),
+    )
 
-    class ViewChanged(Message):
+    class ViewChanged(PanelMessage):
         """The viewport (pan, zoom, size or probe cursor) changed; a new frame is wanted."""
 
         def __init__(self, view: "FieldView", viewport: Viewport, plan_changed: bool) -> None:
-            super().__init__()
+            super().__init__(view)
             self.view = view
             self.viewport = viewport
             self.plan_changed = plan_changed
-
-        @property
-        def control(self) -> "FieldView":
-            return self.view
 
     def __init__(self, *, id: str | None = None, classes: str | None = None) -> None:
         super().__init__(id=id, classes=classes)
@@ -82,6 +79,9 @@ class FieldView(Widget, can_focus=True):
         self.frame: Frame | None = None
         self.viewport: Viewport | None = None
         self._auto_fit = True  # refit the whole grid on resize until the user zooms
+        self.mode = "solution"  # solution, residual or update
+        self.include_held = False  # widen the solution's scale to held values and ambients
+        self.state = ""  # the shown run's state, for the title ("paused", "running", ...)
 
     # -- attributes down --------------------------------------------------------
     def set_case(self, case, unit: str, scale_range: tuple[float, float] | None) -> None:
@@ -95,10 +95,36 @@ class FieldView(Widget, can_focus=True):
         self._auto_fit = True
         self._update_viewport(fit=True)
 
-    def show_frame(self, frame: Frame | None) -> None:
+    def show_frame(self, frame: Frame | None, state: str | None = None) -> None:
+        """Show ``frame``; ``state`` (the run's state from the session) goes in the title."""
         self.frame = frame
+        if state is not None:
+            self.state = state
+        self._title()
+        self.refresh()
+
+    def set_state(self, state: str) -> None:
+        if state != self.state:
+            self.state = state
+            self._title()
+
+    def _title(self) -> None:
+        frame = self.frame
+        title = VIEW_TITLES.get(self.mode, "Field")
         if frame is not None and frame.label:
-            self.border_title = f"Field · {frame.label}"
+            label = frame.label
+            if self.state and frame.sweeps >= 0:
+                label = label.replace(" · sweep ", f" · {self.state} · sweep ", 1)
+            title += f" · {label}"
+        self.border_title = title
+
+    def set_mode(self, mode: str) -> None:
+        self.mode = mode
+        self._title()
+        self.refresh()
+
+    def set_include_held(self, on: bool) -> None:
+        self.include_held = on
         self.refresh()
 
     def set_placeholder(self, text: str) -> None:
@@ -185,12 +211,22 @@ class FieldView(Widget, can_focus=True):
         if same_plan:
             i, j, size = vp.pixel_of(*vp.cursor)
             cursor = (i, j, size)
-        lo, hi = frame.vmin, frame.vmax
-        if self.scale_range is not None:
-            lo = min(self.scale_range[0], lo) if math.isfinite(lo) else self.scale_range[0]
-            hi = max(self.scale_range[1], hi) if math.isfinite(hi) else self.scale_range[1]
+        values, ticks, unit = frame.values, None, self.unit
+        if frame.mode == "solution" and self.mode == "solution":
+            lo, hi = domain_range(frame.values, frame.domain, frame.fixed)
+            if self.include_held:
+                lo, hi = frame.vmin, frame.vmax
+                if self.scale_range is not None:
+                    lo = min(self.scale_range[0], lo) if math.isfinite(lo) else self.scale_range[0]
+                    hi = max(self.scale_range[1], hi) if math.isfinite(hi) else self.scale_range[1]
+        elif frame.mode == self.mode:
+            values, limit, ticks, _ = symlog(frame.values)
+            lo, hi = -limit, limit
+            unit = f"{unit}/sweep" if frame.mode == "update" and unit else unit
+        else:
+            return Text("computing the view…", style="italic")
         heatmap = render_heatmap(
-            frame.values,
+            values,
             width,
             height - PROBE_LINES,
             mono=self.mono,
@@ -198,9 +234,10 @@ class FieldView(Widget, can_focus=True):
             vmax=hi,
             fixed=frame.fixed,
             domain=frame.domain,
-            unit=self.unit,
+            unit=unit,
             cursor=cursor,
             magnify=False,
+            ticks=ticks,
         )
         self.border_subtitle = self._zoom_text(vp)
         return Group(self.probe_text(), heatmap)

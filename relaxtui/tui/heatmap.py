@@ -137,6 +137,7 @@ def render_heatmap(
     cursor: tuple[int, int, int] | None = None,
     legend: bool = True,
     magnify: bool = True,
+    ticks: list[tuple[float, str]] | None = None,
 ) -> Heatmap:
     """Draw ``array`` as a heatmap of at most ``width`` x ``height`` characters.
 
@@ -166,6 +167,9 @@ def render_heatmap(
         Append the two legend lines.
     magnify : bool
         Enlarge a small array by a whole factor to fill the space.
+    ticks : list of (value, label), optional
+        The legend's ticks (values in the array's units, e.g. of a transformed
+        scale); default round values from :func:`relaxtui.output.colormap.nice_ticks`.
     """
     values = np.asarray(array, dtype=np.float64)
     if values.ndim != 2:
@@ -206,7 +210,7 @@ def render_heatmap(
     while len(lines) < 1:
         lines.append([])
     if legend:
-        lines.extend(_legend(width, lo, hi, unit, mono, table, has_fixed=bool(pfix.any()) if pfix.size else False))
+        lines.extend(_legend(width, lo, hi, unit, mono, table, has_fixed=bool(pfix.any()) if pfix.size else False, ticks=ticks))
     return Heatmap(lines, width, block, mag, tuple(pix.shape), lo, hi)
 
 
@@ -302,7 +306,7 @@ def _mono_lines(pix, pfix, pdom, t, cursor_box) -> list[list[Segment]]:
     return lines
 
 
-def _legend(width: int, lo: float, hi: float, unit: str, mono: bool, table, has_fixed: bool) -> list[list[Segment]]:
+def _legend(width: int, lo: float, hi: float, unit: str, mono: bool, table, has_fixed: bool, ticks=None) -> list[list[Segment]]:
     """The colour scale with its unit (and the key to held cells), then the tick labels."""
     unit_text = f" {unit}" if unit else ""
     key_text = ("  " + MONO_FIXED + " held") if mono else "  ▀ held"
@@ -329,14 +333,18 @@ def _legend(width: int, lo: float, hi: float, unit: str, mono: bool, table, has_
         line1.append(Segment("  "))
         line1.append(Segment("▀" if not mono else MONO_FIXED, None if mono else Style(color=Color.from_rgb(*FIXED_RGB))))
         line1.append(Segment(" held"))
-    return [line1, [Segment(_tick_line(lo, hi, bar_width))]]
+    return [line1, [Segment(_tick_line(lo, hi, bar_width, ticks))]]
 
 
-def _tick_line(lo: float, hi: float, bar_width: int) -> str:
+def _tick_line(lo: float, hi: float, bar_width: int, given=None) -> str:
     """Tick labels, each centred under its place on the scale, never overlapping."""
-    n = max(2, min(bar_width // 8, 7))
-    ticks = colormap.nice_ticks(lo, hi, n)
-    labels = colormap.format_ticks(ticks)
+    if given is not None:
+        ticks = [v for v, _ in given]
+        labels = [text for _, text in given]
+    else:
+        n = max(2, min(bar_width // 8, 7))
+        ticks = colormap.nice_ticks(lo, hi, n)
+        labels = colormap.format_ticks(ticks)
     line = [" "] * bar_width
     last_end = -2
     span = hi - lo

@@ -3,8 +3,13 @@
 The selected run's largest residual and estimated error per sweep are drawn on
 a log axis (the plot works in log10 and labels its ticks in decades), with the
 tolerance as a horizontal line and each mid-run ω change as a vertical line;
-the session's other runs are overlaid in muted colours. The plot never sees
-live arrays: the app hands it immutable :class:`Series` (decimated copies).
+the session's other runs are overlaid in muted colours. The x-axis spans the
+selected run (earlier, longer runs are clipped) unless ``show_all`` is on.
+Below it, the measured convergence factor per chunk (the residual's ratio
+over the chunk, per sweep) is drawn next to the method's theoretical factor at
+the chosen ω for the measured Jacobi radius, so that the asymptotic regime
+shows as the points settling on the line. The plot never sees live arrays:
+the app hands it immutable :class:`Series` (decimated copies).
 """
 
 from __future__ import annotations
@@ -20,6 +25,7 @@ from textual.widgets import Static
 from textual_plotext import PlotextPlot
 
 from relaxtui.output.colormap import PALETTE, nice_ticks
+from relaxtui.output.text import group
 
 MAX_POINTS = 600  # points per curve handed to the plot (decimated beyond)
 
@@ -74,11 +80,13 @@ class HistoryPlot(PlotextPlot):
         super().__init__(id=id, classes=classes)
         self.current: Series | None = None
         self.others: tuple[Series, ...] = ()
+        self.show_all = False
         self._limits = None
 
-    def show(self, current: Series | None, others=()) -> None:
+    def show(self, current: Series | None, others=(), show_all: bool = False) -> None:
         self.current = current
         self.others = tuple(others)
+        self.show_all = show_all
         self._replot()
         self.refresh()
 
@@ -97,13 +105,15 @@ class HistoryPlot(PlotextPlot):
                 xmax = max(xmax, x[-1])
         cur = self.current
         if cur is not None:
+            if not self.show_all and cur.sweeps.size:
+                xmax = max(float(cur.sweeps[-1]), 1.0)  # the selected run's span; longer runs are clipped
             for values, rgb in ((cur.error, ERROR_RGB), (cur.residual, RESIDUAL_RGB)):
                 x, y = _log_points(cur.sweeps, values)
                 if x:
                     plt.plot(x, y, marker="braille", color=rgb)
                     lows.append(min(y))
                     highs.append(max(y))
-                    xmax = max(xmax, x[-1])
+                    xmax = max(xmax, x[-1]) if self.show_all else xmax
             if cur.tolerance > 0:
                 t = math.log10(cur.tolerance)
                 plt.horizontal_line(t, color=TOLERANCE_RGB)
@@ -129,8 +139,39 @@ class HistoryPlot(PlotextPlot):
             plt.yticks(ticks, [_decade(t) for t in ticks])
             plt.xlim(0, xmax)
             xt = [v for v in nice_ticks(0, xmax, max(2, self.size.width // 10)) if v == int(v)]
-            plt.xticks(xt, [f"{int(v):,}".replace(",", " ") for v in xt])
+            plt.xticks(xt, [group(v) for v in xt])
         return super().render()
+
+
+class FactorPlot(PlotextPlot):
+    """Measured factor per chunk (points) and the theoretical factor (a line)."""
+
+    def __init__(self, *, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__(id=id, classes=classes)
+        self.sweeps = np.zeros(0)
+        self.factors = np.zeros(0)
+        self.theory: float | None = None
+
+    def show(self, sweeps, factors, theory: float | None, xmax: float | None = None) -> None:
+        self.sweeps, self.factors, self.theory = np.asarray(sweeps, float), np.asarray(factors, float), theory
+        plt = self.plt
+        plt.clear_data()
+        plt.clear_figure()
+        ok = np.isfinite(self.factors)
+        x, y = self.sweeps[ok], self.factors[ok]
+        values = list(y)
+        if x.size:
+            plt.scatter(x.tolist(), y.tolist(), marker="braille", color=RESIDUAL_RGB)
+        if theory is not None and math.isfinite(theory):
+            plt.horizontal_line(theory, color=TOLERANCE_RGB)
+            values.append(theory)
+        if values:
+            lo, hi = min(values), max(values)
+            pad = max((hi - lo) * 0.15, 1e-6)
+            plt.ylim(lo - pad, hi + pad)
+        top = xmax if xmax else (float(x[-1]) if x.size else 1.0)
+        plt.xlim(0, max(top, 1.0))
+        self.refresh()
 
 
 def _decade(k: int) -> str:
@@ -142,10 +183,29 @@ class HistoryPanel(Vertical):
 
     def compose(self) -> ComposeResult:
         yield HistoryPlot(id="history-plot")
+        yield FactorPlot(id="factor-plot")
         yield Static(id="history-key")
+        yield Static(id="factor-key")
 
-    def show(self, current: Series | None, others=()) -> None:
-        self.query_one(HistoryPlot).show(current, others)
+    @property
+    def plot(self) -> HistoryPlot:
+        return self.query_one(HistoryPlot)
+
+    def show(self, current: Series | None, others=(), *, show_all: bool = False, factors=None, theory: float | None = None) -> None:
+        plot = self.query_one(HistoryPlot)
+        plot.show(current, others, show_all=show_all)
+        sweeps, values = factors if factors is not None else (np.zeros(0), np.zeros(0))
+        xmax = None
+        if current is not None and current.sweeps.size and not show_all:
+            xmax = float(current.sweeps[-1])
+        self.query_one(FactorPlot).show(sweeps, values, theory, xmax)
+        fkey = Text(no_wrap=True, overflow="ellipsis")
+        fkey.append("• ", style=_rgb(RESIDUAL_RGB))
+        last = values[-1] if len(values) else None
+        fkey.append("factor per chunk" + (f" {last:.5f}" if last is not None else " —") + "  ")
+        fkey.append("━ ", style=_rgb(TOLERANCE_RGB))
+        fkey.append("theory " + (f"{theory:.5f}" if theory is not None else "— (no radius estimate)"))
+        self.query_one("#factor-key", Static).update(fkey)
         key = Text(no_wrap=True, overflow="ellipsis")
         if current is None:
             key.append("no run yet", style="italic")
@@ -162,6 +222,7 @@ class HistoryPanel(Vertical):
             if others:
                 key.append("  ━ ", style=_rgb(MUTED_RGB[0]))
                 key.append("other runs: " + ", ".join(s.label for s in others), style="dim")
+            key.append("  a: " + ("this run's span" if show_all else "all runs' span"), style="dim")
         self.query_one("#history-key", Static).update(key)
 
 

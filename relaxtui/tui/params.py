@@ -1,85 +1,189 @@
 """The parameters panel: method, ω, tolerance and sweep limit of the next run.
 
-:meth:`ParamsPanel.read` turns the fields into solver options or raises
-:class:`relaxtui.errors.UsageError` naming the bad field, so the app can
-refuse bad input with a message. Pressing Enter in the ω field posts
-:class:`ParamsPanel.OmegaSubmitted` (the app applies it to a running solve);
-Escape in any field hands the focus back to the field panel.
+The app talks to the panel through methods: :meth:`ParamsPanel.set_defaults`,
+:meth:`ParamsPanel.focus_field`, :meth:`ParamsPanel.read` (the options as
+solver keywords, or :class:`relaxtui.errors.UsageError` naming the bad field),
+:meth:`ParamsPanel.set_unit` and :meth:`ParamsPanel.set_radius`.
+
+Every field is checked when Enter is pressed in it, with the command line's
+messages; a valid value hands the focus back to the panels (so the footer's
+keys work at once), a bad one keeps the focus and is refused with a message.
+Escape leaves a field without checking. Enter in the ω field posts
+:class:`ParamsPanel.OmegaSubmitted` (the app applies it to a running solve).
+
+The method is a small spinner (left/right or up/down choose, Enter confirms),
+not a drop-down list: no overlay to cover the status strip at 80 x 24, and
+letters are never swallowed by a search. When the method changes, ω goes back
+to ``auto`` unless the user set a value for that method earlier; a Jacobi
+weight above 1 is flagged beside the field.
 """
 
 from __future__ import annotations
-
-import math
 
 from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
 from textual.message import Message
-from textual.widgets import Input, Label, Select
+from textual.reactive import reactive
+from textual.widget import Widget
+from textual.widgets import Input, Label, Static
 
 from relaxtui.errors import UsageError
+from relaxtui.tui.messages import PanelMessage
+
+try:  # the one options path, once it exists (it raises with the command line's messages)
+    from relaxtui import options as _options
+except ImportError:  # pragma: no cover - depends on the solver layer's version
+    _options = None
+
+FIELD_LABEL = {"omega": "ω", "tolerance": "tolerance", "max-sweeps": "sweep limit"}
 
 
-def parse_omega(text: str):
-    """"auto" or a number in (0, 2)."""
-    text = text.strip()
-    if text.lower() == "auto" or text == "":
+def _cli_omega(text: str):
+    if text == "auto":
         return "auto"
     try:
         value = float(text)
     except ValueError:
-        raise UsageError(f"ω must be a number in (0, 2) or 'auto', not {text!r}") from None
+        raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {text!r}") from None
     if not 0.0 < value < 2.0:
-        raise UsageError(f"ω must lie in (0, 2), got {text}")
+        raise UsageError(f"omega must lie in (0, 2), got {value:g}")
     return value
+
+
+def _cli_number(name: str, kind, wants: str, ok, bad: str):
+    """A parser with the command line's two messages: not a number, and out of range."""
+
+    def parse(text: str):
+        try:
+            value = kind(text)
+        except ValueError:
+            raise UsageError(f"{name} must be {wants}, not {text!r}") from None
+        if not ok(value):
+            raise UsageError(f"{name} must be {bad}, got {text if kind is float else value}")
+        return value
+
+    return parse
+
+
+_cli_tolerance = _cli_number("tolerance", float, "a number", lambda v: v > 0.0 and v == v and v != float("inf"), "a positive finite number")
+_cli_max_sweeps = _cli_number("max-sweeps", int, "a whole number", lambda v: v >= 1, "at least 1")
+
+
+def _parser(name: str, fallback):
+    shared = getattr(_options, f"parse_{name}", None) if _options is not None else None
+    return shared or fallback
+
+
+def _labelled(which: str, parse, text: str):
+    try:
+        return parse(text)
+    except UsageError as exc:
+        raise UsageError(f"{FIELD_LABEL[which]}: {exc}") from None
+
+
+def parse_omega(text: str):
+    """"auto" (also for an empty field) or a number in (0, 2); the command line's messages."""
+    text = text.strip()
+    return _labelled("omega", _parser("omega", _cli_omega), "auto" if text.lower() in ("", "auto") else text)
 
 
 def parse_tolerance(text: str) -> float:
-    text = text.strip()
-    try:
-        value = float(text)
-    except ValueError:
-        raise UsageError(f"tolerance must be a positive number, not {text!r}") from None
-    if not (value > 0.0 and math.isfinite(value)):
-        raise UsageError(f"tolerance must be a positive finite number, got {text}")
-    return value
+    return _labelled("tolerance", _parser("tolerance", _cli_tolerance), text.strip())
 
 
 def parse_max_sweeps(text: str) -> int:
-    text = text.strip().replace("_", "").replace(" ", "")
-    try:
-        value = int(text)
-    except ValueError:
-        raise UsageError(f"sweep limit must be a whole number, not {text!r}") from None
-    if value < 1:
-        raise UsageError(f"sweep limit must be at least 1, got {value}")
-    return value
+    text = text.strip().replace("_", "").replace(" ", "").replace("\u202f", "")
+    return _labelled("max-sweeps", _parser("max_sweeps", _cli_max_sweeps), text)
+
+
+PARSERS = {"omega": parse_omega, "tolerance": parse_tolerance, "max-sweeps": parse_max_sweeps}
+
+
+def jacobi_warning(omega, mu: float | None) -> str:
+    """A warning for a Jacobi weight above 1 (empty when there is none).
+
+    Weighted Jacobi's factor on a 2-cyclic operator is max |1 - w (1 ± μ)|
+    (Young 1971; :func:`relaxtui.solver.omega.jacobi_factor`): above 1 once
+    w > 2 / (1 + μ), which is barely above 1 on a fine grid (μ near 1).
+    """
+    if omega == "auto" or omega is None or float(omega) <= 1.0:
+        return ""
+    if mu is not None:
+        limit = 2.0 / (1.0 + mu)
+        verdict = "diverges" if float(omega) > limit else "converges slower than at 1"
+        return f"Jacobi weight {float(omega):g} > 1: {verdict} (limit 2/(1+μ) = {limit:.4f})"
+    return f"Jacobi weight {float(omega):g} > 1: diverges once it exceeds 2/(1+μ), just above 1 on a fine grid"
 
 
 class ParamField(Input):
-    """A one-line input that gives the focus back on Escape."""
+    """A one-line input: Enter checks it, Escape gives the focus back."""
 
-    BINDINGS = [Binding("escape", "leave", "Back to the field", show=False)]
+    BINDINGS = [Binding("escape", "leave", "Back", show=True)]
 
     async def action_leave(self) -> None:
         await self.run_action("app.focus_panel")
 
 
+class MethodChoice(Widget, can_focus=True):
+    """The method: left/right (or up/down) choose, Enter confirms and gives the focus back."""
+
+    BINDINGS = [
+        Binding("left,up", "turn(-1)", "Previous", show=False),
+        Binding("right,down", "turn(1)", "Next", show=False),
+        Binding("enter", "confirm", "Done", show=True),
+        Binding("escape", "confirm", "Back", show=True),
+    ]
+
+    value = reactive("")
+
+    class Changed(Message):
+        def __init__(self, choice: "MethodChoice", old: str, new: str) -> None:
+            super().__init__()
+            self.choice, self.old, self.new = choice, old, new
+
+    def __init__(self, methods, value: str, *, id: str | None = None) -> None:
+        super().__init__(id=id)
+        self.methods = tuple(methods)
+        self.set_reactive(MethodChoice.value, value)
+
+    def watch_value(self, old: str, new: str) -> None:
+        if old != new:
+            self.post_message(self.Changed(self, old, new))
+
+    def action_turn(self, step: int) -> None:
+        i = self.methods.index(self.value) if self.value in self.methods else 0
+        self.value = self.methods[(i + step) % len(self.methods)]
+
+    async def action_confirm(self) -> None:
+        await self.run_action("app.focus_panel")
+
+    def render(self):
+        text = Text()
+        text.append("◂ ", style="dim")
+        text.append(self.value, style="bold" if self.has_focus else "")
+        text.append(" ▸", style="dim")
+        return text
+
+
 class ParamsPanel(Vertical):
     """Fields for the next run's options."""
 
-    class OmegaSubmitted(Message):
-        """Enter was pressed in the ω field."""
+    class OmegaSubmitted(PanelMessage):
+        """Enter was pressed in the ω field with a valid value (``value``: a number or "auto")."""
+
+        def __init__(self, panel: "ParamsPanel", text: str, value=None) -> None:
+            super().__init__(panel)
+            self.text = text
+            self.value = value
+
+    class Refused(PanelMessage):
+        """Enter was pressed in a field with a bad value."""
 
         def __init__(self, panel: "ParamsPanel", text: str) -> None:
-            super().__init__()
-            self.panel = panel
+            super().__init__(panel)
             self.text = text
-
-        @property
-        def control(self) -> "ParamsPanel":
-            return self.panel
 
     def __init__(self, methods, *, method: str, omega: str, tolerance: str, max_sweeps: str, unit: str = "",
                  id: str | None = None, classes: str | None = None) -> None:
@@ -87,12 +191,16 @@ class ParamsPanel(Vertical):
         self.methods = tuple(methods)
         self._initial = (method, omega, tolerance, max_sweeps)
         self.unit = unit
+        self.omega_by_method: dict[str, str] = {}  # ω text the user set, per method
+        self.mu: float | None = None  # the latest measured Jacobi radius (for the Jacobi warning)
+        if omega not in ("", "auto"):
+            self.omega_by_method[method] = omega
 
     def compose(self) -> ComposeResult:
         method, omega, tolerance, max_sweeps = self._initial
         with Horizontal(classes="param-row"):
             yield Label("method", classes="param-label")
-            yield Select([(m, m) for m in self.methods], value=method, allow_blank=False, compact=True, id="param-method")
+            yield MethodChoice(self.methods, method, id="param-method")
         with Horizontal(classes="param-row"):
             yield Label("ω", classes="param-label")
             yield ParamField(omega, placeholder="auto or 0<ω<2", compact=True, id="param-omega")
@@ -102,28 +210,101 @@ class ParamsPanel(Vertical):
         with Horizontal(classes="param-row"):
             yield Label("max sweeps", classes="param-label")
             yield ParamField(max_sweeps, compact=True, id="param-max-sweeps")
+        yield Static("", id="param-warning")
+
+    # -- the app's interface ---------------------------------------------------------
+    def field(self, which: str):
+        return self.query_one(f"#param-{which}")
+
+    def focus_field(self, which: str) -> None:
+        self.field(which).focus()
+
+    def set_defaults(self, method=None, omega=None, tolerance=None, max_sweeps=None) -> None:
+        """Show the case's defaults (None leaves a field as it is)."""
+        if method is not None:
+            self.field("method").set_reactive(MethodChoice.value, method)
+            self.field("method").refresh()
+        if omega is not None:
+            text = "auto" if omega == "auto" else f"{omega:g}"
+            self.field("omega").value = text
+            if text != "auto":
+                self.omega_by_method[self.method] = text
+        if tolerance is not None:
+            self.field("tolerance").value = f"{tolerance:g}"
+        if max_sweeps is not None:
+            self.field("max-sweeps").value = str(max_sweeps)
+        self._warn()
+
+    @property
+    def method(self) -> str:
+        return self.field("method").value
 
     def set_unit(self, unit: str) -> None:
         self.unit = unit
         if unit:
             self.query_one("#param-tolerance-label", Label).update(Text(f"tol. [{unit}]"))
 
+    def set_radius(self, mu: float | None) -> None:
+        if mu is not None:
+            self.mu = mu
+            self._warn()
+
     def read(self) -> dict:
         """The options as solver keywords; raises UsageError naming a bad field."""
-        method = self.query_one("#param-method", Select).value
+        method = self.method
         if method not in self.methods:
             raise UsageError("choose a method")
         return {
             "method": method,
-            "omega": parse_omega(self.query_one("#param-omega", Input).value),
-            "tolerance": parse_tolerance(self.query_one("#param-tolerance", Input).value),
-            "max_sweeps": parse_max_sweeps(self.query_one("#param-max-sweeps", Input).value),
+            "omega": parse_omega(self.field("omega").value),
+            "tolerance": parse_tolerance(self.field("tolerance").value),
+            "max_sweeps": parse_max_sweeps(self.field("max-sweeps").value),
         }
 
     def omega_text(self) -> str:
-        return self.query_one("#param-omega", Input).value
+        return self.field("omega").value
+
+    def warning(self) -> str:
+        try:
+            omega = parse_omega(self.omega_text())
+        except UsageError:
+            return ""
+        return jacobi_warning(omega, self.mu) if self.method == "jacobi" else ""
+
+    # -- events ------------------------------------------------------------------------
+    def _warn(self) -> None:
+        text = self.warning()
+        self.query_one("#param-warning", Static).update(Text(text, style="bold yellow") if text else "")
+        self.set_class(bool(text), "-warning")
+
+    def on_method_choice_changed(self, event: MethodChoice.Changed) -> None:
+        event.stop()
+        current = self.field("omega").value.strip()
+        if current.lower() not in ("", "auto"):
+            self.omega_by_method[event.old] = current
+        self.field("omega").value = self.omega_by_method.get(event.new, "auto")
+        self._warn()
+
+    def on_input_changed(self, event: Input.Changed) -> None:
+        if event.input.id == "param-omega":
+            self._warn()
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
-        if event.input.id == "param-omega":
-            event.stop()
-            self.post_message(self.OmegaSubmitted(self, event.value))
+        event.stop()
+        which = (event.input.id or "").removeprefix("param-")
+        parse = PARSERS.get(which)
+        if parse is None:
+            return
+        try:
+            value = parse(event.value)
+        except UsageError as exc:
+            self.post_message(self.Refused(self, str(exc)))
+            return
+        if which == "omega":
+            text = event.value.strip()
+            if text.lower() not in ("", "auto"):
+                self.omega_by_method[self.method] = text
+            else:
+                self.omega_by_method.pop(self.method, None)
+            self.post_message(self.OmegaSubmitted(self, event.value, value))
+        self.app.call_later(self.app.run_action, "focus_panel")

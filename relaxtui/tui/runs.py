@@ -13,11 +13,13 @@ from dataclasses import dataclass
 from rich.text import Text
 from textual.app import ComposeResult
 from textual.containers import Vertical
-from textual.message import Message
 from textual.widgets import DataTable, Static
 
-SHORT_METHOD = {"jacobi": "jacobi", "gauss-seidel": "g-seidel", "sor": "sor", "red-black-sor": "rb-sor", "multigrid": "mgrid"}
-COLUMNS = ("#", "method", "ω", "tol", "sweeps", "s", "status", "factor")
+from relaxtui.output.text import group
+from relaxtui.tui.messages import PanelMessage
+
+# Methods by their command-line names; ω "auto" says it was chosen from the measured Jacobi radius.
+COLUMNS = ("#", "method", "ω", "tolerance", "sweeps", "seconds", "status", "factor")
 
 
 @dataclass(frozen=True)
@@ -40,17 +42,17 @@ class RunRow:
 def _cells(row: RunRow, selected: bool) -> list:
     omega = "—" if row.omega is None else f"{row.omega:.3f}"
     if row.omega_auto:
-        omega += "a"
+        omega = "auto" if row.omega is None else f"{omega} auto"
     factor = "—" if row.factor is None or not math.isfinite(row.factor) else f"{row.factor:.5f}"
     status_style = {"converged": "bold green", "diverged": "bold red", "failed": "bold red", "running": "bold yellow",
                     "paused": "yellow", "preparing": "yellow", "cancelled": "dim"}.get(row.status, "")
     mark = "▸" if selected else " "
     return [
         Text(f"{mark}{row.run_id}"),
-        SHORT_METHOD.get(row.method, row.method),
+        row.method,
         omega,
         f"{row.tolerance:.0e}",
-        Text(f"{row.sweeps:,}".replace(",", " "), justify="right"),
+        Text(group(row.sweeps), justify="right"),
         Text(f"{row.seconds:.2f}", justify="right"),
         Text(row.status, style=status_style),
         factor,
@@ -60,15 +62,10 @@ def _cells(row: RunRow, selected: bool) -> list:
 class RunsPanel(Vertical):
     """The session's runs; Enter shows a run."""
 
-    class RunChosen(Message):
+    class RunChosen(PanelMessage):
         def __init__(self, panel: "RunsPanel", run_id: int) -> None:
-            super().__init__()
-            self.panel = panel
+            super().__init__(panel)
             self.run_id = run_id
-
-        @property
-        def control(self) -> "RunsPanel":
-            return self.panel
 
     def __init__(self, *, id: str | None = None, classes: str | None = None) -> None:
         super().__init__(id=id, classes=classes)
@@ -127,7 +124,12 @@ class RunsPanel(Vertical):
         text.append(f"#{row.run_id} {row.method}", style="bold")
         text.append(f" from {row.start}; ")
         text.append(row.message or row.status)
+        if row.omega_auto:
+            text.append(" · ω auto: from the measured Jacobi radius", style="dim")
         detail.update(text, layout=False)
+
+    def focus_table(self) -> None:
+        self.table.focus()
 
     def on_data_table_row_selected(self, event: DataTable.RowSelected) -> None:
         event.stop()

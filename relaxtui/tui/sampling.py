@@ -257,6 +257,8 @@ class Frame:
     vmin: float  # finite range of the pixel values (nan if none)
     vmax: float
     label: str = ""  # where the values come from, e.g. "run 2 · sweep 1 400"
+    mode: str = "solution"  # the field view: solution, residual or update
+    sweeps: int = -1  # the sweep the values belong to (-1: not a run's live field)
 
 
 class SamplingPlan:
@@ -324,7 +326,8 @@ class SamplingPlan:
             values[self.missed] = field[self.missed_cells]
         return values
 
-    def frame(self, field: np.ndarray, cursor: tuple[int, int] | None = None, label: str = "", viewport: Viewport | None = None) -> Frame:
+    def frame(self, field: np.ndarray, cursor: tuple[int, int] | None = None, label: str = "", viewport: Viewport | None = None,
+              mode: str = "solution", sweeps: int = -1) -> Frame:
         """Snapshot ``field`` into a :class:`Frame` (copies; safe to hand to another thread)."""
         values = self.sample(field)
         finite = values[np.isfinite(values)]
@@ -334,7 +337,7 @@ class SamplingPlan:
         cursor = cursor if cursor is not None else vp.cursor
         if cursor is not None:
             probe = self.probe(field, values, cursor, vp)
-        return Frame(_readonly(values), self.domain, self.fixed, vp, probe, vmin, vmax, label)
+        return Frame(_readonly(values), self.domain, self.fixed, vp, probe, vmin, vmax, label, mode, sweeps)
 
     def probe(self, field: np.ndarray, values: np.ndarray, cursor: tuple[int, int], vp: Viewport) -> Probe:
         r, c = cursor

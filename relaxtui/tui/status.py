@@ -42,10 +42,14 @@ class StatusStrip(Static):
         self.progress = None
         self.report: dict | None = None
         self.problem: str | None = None
+        self.message: str | None = None
         self.plain = ""  # the text shown, without styles (for tests and screen readers)
 
-    def show(self, headline: str, progress=None, report: dict | None = None, problem: str | None = None) -> None:
+    def show(self, headline: str, progress=None, report: dict | None = None, problem: str | None = None,
+             message: str | None = None) -> None:
+        """``message`` replaces the progress's own sentence (the app words a live run's state itself)."""
         self.headline, self.progress, self.report, self.problem = headline, progress, report, problem
+        self.message = message
         self._draw()
 
     def _draw(self) -> None:
@@ -67,9 +71,10 @@ class StatusStrip(Static):
         if p is not None and p.status is not None:
             head.append(" ")
             head.append(f" {p.status} ", style=STATUS_STYLE.get(p.status, "bold") + " reverse")
-        if p is not None and p.message:
+        message = self.message if self.message is not None else (p.message if p is not None else "")
+        if message:
             head.append(" ")
-            head.append(p.message)
+            head.append(message)
         lines.append(head)
         why = None
         if p is not None and p.status is not None:

@@ -13,10 +13,9 @@ from rich.table import Table
 from rich.text import Text
 from textual.widgets import Static
 
+from relaxtui.output.text import group, group_float
 
-def group(n: float) -> str:
-    """A whole number with thin groups: 12 345."""
-    return f"{int(n):,}".replace(",", " ")
+__all__ = ["TimingPanel", "duration", "group", "sci"]
 
 
 def duration(seconds: float | None) -> str:
@@ -52,11 +51,13 @@ class TimingPanel(Static):
         self.unit = ""
         self.note = "no run yet"
         self.note_lines = 2  # lines of the omega note shown (the app sets it by layout)
+        self.to_go = "—"
 
-    def show(self, progress, sweep_rate: float | None = None, note: str | None = None) -> None:
-        """Display ``progress`` (or a note when there is none)."""
+    def show(self, progress, sweep_rate: float | None = None, note: str | None = None, to_go: str | None = None) -> None:
+        """Display ``progress`` (or a note when there is none); ``to_go`` is what is left, in words."""
         self.progress = progress
         self.sweep_rate = sweep_rate
+        self.to_go = to_go or "—"
         if note is not None:
             self.note = note
         self.update(self._table(), layout=False)  # the panel's height is fixed by the stylesheet
@@ -72,16 +73,10 @@ class TimingPanel(Static):
         if rate is None and p.seconds > 0:
             rate = p.sweeps / p.seconds
         t.add_row("sweeps", group(p.sweeps))
-        t.add_row("rate", "—" if not rate else f"{rate:,.0f} sweeps/s".replace(",", " "))
+        t.add_row("rate", "—" if not rate else f"{group_float(rate)} sweeps/s")
         t.add_row("speed", f"{p.mcells_per_s:.1f} Mcell/s" if p.mcells_per_s else "—")
         t.add_row("elapsed", duration(p.seconds))
-        if p.status is None:
-            eta = duration(p.eta_seconds)
-            if p.eta_sweeps is not None:
-                eta += f" ({group(p.eta_sweeps)})"
-        else:
-            eta = "done"
-        t.add_row("to go", eta)
+        t.add_row("to go", self.to_go if p.status is None else "done")
         t.add_row("factor", "—" if p.factor is None else f"ρ {p.factor:.6f}")
         t.add_row("ω", f"{p.omega:.4f}")
         t.add_row("residual", sci(p.residual, self.unit))
