@@ -84,10 +84,15 @@ def build_report(run, field: np.ndarray) -> dict:
         "source_total": _f(source_total),
         "imbalance": _f(imbalance),
     }
-    report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in extremes(case, field).items()})
-    from relaxtui.output.flux import peak_flux
+    summary = getattr(op, "field_summary", None)
+    if summary is not None:  # an operator split across MPI ranks computes them by strips
+        ext, peak = summary(u)
+    else:
+        from relaxtui.output.flux import peak_flux
 
-    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux(field, case).items()}
+        ext, peak = extremes(case, field), peak_flux(field, case)
+    report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in ext.items()})
+    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak.items()}
     if run.stepper_info:
         report["method_info"] = run.stepper_info
     report["caution"] = CAUTION

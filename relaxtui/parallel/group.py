@@ -3,8 +3,8 @@
 Rank 0 runs the ordinary driver (:class:`relaxtui.solver.driver.Run`) with a
 :class:`DistributedOperator` in place of the single-process operator. Every
 method of that operator the driver calls (``new_field``, ``sweep``,
-``residual``, ``flows``, ``finish`` and the two hooks ``field_scale`` and
-``estimate_radius``) first broadcasts a short command, then does its own
+``residual``, ``flows``, ``finish`` and the hooks ``field_scale``,
+``estimate_radius`` and ``field_summary``) first broadcasts a short command, then does its own
 strip's share of the collective work; the followers (:func:`follow`) wait
 for the command without spinning and do theirs. So all decisions (chunk
 sizes, ω, the stopping rule, time limit, interruption) are taken once, on
@@ -29,7 +29,7 @@ from relaxtui.parallel.comm import quiet_barrier, quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
 
 DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
-SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, RADIUS, SCALE, STOP = range(1, 10)
+SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, RADIUS, SCALE, SUMMARY, STOP = range(1, 11)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL = 31, 32, 33, 34
 
 
@@ -85,7 +85,7 @@ def _part(op, case, a: int, b: int) -> tuple[dict, np.ndarray, np.ndarray]:
         "dn_codes": case.codes[b].copy() if b < rows else None,
         "table": op.table, "diag": op.diag, "kind": op.kind, "value": op.value, "conductivity": op.conductivity,
         "fixed_conductivity": op.fixed_conductivity, "flux": op.flux, "coefficient": op.coefficient,
-        "ambient": op.ambient, "boundary": op._boundary, "cell_size": op.cell_size,
+        "ambient": op.ambient, "boundary": op._boundary, "cell_size": op.cell_size, "regions": case.regions,
     }
     return meta, op.cls[a : b + 2], op.codes[a:b]
 
@@ -271,6 +271,28 @@ class DistributedOperator:
             self.strip.export(out, self.bounds)
         return out
 
+    def field_summary(self, u) -> tuple[dict, dict]:
+        """The report's extremes and peak flux, computed by strips (see :meth:`Strip.summary`):
+        ``({"min", "max", "min_at", "max_at"}, flux_max)`` with the keys of
+        :func:`relaxtui.output.report.extremes` and :func:`relaxtui.output.flux.peak_flux`."""
+        from relaxtui.output.report import cell_position
+
+        self._check_field(u)
+        with self.group.collective(SUMMARY):
+            low, high, peak = self.strip.summary(self.case.regions, self.cell_size)
+        if low is None:
+            ext = {"min": None, "max": None, "min_at": None, "max_at": None}
+        else:
+            ext = {"min": low[0], "max": high[0], "min_at": cell_position(self.case, low[1], low[2]),
+                   "max_at": cell_position(self.case, high[1], high[2])}
+        if peak is None:
+            flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
+        else:
+            value, qx, qy, row, col = peak
+            at = cell_position(self.case, row, col)
+            flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
+        return ext, flux
+
     def estimate_radius(self, method_sweeps):
         """The Jacobi radius by Lanczos across the strips, with the stopping rule of
         :func:`relaxtui.solver.omega.jacobi_radius` (its own defaults, read from its signature)."""
@@ -329,6 +351,8 @@ def follow(comm, threads: int) -> int:
             strip.flows()
         elif code == EXPORT:
             strip.export(None, None)
+        elif code == SUMMARY:
+            strip.summary(strip.regions, strip.cell_size)
         elif code == RADIUS:
             strip.jacobi_radius(None, max_steps=int(cmd[1]))
         else:  # pragma: no cover - rank 0 sends only the codes above

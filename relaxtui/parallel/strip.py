@@ -91,6 +91,7 @@ class Strip:
                     "ambient", "boundary"):
             setattr(self, key, part[key])
         self.cell_size = float(part["cell_size"])
+        self.regions = part["regions"]
         self.segments = assemble.segments(self.cls, MIN_RUN)
         self.up = self.rank - 1 if self.rank > 0 else MPI.PROC_NULL
         self.dn = self.rank + 1 if self.rank < self.size - 1 else MPI.PROC_NULL
@@ -268,6 +269,74 @@ class Strip:
                                self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
         return self.reduce_sum(np.ascontiguousarray(acc.sum(axis=0)))
 
+    def summary(self, regions, cell_size: float, block: int = 256):
+        """Extremes and peak flux of the exported field, by strips; on rank 0 the whole exported field too.
+
+        Each rank exports its rows into an array with one halo row above and
+        below, trades the edge rows with its neighbours (the flux of an edge
+        row needs the row beyond it) and computes, by blocks of ``block``
+        rows, the cell flux of :func:`relaxtui.output.flux.flux` on a case of
+        those rows plus one on each side: the same differences of the same
+        numbers as on the whole grid. Rank 0 then picks the smallest and
+        largest value and the largest flux magnitude, the first in row-major
+        order on a tie (as :func:`relaxtui.output.report.extremes` and
+        :func:`relaxtui.output.flux.peak_flux` do).
+
+        Returns on rank 0 ``(minimum, maximum, peak)``: (value, row, col) or
+        None for each extreme, and (value, qx, qy, row, col) or None for the
+        peak flux; None on the other ranks.
+        """
+        from pathlib import Path
+
+        from relaxtui.case.model import Case
+        from relaxtui.kernels import measure
+        from relaxtui.output.flux import flux
+
+        n, cols = self.n, self.cols
+        ext = np.empty((n + 2, cols))
+        measure.export_field(self.codes, self.kind, self.u, ext[1 : n + 1])
+        self.exchange(ext)
+        top = 0 if self.has_up else 1
+        bottom = n + 2 if self.has_dn else n + 1
+        codes = np.empty((n + 2, cols), dtype=self.codes.dtype)
+        codes[0], codes[1 : n + 1], codes[n + 1] = self.up_codes, self.codes, self.dn_codes
+        mine = ext[1 : n + 1]
+        # extremes (an infinite value of a diverged run counts as missing, as in the report)
+        low = high = None
+        finite = np.where(np.isinf(mine), np.nan, mine) if np.isinf(mine).any() else mine
+        if not np.isnan(finite).all():
+            i, j = divmod(int(np.nanargmin(finite)), cols)
+            low = (float(finite[i, j]), self.a + i, j)
+            i, j = divmod(int(np.nanargmax(finite)), cols)
+            high = (float(finite[i, j]), self.a + i, j)
+        # peak flux, block by block
+        peak = None
+        for r0 in range(1, n + 1, block):
+            r1 = min(r0 + block, n + 1)
+            e0, e1 = max(r0 - 1, top), min(r1 + 1, bottom)
+            sub = Case(path=None, mask_path=Path("strip"), regions=regions, codes=codes[e0:e1], cell_size=cell_size)
+            qx, qy = flux(ext[e0:e1], sub)
+            own = slice(r0 - e0, r1 - e0)
+            qx, qy = qx[own], qy[own]
+            mag = np.hypot(qx, qy)
+            ok = np.isfinite(mag)
+            if not ok.any():
+                continue
+            mag[~ok] = -1.0
+            i, j = divmod(int(np.argmax(mag)), cols)
+            if peak is None or mag[i, j] > peak[0]:  # strictly larger: the first one wins a tie
+                peak = (float(mag[i, j]), float(qx[i, j]), float(qy[i, j]), self.a + r0 - 1 + i, j)
+        found = self.comm.gather((low, high, peak), root=0)
+        if self.rank != 0:
+            return None
+        lows = [f[0] for f in found if f[0] is not None]
+        highs = [f[1] for f in found if f[1] is not None]
+        peaks = [f[2] for f in found if f[2] is not None]
+        low = min(lows, key=lambda t: (t[0], t[1], t[2])) if lows else None
+        high = min(highs, key=lambda t: (-t[0], t[1], t[2])) if highs else None
+        peak = min(peaks, key=lambda t: (-t[0], t[3], t[4])) if peaks else None
+        return low, high, peak
+
     def export(self, out: np.ndarray | None, bounds) -> None:
         """The exported field (NaN outside the domain) gathered on rank 0 into ``out`` (rows, cols)."""
         from relaxtui.kernels import measure
@@ -290,8 +359,8 @@ class Strip:
         The same iteration as :func:`relaxtui.solver.omega.jacobi_radius`
         (start vector 1 on the unknowns, three-term recurrence, the largest
         |Ritz value| of the tridiagonal matrix); the two inner products of a
-        step are summed over the ranks on rank 0 and broadcast, so every rank
-        sees the same numbers. The stopping decision is made on rank 0 by
+        step are summed over the ranks on rank 0 and broadcast (the second
+        with rank 0's stopping decision), so every rank sees the same numbers. The stopping decision is made on rank 0 by
         ``decide(history, steps, beta) -> (stop, settled)`` and broadcast with
         the step's beta. Returns (mu, steps, settled) on every rank.
         """
@@ -320,11 +389,12 @@ class Strip:
             measure.jacobi_apply(v, w, self.cls, self.table, *self.segments, self.nblk)
             alpha = self.all_sum(spectral.d_dot(w[1:-1], v[1:-1], cls, self.diag))
             part = spectral.d_orthogonalise(w[1:-1], v[1:-1], alpha, v_prev[1:-1], beta, cls, self.diag)
-            beta_new = math.sqrt(self.all_sum(part * part))
             alphas[steps - 1] = alpha
             top = float(spectral.tridiagonal_extreme(alphas, betas, steps))
             history.append(top)
-            if self.rank == 0:
+            square = self.reduce_sum(np.array([part * part]))
+            if self.rank == 0:  # the new beta and the decision travel in one broadcast
+                beta_new = math.sqrt(float(square[0]))
                 stop, settled = decide(history, steps, beta_new)
                 msg[:] = (float(stop), float(settled), beta_new)
             self.comm.Bcast(msg, root=0)
