@@ -11,6 +11,15 @@ import os
 import sys
 
 from relaxtui.errors import RelaxError, UsageError
+from relaxtui.options import (
+    argparse_type,
+    parse_max_sweeps,
+    parse_method,
+    parse_omega,
+    parse_time_limit,
+    parse_tolerance,
+)
+from relaxtui.solver.methods import METHOD_NAMES, OMEGA_SCAN_METHODS
 
 SUBCOMMANDS = ("init", "info", "solve", "sweep", "open", "render")
 
@@ -20,31 +29,6 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message):  # noqa: D401 - argparse API
         self.exit(2, f"{self.prog}: error: {message}\n")
-
-
-def _omega(text: str):
-    if text == "auto":
-        return "auto"
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"omega must be a number in (0, 2) or 'auto', not {text!r}")
-    if not 0.0 < value < 2.0:
-        raise argparse.ArgumentTypeError(f"omega must lie in (0, 2), got {value:g}")
-    return value
-
-
-def _positive_float(name):
-    def parse(text):
-        try:
-            value = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{name} must be a number, not {text!r}")
-        if not value > 0.0 or value != value or value == float("inf"):
-            raise argparse.ArgumentTypeError(f"{name} must be a positive finite number, got {text}")
-        return value
-
-    return parse
 
 
 def _positive_int(name):
@@ -61,13 +45,18 @@ def _positive_int(name):
 
 
 def _add_solver_options(p: argparse.ArgumentParser, *, omega: bool = True) -> None:
-    from relaxtui.solver.methods_names import METHOD_NAMES
-
-    p.add_argument("--method", choices=METHOD_NAMES, help="relaxation method (default: the case's [solver] table, else red-black-sor)")
+    p.add_argument("--method", type=argparse_type(parse_method), metavar="{" + ",".join(METHOD_NAMES) + "}",
+                   help="relaxation method (default: the case's [solver] table, else red-black-sor)")
     if omega:
-        p.add_argument("--omega", type=_omega, metavar="W|auto", help="relaxation factor in (0, 2), or 'auto' to estimate the optimum")
-    p.add_argument("--tolerance", type=_positive_float("tolerance"), metavar="T", help="largest error left in the field, in the case's unit")
-    p.add_argument("--max-sweeps", type=_positive_int("max-sweeps"), metavar="N", help="stop after N sweeps (or cycles)")
+        p.add_argument("--omega", type=argparse_type(parse_omega), metavar="W|auto", help="relaxation factor in (0, 2), or 'auto' to estimate the optimum")
+    _add_limits(p)
+
+
+def _add_limits(p: argparse.ArgumentParser, time_help: str | None = None) -> None:
+    p.add_argument("--tolerance", type=argparse_type(parse_tolerance), metavar="T", help="largest error left in the field, in the case's unit")
+    p.add_argument("--max-sweeps", type=argparse_type(parse_max_sweeps), metavar="N", help="stop after N sweeps (or cycles)")
+    if time_help is not None:
+        p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help=time_help)
 
 
 def _add_picture_options(p: argparse.ArgumentParser) -> None:
@@ -97,7 +86,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("solve", help="solve a case headless and write field, report and history", description="Solve a case to its tolerance without a screen.")
     p.add_argument("case", metavar="CASE.toml")
     _add_solver_options(p)
-    p.add_argument("--time-limit", type=_positive_float("time-limit"), metavar="S", help="stop after S seconds (outputs are still written)")
+    p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help="stop after S seconds (outputs are still written)")
     p.add_argument("--initial", metavar="FIELD.npy", help="start from this field (.npy, or a .npz bundle) instead of the default guess")
     p.add_argument("--out", metavar="FIELD.npy", help="write the field (float64, NaN outside the domain)")
     p.add_argument("--report", metavar="REPORT.json", help="write the report")
@@ -111,11 +100,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("sweep", help="compare relaxation factors or methods on one case", description="Solve once per setting at the same tolerance and tabulate sweeps, seconds and factor.")
     p.add_argument("case", metavar="CASE.toml")
     p.add_argument("--omega", metavar="START:STOP:STEP", help="relaxation factors to try, e.g. 1.80:1.99:0.01")
-    p.add_argument("--method", help="method for the omega range (sor or red-black-sor, default red-black-sor)")
+    p.add_argument("--method", type=argparse_type(parse_method), metavar="M",
+                   help=f"method for the omega range ({' or '.join(OMEGA_SCAN_METHODS)}, default red-black-sor)")
     p.add_argument("--methods", metavar="M1,M2,...", help="methods to compare, each at auto omega")
-    p.add_argument("--tolerance", type=_positive_float("tolerance"), metavar="T")
-    p.add_argument("--max-sweeps", type=_positive_int("max-sweeps"), metavar="N")
-    p.add_argument("--time-limit", type=_positive_float("time-limit"), metavar="S", help="time limit per solve")
+    _add_limits(p, "time limit per solve")
     p.add_argument("--csv", metavar="FILE", help="also write the table as CSV")
     p.add_argument("-q", "--quiet", action="store_true")
 

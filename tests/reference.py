@@ -137,7 +137,27 @@ def lexicographic_sweep(case, u, omega):
     return new, big, big / omega
 
 
-SWEEPS = {"jacobi": jacobi_sweep, "gauss-seidel": lexicographic_sweep, "sor": lexicographic_sweep, "red-black-sor": red_black_sweep}
+def symmetric_sweep(case, u, omega):
+    """One symmetric SOR iteration: a lexicographic sweep (row by row from the top, west to east),
+    then the same in reverse order (from the bottom row, east to west), each cell by
+    u <- u + omega (s - u). Returns (new field, largest |new - u|, largest update of the
+    backward half / omega)."""
+    new = u.copy()
+    eqs = list(equations(case).items())
+    for (i, j), (w, q) in eqs:
+        old = new[i, j]
+        new[i, j] = old + omega * (_s(new, i, j, w, q) - old)
+    big_r = 0.0
+    for (i, j), (w, q) in reversed(eqs):
+        old = new[i, j]
+        new[i, j] = old + omega * (_s(new, i, j, w, q) - old)
+        big_r = max(big_r, abs(new[i, j] - old))
+    big_u = max((abs(new[i, j] - u[i, j]) for (i, j), _ in eqs), default=0.0)
+    return new, big_u, big_r / omega
+
+
+SWEEPS = {"jacobi": jacobi_sweep, "gauss-seidel": lexicographic_sweep, "sor": lexicographic_sweep, "red-black-sor": red_black_sweep,
+          "symmetric-sor": symmetric_sweep}
 
 
 def red_black_two_pass(u, cls, table, omega):

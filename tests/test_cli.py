@@ -254,3 +254,33 @@ def test_sweep_methods(plate, tmp_path, capsys):
 def test_sweep_bad_settings(plate, capsys, args):
     code, _, err = run_cli(["sweep", plate, *args], capsys)
     assert code == 2 and "Traceback" not in err
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--method", "multigrid", "--omega", "1.9:1.95:0.01"], "omega scan needs"),  # the help: sor, red-black-sor (or symmetric-sor)
+    (["--method", "jacobi", "--omega", "0.5:0.9:0.1"], "omega scan needs"),
+    (["--method", "sor", "--methods", "jacobi"], "--method goes with --omega"),
+    (["--methods", "jacobi", "--omega", "1.5"], "either --omega or --methods"),
+])
+def test_sweep_refuses_what_its_help_refuses(plate, tmp_path, capsys, monkeypatch, args, needle):
+    monkeypatch.chdir(tmp_path)
+    before = set(tmp_path.rglob("*"))
+    code, _, err = run_cli(["sweep", plate, *args], capsys)
+    assert code == 2 and needle in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert set(tmp_path.rglob("*")) == before
+
+
+def test_sweep_prints_a_line_per_solve(plate, capsys):
+    code, _, err = run_cli(["sweep", plate, "--omega", "1.5,1.7"], capsys)
+    assert code == 0
+    lines = [line for line in err.splitlines() if line.startswith("relaxtui sweep: [")]
+    assert [line.split("]")[0] for line in lines] == ["relaxtui sweep: [1/3", "relaxtui sweep: [2/3", "relaxtui sweep: [3/3"]
+    assert all("converged after" in line for line in lines)
+
+
+def test_symmetric_sor_from_the_command_line(plate, tmp_path, capsys):
+    rep = tmp_path / "r.json"
+    code, _, _ = run_cli(["solve", plate, "--method", "symmetric-sor", "--omega", "1.6", "--report", rep, "-q"], capsys)
+    assert code == 0
+    report = json.loads(rep.read_text())
+    assert report["method"] == "symmetric-sor" and report["omega"] == 1.6 and report["status"] == "converged"

@@ -169,3 +169,54 @@ def test_ramp_chars():
     # equal bins: the centre of bin j gives character j
     centres = (np.arange(k) + 0.5) / k
     assert "".join(cm.ramp_chars(centres)) == cm.RAMP
+
+
+# --- an original scale, readable with every kind of colour vision ----------------------------
+
+# Dichromacy simulation matrices of Machado, Oliveira & Fernandes, "A physiologically-based
+# model for simulation of color vision deficiency", IEEE TVCG 15(6), 2009, severity 1.0,
+# applied to linear RGB (values from memory).
+_DICHROMACY = {
+    "protanopia": [[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216], [-0.003882, -0.048116, 1.051998]],
+    "deuteranopia": [[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413], [-0.011820, 0.042940, 0.968881]],
+    "tritanopia": [[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602], [0.004733, 0.691367, 0.303900]],
+}
+
+
+@pytest.mark.parametrize("kind", sorted(_DICHROMACY))
+def test_lightness_rises_for_dichromats(kind):
+    def seen(linear):
+        return cm.linear_srgb_to_oklab(np.clip(linear @ np.array(_DICHROMACY[kind]).T, 0.0, 1.0))
+
+    # the design: the exact targets, as a dichromat sees them, rise in lightness at every step
+    exact = seen(cm.oklab_to_linear_srgb(cm.PALETTE_OKLAB))
+    assert np.all(np.diff(exact[:, 0]) > 0), kind
+    assert exact[-1, 0] - exact[0, 0] > 0.6
+    # the 8-bit table: lightness rises over every four entries, and neighbours that far apart
+    # stay distinguishable (ΔE_ok well above the 8-bit rounding noise)
+    lab = seen(cm._decode(cm.PALETTE.astype(np.float64) / 255.0))
+    assert np.all(lab[4:, 0] - lab[:-4, 0] > 0), kind
+    assert np.linalg.norm(lab[4:] - lab[:-4], axis=1).min() > 0.005
+
+
+# Anchor colours (t = 0, 1/4, 1/2, 3/4, 1) of widely used plotting-library scales, from memory
+# (hex values as those libraries publish them, rounded).
+_COMMON_SCALES = {
+    "blue-green-yellow": ["#440154", "#3b528b", "#21918c", "#5ec962", "#fde725"],
+    "black-purple-orange-cream": ["#000004", "#51127c", "#b73779", "#fc8961", "#fcfdbf"],
+    "black-purple-red-yellow": ["#000004", "#57106e", "#bc3754", "#f98e09", "#fcffa4"],
+    "blue-magenta-yellow": ["#0d0887", "#7e03a8", "#cc4778", "#f89540", "#f0f921"],
+    "navy-grey-yellow": ["#00224e", "#414d6b", "#7c7b78", "#bcaf6f", "#fee838"],
+    "rainbow": ["#30123b", "#28bceb", "#a4fc3c", "#fb7e21", "#7a0403"],
+    "grey": ["#000000", "#404040", "#808080", "#bfbfbf", "#ffffff"],
+}
+
+
+@pytest.mark.parametrize("name", sorted(_COMMON_SCALES))
+def test_scale_is_far_from_common_scales(name):
+    ours = cm.srgb_to_oklab(cm.PALETTE[[0, 64, 128, 191, 255]])
+    theirs = cm.srgb_to_oklab(np.array([[int(h[i : i + 2], 16) for i in (1, 3, 5)] for h in _COMMON_SCALES[name]]))
+    # mean Oklab distance over the anchors; about 0.02 is a just-noticeable difference (Ottosson 2020, common practice)
+    assert np.linalg.norm(ours - theirs, axis=1).mean() > 0.08, name
+    # and the middle colours, where scales differ most, are clearly apart
+    assert np.linalg.norm(ours[1:4] - theirs[1:4], axis=1).min() > 0.05, name

@@ -105,11 +105,14 @@ def test_worker_runs_a_plate_to_convergence_and_the_session_follows(tmp_path):
     loaded = load(tmp_path)
     session = Session()
     rec, run = start(session, loaded)
-    assert session.state() == "preparing" and session.in_progress()
+    assert session.state() == "preparing" and not session.in_progress()  # nothing swept yet to lose
     events = []
     w.solve_loop(rec.id, run, session.control, loaded.layout, events.append)
     kinds = [type(e).__name__ for e in events]
-    assert kinds[0] == "Prepared" and kinds[-1] == "Finished" and "Progressed" in kinds
+    assert kinds[0] == "Preparing" and kinds[-1] == "Finished" and "Progressed" in kinds
+    # the preparation says what it does (the driver's stages), before the first sweep
+    stages = [e.text for e in events if isinstance(e, w.Preparing)]
+    assert any("kernels" in t for t in stages) and kinds.index("Prepared") > kinds.index("Preparing")
     drive(session, events[:-1])
     # the last sweep is done, the report not yet taken in: quitting loses nothing
     assert rec.status == "finishing" and not session.in_progress()
@@ -120,7 +123,7 @@ def test_worker_runs_a_plate_to_convergence_and_the_session_follows(tmp_path):
     sweeps = np.concatenate([c.sweep for c in rec.chunks])
     np.testing.assert_array_equal(sweeps, rec.result.history.sweep)
     # red-black SOR's theoretical factor at its ω for the measured radius (Young 1971)
-    from relaxtui.solver.omega import sor_factor
+    from relaxtui.solver.young import sor_factor
 
     assert rec.mu is not None and rec.theory == pytest.approx(sor_factor(rec.mu, run.omega))
 

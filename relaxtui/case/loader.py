@@ -39,9 +39,9 @@ from relaxtui.case.model import (
     Region,
     SolverDefaults,
 )
-from relaxtui.errors import CaseError
+from relaxtui import options
+from relaxtui.errors import CaseError, UsageError
 from relaxtui.solver import memory
-from relaxtui.solver.methods_names import METHOD_NAMES
 
 TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region")
 SOLVER_KEYS = ("method", "omega", "tolerance", "max_sweeps")
@@ -289,33 +289,21 @@ def _parse_solver(raw, lines: KeyLines, chk: _Checker) -> SolverDefaults:
         if key not in SOLVER_KEYS:
             chk.fail(lines.table_line("solver", key), f"[solver]: unknown key {_q(key)}{_suggest(key, SOLVER_KEYS)} (it takes: {', '.join(SOLVER_KEYS)})")
     who = "[solver]: "
-    method = omega = tolerance = max_sweeps = None
-    if "method" in raw:
-        line = lines.table_line("solver", "method")
-        method = chk.string(raw["method"], "method", line, who)
-        if method not in METHOD_NAMES:
-            chk.fail(line, f"{who}key 'method' must be one of {', '.join(METHOD_NAMES)}; got {method!r}{_suggest(method, METHOD_NAMES)}")
-    if "omega" in raw:
-        line = lines.table_line("solver", "omega")
-        value = raw["omega"]
-        if isinstance(value, str):
-            if value != "auto":
-                chk.fail(line, f"{who}key 'omega' must be a number in (0, 2) or \"auto\", got {value!r}")
-            omega = "auto"
-        else:
-            omega = chk.number(value, "omega", line, who)
-            if not 0.0 < omega < 2.0:
-                chk.fail(line, f"{who}key 'omega' must lie in (0, 2) (or be \"auto\"), got {_show(value)}")
-    if "tolerance" in raw:
-        tolerance = chk.number(raw["tolerance"], "tolerance", lines.table_line("solver", "tolerance"), who, positive=True)
-    if "max_sweeps" in raw:
-        line = lines.table_line("solver", "max_sweeps")
-        value = raw["max_sweeps"]
-        if isinstance(value, bool) or not isinstance(value, int):
-            chk.fail(line, f"{who}key 'max_sweeps' must be a whole number, not {_type_name(value)} ({_show(value)})")
-        if value < 1:
-            chk.fail(line, f"{who}key 'max_sweeps' must be at least 1, got {value}")
-        max_sweeps = int(value)
+    values = {}
+    for key, check in (("method", options.check_method), ("omega", options.check_omega),
+                       ("tolerance", options.check_tolerance), ("max_sweeps", options.check_max_sweeps)):
+        if key in raw:
+            try:
+                values[key] = check(raw[key], f"key {key!r}")
+            except UsageError as exc:
+                chk.fail(lines.table_line("solver", key), f"{who}{exc}")
+    method, omega = values.get("method"), values.get("omega")
+    if method is not None and omega is not None:
+        try:  # an omega beside a method without one: refused as on the command line
+            options.check_omega_for(method, omega, "key 'omega'")
+        except UsageError as exc:
+            chk.fail(lines.table_line("solver", "omega"), f"{who}{exc}")
+    tolerance, max_sweeps = values.get("tolerance"), values.get("max_sweeps")
     return SolverDefaults(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps)
 
 

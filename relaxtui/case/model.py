@@ -20,10 +20,7 @@ KIND_CODE = {name: i for i, name in enumerate(KINDS)}
 
 # The methods a case's [solver] table, the command line and the UI accept.
 # The registry with their set-up lives in relaxtui.solver.methods.
-DEFAULT_METHOD = "red-black-sor"
-DEFAULT_OMEGA = "auto"
-DEFAULT_TOLERANCE = 1e-3
-DEFAULT_MAX_SWEEPS = 200_000
+from relaxtui.options import DEFAULT_MAX_SWEEPS, DEFAULT_METHOD, DEFAULT_OMEGA, DEFAULT_TOLERANCE  # noqa: E402,F401 - one source
 
 
 @dataclass(frozen=True)

@@ -27,7 +27,7 @@ from relaxtui.case.model import (
 )
 from relaxtui.errors import OutputError
 from relaxtui.output import atomic as output
-from relaxtui.solver.methods_names import METHOD_NAMES  # noqa: F401 - the [solver] comment lists them
+from relaxtui.solver.methods import METHOD_NAMES  # noqa: F401 - the [solver] comment lists them
 
 MANY_COLOURS = 64
 MAIN_SHARE = 0.001

@@ -15,6 +15,8 @@ import time
 from contextlib import contextmanager
 from pathlib import Path
 
+from relaxtui.output.text import group
+
 EXIT_CONVERGED, EXIT_NOT_CONVERGED, EXIT_INTERRUPTED = 0, 1, 130
 
 
@@ -69,12 +71,16 @@ def run(args) -> int:
         from relaxtui.output.fields import load_field
 
         initial = load_field(args.initial, case.shape)
+    # the Jacobi radius of the case's operator is cached beside the outputs (a second solve then starts at once)
+    first = next((p for p in (report_path, out, history_path, args.picture, args.vtk, args.bundle) if p is not None), None)
+    cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-              time_limit=args.time_limit, initial=initial)
+              time_limit=args.time_limit, initial=initial, radius_cache=cache)
     interrupted = threading.Event()
     with _sigint_to(interrupted):
         display = _Display(run, quiet=args.quiet)
-        display.start("preparing (assembly, omega, kernels)")
+        display.start("preparing")
+        run.on_prepare = display.stage
         run.prepare()
         while not run.done:
             if interrupted.is_set():
@@ -119,7 +125,7 @@ def _summary(result, written) -> None:
     unit = f" {r['unit']}" if r["unit"] else ""
     con.print(f"[bold {style}]{r['status']}[/]: {r['message']}")
     con.print(f"  {r['method']}, omega {r['omega']:.4f} ({r['omega_note']})")
-    con.print(f"  {r['sweeps']} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
+    con.print(f"  {group(r['sweeps'])} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
               f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:
         for key in ("min", "max"):
@@ -176,13 +182,25 @@ class _Display:
         else:
             print(f"relaxtui: {text}", file=sys.stderr, flush=True)
 
+    def stage(self, text: str) -> None:
+        """What the preparation is doing now (assembly, kernels, Lanczos steps so far)."""
+        if self.quiet:
+            return
+        if self.live:
+            self._progress.update(self._task, description=f"preparing: {text}", info="")
+        elif time.monotonic() - self._last_line >= 5.0 or "Lanczos" not in text:
+            self._last_line = time.monotonic()
+            print(f"relaxtui: preparing: {text}", file=sys.stderr, flush=True)
+
     def update(self, p) -> None:
         if self.quiet:
             return
         err = p.estimated_error
         eta = "" if p.eta_seconds is None else f" ETA {p.eta_seconds:.0f} s"
-        info = (f"sweep {p.sweeps}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
-                if math.isfinite(err) else f"sweep {p.sweeps}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
+        info = (f"sweep {group(p.sweeps)}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
+                if math.isfinite(err) else f"sweep {group(p.sweeps)}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
+        if p.background:
+            info += f"  ({p.background})"
         if self.live:
             # progress on a log scale: from the first finite estimate down to the tolerance
             frac = 0.0

@@ -5,6 +5,8 @@ from __future__ import annotations
 import math
 import sys
 import threading
+import time
+from pathlib import Path
 
 from relaxtui.commands.solve import (
     EXIT_CONVERGED,
@@ -13,6 +15,7 @@ from relaxtui.commands.solve import (
     _sigint_to,
 )
 from relaxtui.errors import UsageError
+from relaxtui.output.text import group
 
 
 def parse_range(text: str) -> list[float]:
@@ -31,9 +34,13 @@ def parse_range(text: str) -> list[float]:
             values = [float(x) for x in text.split(",")]
     except ValueError:
         raise UsageError(f"--omega wants START:STOP:STEP (e.g. 1.80:1.99:0.01) or a list a,b,c; got {text!r}") from None
+    from relaxtui.options import check_omega
+
     for w in values:
-        if not 0.0 < w < 2.0:
-            raise UsageError(f"omega must lie in (0, 2), got {w:g} in {text!r}")
+        try:
+            check_omega(w)
+        except UsageError as exc:
+            raise UsageError(f"{exc} in --omega {text!r}") from None
     if len(values) > 500:
         raise UsageError(f"--omega {text!r} gives {len(values)} settings; at most 500")
     return values
@@ -41,50 +48,59 @@ def parse_range(text: str) -> list[float]:
 
 def run(args) -> int:
     from relaxtui.case import load_case
+    from relaxtui.options import parse_method
     from relaxtui.solver.driver import Run, check_outputs
-    from relaxtui.solver.methods import get_method
+    from relaxtui.solver.methods import OMEGA_SCAN_METHODS
     from relaxtui.solver.operator import Operator
 
     if args.omega is None and args.methods is None:
         raise UsageError("give --omega START:STOP:STEP (with --method) or --methods M1,M2,...")
     if args.omega is not None and args.methods is not None:
         raise UsageError("give either --omega or --methods, not both")
+    if args.method is not None and args.omega is None:
+        raise UsageError("--method goes with --omega (the method whose omega is scanned); compare methods with --methods")
     if args.csv:
         check_outputs(csv=args.csv)
-    case = load_case(args.case)
     settings: list[tuple[str, object]] = []
     if args.omega is not None:
         method = args.method or "red-black-sor"
-        if not get_method(method).omega_meaning or method == "jacobi":
-            raise UsageError(f"an omega scan needs sor or red-black-sor, not {method}")
+        if method not in OMEGA_SCAN_METHODS:
+            raise UsageError(f"an omega scan needs {' or '.join(OMEGA_SCAN_METHODS)}, not {method}")
         settings = [(method, w) for w in parse_range(args.omega)] + [(method, "auto")]
         rank_by = "sweeps"
     else:
         names = [m.strip() for m in args.methods.split(",") if m.strip()]
         if not names:
             raise UsageError("--methods needs at least one method name")
-        for name in names:
-            get_method(name)
+        names = [parse_method(name, "--methods: method") for name in names]
         settings = [(name, "auto") for name in names]
         rank_by = "seconds"
+    case = load_case(args.case)
     # validate every setting before the first solve
     for method, w in settings:
         Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit)
 
-    op = Operator(case)
+    op = Operator(case)  # one operator: its Jacobi radius is estimated once for every solve
+    cache = Path(args.csv).resolve().parent if args.csv else None  # on disk beside the table, if one is written
     rows = []
     interrupted = threading.Event()
     with _sigint_to(interrupted):
-        for method, w in settings:
+        for number, (method, w) in enumerate(settings, 1):
             if interrupted.is_set():
                 break
+            label = f"relaxtui sweep: [{number}/{len(settings)}] {method} omega {'auto' if w == 'auto' else f'{w:g}'}"
             run = Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-                      time_limit=args.time_limit, operator=op)
+                      time_limit=args.time_limit, operator=op, radius_cache=cache)
             run.prepare()
+            last = time.monotonic()
             while not run.done:
                 if interrupted.is_set():
                     run.cancel()
-                run.step(0.5)
+                p = run.step(0.5)
+                if not args.quiet and time.monotonic() - last >= 5.0 and not run.done:
+                    last = time.monotonic()
+                    err = f"{p.estimated_error:.2g}" if math.isfinite(p.estimated_error) else "not yet estimable"
+                    print(f"{label}: sweep {p.sweeps}, estimated error {err} (tolerance {p.tolerance:g})", file=sys.stderr, flush=True)
             p = run.progress
             mcells = op.cells_streamed * p.sweeps / p.seconds / 1e6 if p.seconds > 0 else 0.0
             rows.append({
@@ -99,8 +115,7 @@ def run(args) -> int:
                 "estimated_error": p.estimated_error,
             })
             if not args.quiet:
-                print(f"relaxtui sweep: {method} omega {rows[-1]['omega_setting']}: {p.status} after {p.sweeps} sweeps, {p.seconds:.2f} s",
-                      file=sys.stderr, flush=True)
+                print(f"{label}: {p.status} after {group(p.sweeps)} sweeps, {p.seconds:.2f} s", file=sys.stderr, flush=True)
     best = _mark_best(rows, rank_by)
     _print_table(rows, best, rank_by, case, run.tolerance if rows else None)
     if args.csv:
@@ -138,7 +153,7 @@ def _print_table(rows, best, rank_by, case, tolerance) -> None:
         if r["method"] == "gauss-seidel":
             omega = "-"
         cells = ["*" if i == best else ""] + ([] if one else [r["method"]]) + [
-            omega, str(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
+            omega, group(r["sweeps"]), f"{r['seconds']:.2f}", f"{r['mcells_per_s']:.0f}", r["status"],
             "n/a" if r["factor"] is None else f"{r['factor']:.5f}"]
         t.add_row(*cells)
     Console().print(t)

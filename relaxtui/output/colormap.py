@@ -7,14 +7,19 @@ look, and ``L`` approximates perceived lightness. The matrices below are the
 ones published there (linear sRGB <-> LMS <-> Oklab); the sRGB transfer curve
 is the one of IEC 61966-2-1.
 
-The scale (see :func:`build_palette`) is a smooth curve in Oklab:
+The scale (see :func:`build_palette`), "peat to frost", is a smooth curve in
+Oklab of this project's own design:
 
-* lightness rises linearly from ``L_START`` (a deep blue-violet) to ``L_END``
-  (a pale yellow), so the ramp reads dark-to-light even in grey print;
-* the hue turns steadily from ``HUE_START`` to ``HUE_END`` degrees, through
-  violet, magenta, red and orange;
-* the chroma is a smooth bump, highest in the middle, kept inside the sRGB
-  gamut everywhere (no clipping is needed, the tests check it);
+* lightness rises linearly from ``L_START`` (a near-black peat brown) to
+  ``L_END`` (a pale frost blue), so the ramp reads dark-to-light in grey print
+  and for every kind of colour vision (the tests simulate the three
+  dichromacies and check that lightness still rises at every step);
+* the hue turns steadily from ``HUE_START`` to ``HUE_END`` degrees the warm
+  way round through brown, ochre, olive and sage to frost: no violet, magenta
+  or saturated blue anywhere, unlike the common scales of plotting libraries
+  (the tests keep it far from them);
+* the chroma is a smooth bump, highest at sage green, kept inside the
+  sRGB gamut everywhere (no clipping is needed, the tests check it);
 * the curve is resampled at equal arc length, so neighbouring entries of the
   256-entry table are (before 8-bit rounding) exactly the same Oklab distance
   apart: equal steps in value look like equal steps in colour.
@@ -107,9 +112,10 @@ def srgb_to_oklab(rgb: np.ndarray) -> np.ndarray:
 
 # --- the scale ---------------------------------------------------------------
 
-L_START, L_END = 0.24, 0.96  # Oklab lightness at the low and high end
-HUE_START, HUE_END = 280.0, 465.0  # degrees of Oklab hue (465 = 105 after one turn)
-CHROMA_BASE, CHROMA_BUMP = 0.085, 0.075  # chroma = base + bump * sin(pi t)
+L_START, L_END = 0.25, 0.95  # Oklab lightness at the low and high end
+HUE_START, HUE_END = 15.0, 200.0  # degrees of Oklab hue: peat brown -> ochre -> olive -> sage -> frost
+CHROMA_BASE, CHROMA_BUMP = 0.035, 0.11  # chroma = base + bump * sin(pi t**CHROMA_SKEW)
+CHROMA_SKEW = 1.8  # the bump peaks at t = 0.68 (sage green), where sRGB has room; ochre and olive have less
 SIZE = 256
 
 
@@ -118,7 +124,7 @@ def scale_curve(t: np.ndarray) -> np.ndarray:
     t = np.asarray(t, dtype=np.float64)
     lightness = L_START + (L_END - L_START) * t
     hue = np.radians(HUE_START + (HUE_END - HUE_START) * t)
-    chroma = CHROMA_BASE + CHROMA_BUMP * np.sin(np.pi * t)
+    chroma = CHROMA_BASE + CHROMA_BUMP * np.sin(np.pi * t**CHROMA_SKEW)
     return np.stack([lightness, chroma * np.cos(hue), chroma * np.sin(hue)], axis=-1)
 
 
@@ -136,7 +142,32 @@ def build_palette(size: int = SIZE, fine: int = 4096) -> tuple[np.ndarray, np.nd
     arc = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))])
     t = np.interp(np.linspace(0.0, arc[-1], size), arc, t_fine)
     lab = scale_curve(t)
-    return lab, oklab_to_srgb(lab)
+    return lab, quantise(lab)
+
+
+_CORNERS = np.array([[i >> 2 & 1, i >> 1 & 1, i & 1] for i in range(8)], dtype=np.float64)
+
+
+def quantise(lab: np.ndarray) -> np.ndarray:
+    """8-bit sRGB colours of a lightness-increasing Oklab ramp, keeping lightness increasing.
+
+    Each target's exact sRGB value lies in a cube of 8 neighbouring 8-bit
+    colours; of those, the one nearest the target (ΔE_ok) whose lightness is
+    above the previous entry's is taken (the nearest one when none is). Plain
+    rounding can put a dark entry a hair below its predecessor.
+    """
+    exact = _encode(oklab_to_linear_srgb(lab)) * 255.0
+    cands = np.clip(np.floor(exact)[:, None, :] + _CORNERS[None, :, :], 0.0, 255.0)
+    cand_lab = srgb_to_oklab(cands)
+    dist = np.linalg.norm(cand_lab - np.asarray(lab)[:, None, :], axis=2)
+    out = np.empty((len(lab), 3), dtype=np.uint8)
+    previous = -math.inf
+    for i in range(len(lab)):
+        order = np.argsort(dist[i], kind="stable")
+        pick = next((k for k in order if cand_lab[i, k, 0] > previous), order[0])
+        out[i] = cands[i, pick]
+        previous = cand_lab[i, pick, 0]
+    return out
 
 
 PALETTE_OKLAB, PALETTE = build_palette()

@@ -27,15 +27,16 @@ import numpy as np
 from relaxtui.errors import UsageError
 from relaxtui.parallel.comm import quiet_barrier, quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
+from relaxtui.solver.radius import Lanczos, RadiusEstimate, RadiusJob
 
 DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
-SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, RADIUS, SCALE, SUMMARY, STOP = range(1, 11)
+SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP = range(1, 12)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL = 31, 32, 33, 34
 
 
 def refusal(method: str) -> str:
     """Why ``method`` is not run across ranks, and what to use instead (one line)."""
-    if method in ("gauss-seidel", "sor"):
+    if method in ("gauss-seidel", "sor", "symmetric-sor"):
         return (f"{method} does not run across MPI ranks: its lexicographic order makes every row wait for the one "
                 "above; use red-black-sor (the same equations in a parallel order) or jacobi under mpiexec, "
                 f"or run {method} without mpiexec")
@@ -145,6 +146,8 @@ class DistributedOperator:
         self.source = op.source
         self.region_cells = op.region_cells
         self.guess = op.default_guess()
+        self._fingerprint = op.fingerprint()
+        self._radius = None
         self.threads = threads
         self.bounds = split_rows(np.count_nonzero(op.cls[1:-1], axis=1), ranks)
         group.send(SETUP)
@@ -293,35 +296,121 @@ class DistributedOperator:
             flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
         return ext, flux
 
-    def estimate_radius(self, method_sweeps):
-        """The Jacobi radius by Lanczos across the strips, with the stopping rule of
-        :func:`relaxtui.solver.omega.jacobi_radius` (its own defaults, read from its signature)."""
-        from relaxtui.solver.omega import RadiusEstimate, jacobi_radius
+    def radius_job(self):
+        """The Jacobi-radius job of this operator (see :class:`DistributedRadiusJob`), made on first use."""
+        if self._radius is None:
+            self._radius = DistributedRadiusJob(self)
+        return self._radius
 
-        p = {k: v.default for k, v in inspect.signature(jacobi_radius).parameters.items() if v.default is not v.empty}
-        min_steps, max_steps, budget, rtol = p["min_steps"], p["max_steps"], p["budget"], p["rtol"]
-
-        def decide(history, steps, beta_new):
-            top = history[-1]
-            back = max(20, steps // 4)
-            if len(history) > back:
-                old, new = 1.0 - history[-1 - back], 1.0 - top
-                if new > 0 and abs(old - new) <= rtol * new:
-                    return True, True
-                if steps >= max(min_steps, budget * method_sweeps(top)):
-                    return True, False
-            if beta_new <= 1e-14:
-                return True, True
-            return steps >= max_steps, False
-
-        with self.group.collective(RADIUS, max_steps):
-            mu, steps, settled = self.strip.jacobi_radius(decide, max_steps=max_steps)
-        return RadiusEstimate(mu, steps, settled)
+    def fingerprint(self) -> str:
+        """The single-process operator's fingerprint (its radius cache files serve both)."""
+        return self._fingerprint
 
     def memory_bytes(self, method: str) -> int:
         from relaxtui.parallel.memory import rank_bytes
 
         return rank_bytes(self.shape[0], self.shape[1], method, len(self.case.regions), self.group.comm.Get_size())[0]
+
+
+class DistributedLanczos:
+    """Rank 0's handle on a Lanczos estimate whose vectors are split across the ranks.
+
+    The interface of :class:`relaxtui.solver.radius.Lanczos` (``advance``,
+    ``estimate``, ``steps``, ``mu``, ``settled``, ``done``, ``max_steps``) and
+    its stopping rule, step for step, with its default settings (read from its
+    signature); every :meth:`advance` is one collective command, and rank 0
+    decides after each step whether the ranks do another.
+    """
+
+    def __init__(self, operator: "DistributedOperator", method_sweeps=None):
+        p = {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
+        self.min_steps, self.max_steps = int(p["min_steps"]), int(p["max_steps"])
+        self.budget, self.rtol = float(p["budget"]), float(p["rtol"])
+        self.method_sweeps = method_sweeps if method_sweeps is not None else p["method_sweeps"]
+        self.operator = operator
+        self.steps = 0
+        self.mu = 0.0
+        self.settled = False
+        self.done = False
+        self._history: list[float] = []
+        self.alphas = np.zeros(self.max_steps)
+        self.betas = np.zeros(self.max_steps)
+        with operator.group.collective(LANCZOS_BEGIN):
+            norm = operator.strip.lanczos_begin()
+        if norm == 0.0:
+            self.settled = self.done = True
+
+    def advance(self, max_new_steps: int | None = None, stop=None, on_step=None) -> bool:
+        """Run steps on every rank; returns ``done``. As :meth:`relaxtui.solver.radius.Lanczos.advance`."""
+        from relaxtui.kernels import spectral
+
+        def more(new: int) -> bool:
+            return not (self.done or (stop is not None and stop.is_set()) or (max_new_steps is not None and new >= max_new_steps))
+
+        if not more(0):
+            return self.done
+        new = 0
+
+        def decide(alpha: float, beta_new: float):
+            nonlocal new
+            self.steps += 1
+            new += 1
+            steps = self.steps
+            self.alphas[steps - 1] = alpha
+            top = float(spectral.tridiagonal_extreme(self.alphas, self.betas, steps))
+            self._history.append(top)
+            self.mu = min(max(top, 0.0), 1.0 - 1e-16)
+            back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
+            if len(self._history) > back:
+                old, now = 1.0 - self._history[-1 - back], 1.0 - top
+                if now > 0 and abs(old - now) <= self.rtol * now:
+                    self.settled = self.done = True
+                elif steps >= max(self.min_steps, self.budget * self.method_sweeps(top)):
+                    self.done = True
+            if beta_new <= 1e-14:
+                self.settled = self.done = True
+            if steps >= self.max_steps:
+                self.done = True
+            if not self.done:
+                self.betas[steps - 1] = beta_new
+            if on_step is not None:
+                on_step(self)
+            return more(new), self.done
+
+        with self.operator.group.collective(LANCZOS_ADVANCE):
+            self.operator.strip.lanczos_advance(decide)
+        return self.done
+
+    def estimate(self) -> RadiusEstimate:
+        return RadiusEstimate(self.mu, self.steps, self.settled)
+
+
+class DistributedRadiusJob(RadiusJob):
+    """The radius job of :class:`relaxtui.solver.radius.RadiusJob` on a distributed operator.
+
+    Its Lanczos process is a :class:`DistributedLanczos`; nothing runs in a
+    background thread (every step is collective, and only rank 0's main thread
+    talks to the other ranks), so :meth:`start` completes the estimate at once:
+    on a large grid the sweeps start after the estimate instead of beside it.
+    Loading and saving the cache file work as in one process (same fingerprint,
+    same file).
+    """
+
+    def _ensure(self, method_sweeps, redo_unsettled: bool) -> bool:
+        if self._final is not None:
+            if self._final.settled or not redo_unsettled or self._source != "lanczos":
+                return False
+            self._final = None  # an unsettled estimate made for SOR is redone for the slow methods
+            self._lanczos = None
+        if self._lanczos is None:
+            self._lanczos = DistributedLanczos(self.operator, method_sweeps)
+        return True
+
+    def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
+        if method_sweeps is None:
+            self.run(redo_unsettled=redo_unsettled)
+        else:
+            self.run(method_sweeps, redo_unsettled=redo_unsettled)
 
 
 def follow(comm, threads: int) -> int:
@@ -353,8 +442,10 @@ def follow(comm, threads: int) -> int:
             strip.export(None, None)
         elif code == SUMMARY:
             strip.summary(strip.regions, strip.cell_size)
-        elif code == RADIUS:
-            strip.jacobi_radius(None, max_steps=int(cmd[1]))
+        elif code == LANCZOS_BEGIN:
+            strip.lanczos_begin()
+        elif code == LANCZOS_ADVANCE:
+            strip.lanczos_advance()
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 

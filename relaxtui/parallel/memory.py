@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from relaxtui.solver import memory
 
-LANCZOS_VECTORS = 3  # relaxtui.parallel.strip.Strip.jacobi_radius: v, v_prev, w
+LANCZOS_VECTORS = 3  # relaxtui.parallel.strip.Strip.lanczos_begin: v, v_prev, w
 
 
 def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: int) -> tuple[int, int]:

@@ -22,6 +22,7 @@ import signal
 import sys
 import threading
 from contextlib import contextmanager
+from pathlib import Path
 
 from relaxtui.errors import RelaxError, UsageError
 
@@ -101,8 +102,11 @@ def _lead(comm, group, args, threads: int) -> int:
         from relaxtui.output.fields import load_field
 
         initial = load_field(args.initial, case.shape)
+    # the Jacobi radius is cached beside the outputs, as in one process (same file, either can reuse it)
+    first = next((p for p in (report_path, out, history_path, args.picture, args.vtk, args.bundle) if p is not None), None)
+    cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-              time_limit=args.time_limit, initial=initial)
+              time_limit=args.time_limit, initial=initial, radius_cache=cache)
     if run.method not in DISTRIBUTED_METHODS:
         raise UsageError(refusal(run.method))
     interrupted = threading.Event()
@@ -112,7 +116,8 @@ def _lead(comm, group, args, threads: int) -> int:
                   file=sys.stderr, flush=True)
         run.operator = DistributedOperator(case, group, threads)
         display = _Display(run, quiet=args.quiet)
-        display.start("preparing (assembly, omega, kernels)")
+        display.start("preparing")
+        run.on_prepare = display.stage
         run.prepare()
         run._initial = None  # scattered to the strips: rank 0 need not keep the whole grid's copy
         while not run.done:

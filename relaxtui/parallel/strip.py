@@ -353,60 +353,61 @@ class Strip:
 
     # --- the Jacobi radius -----------------------------------------------------------------
 
-    def jacobi_radius(self, decide=None, *, max_steps: int = 600):
-        """Lanczos on the Jacobi matrix in the D-inner product, vectors split by strips.
+    def lanczos_begin(self) -> float:
+        """Start Lanczos on the Jacobi matrix in the D-inner product, vectors split by strips.
 
-        The same iteration as :func:`relaxtui.solver.omega.jacobi_radius`
-        (start vector 1 on the unknowns, three-term recurrence, the largest
-        |Ritz value| of the tridiagonal matrix); the two inner products of a
-        step are summed over the ranks on rank 0 and broadcast (the second
-        with rank 0's stopping decision), so every rank sees the same numbers. The stopping decision is made on rank 0 by
-        ``decide(history, steps, beta) -> (stop, settled)`` and broadcast with
-        the step's beta. Returns (mu, steps, settled) on every rank.
+        The iteration of :class:`relaxtui.solver.radius.Lanczos` (start vector
+        1 on the unknowns, three-term recurrence); the inner products of a
+        step are summed over the ranks on rank 0 and broadcast, so every rank
+        sees the same numbers. Returns the start vector's D-norm (0: no unknowns).
+        """
+        from relaxtui.kernels import spectral
+
+        cls = self.cls[1:-1]
+        v = np.zeros(self.u.shape)
+        spectral.start_vector(cls, self.diag, v[1:-1])
+        norm = math.sqrt(self.all_sum(spectral.d_dot(v[1:-1], v[1:-1], cls, self.diag)))
+        self.lanczos = None
+        if norm > 0.0:
+            spectral.scale_into(v[1:-1], 1.0 / norm, v[1:-1])
+            self.lanczos = {"v": v, "v_prev": np.zeros_like(v), "w": np.zeros_like(v), "beta": 0.0}
+        return norm
+
+    def lanczos_advance(self, decide=None) -> None:
+        """Lanczos steps until rank 0 says stop.
+
+        After each step rank 0 calls ``decide(alpha, beta_new) -> (go_on,
+        done)`` (it keeps the tridiagonal matrix and the stopping rule) and
+        broadcasts the answer with the new beta; the other ranks only keep
+        the recurrence going. When done, the vectors are dropped.
         """
         from relaxtui.kernels import measure, spectral
 
+        state = self.lanczos
         cls = self.cls[1:-1]
-        shape = self.u.shape
-        v = np.zeros(shape)
-        spectral.start_vector(cls, self.diag, v[1:-1])
-        norm = math.sqrt(self.all_sum(spectral.d_dot(v[1:-1], v[1:-1], cls, self.diag)))
-        if norm == 0.0:
-            return 0.0, 0, True
-        spectral.scale_into(v[1:-1], 1.0 / norm, v[1:-1])
-        v_prev = np.zeros(shape)
-        w = np.zeros(shape)
-        alphas = np.zeros(max_steps)
-        betas = np.zeros(max_steps)
-        beta = 0.0
-        history: list[float] = []
-        settled = False
-        steps = 0
         msg = np.zeros(3)
-        for steps in range(1, max_steps + 1):
+        while True:
+            v, v_prev, w = state["v"], state["v_prev"], state["w"]
             self.exchange(v)
             w.fill(0.0)
             measure.jacobi_apply(v, w, self.cls, self.table, *self.segments, self.nblk)
             alpha = self.all_sum(spectral.d_dot(w[1:-1], v[1:-1], cls, self.diag))
-            part = spectral.d_orthogonalise(w[1:-1], v[1:-1], alpha, v_prev[1:-1], beta, cls, self.diag)
-            alphas[steps - 1] = alpha
-            top = float(spectral.tridiagonal_extreme(alphas, betas, steps))
-            history.append(top)
+            part = spectral.d_orthogonalise(w[1:-1], v[1:-1], alpha, v_prev[1:-1], state["beta"], cls, self.diag)
             square = self.reduce_sum(np.array([part * part]))
             if self.rank == 0:  # the new beta and the decision travel in one broadcast
                 beta_new = math.sqrt(float(square[0]))
-                stop, settled = decide(history, steps, beta_new)
-                msg[:] = (float(stop), float(settled), beta_new)
+                go_on, done = decide(alpha, beta_new)
+                msg[:] = (float(go_on), float(done), beta_new)
             self.comm.Bcast(msg, root=0)
-            stop, settled, beta_new = bool(msg[0]), bool(msg[1]), float(msg[2])
-            if stop:
-                break
-            beta = beta_new
-            betas[steps - 1] = beta
-            v_prev, v = v, v_prev
-            spectral.scale_into(w[1:-1], 1.0 / beta, v[1:-1])
-        mu = min(max(history[-1], 0.0), 1.0 - 1e-16) if history else 0.0
-        return mu, steps, settled
+            go_on, done, beta_new = bool(msg[0]), bool(msg[1]), float(msg[2])
+            if done:
+                self.lanczos = None
+                return
+            state["beta"] = beta_new
+            state["v_prev"], state["v"] = v, v_prev
+            spectral.scale_into(w[1:-1], 1.0 / beta_new, state["v"][1:-1])
+            if not go_on:
+                return
 
     # --- compile once --------------------------------------------------------------------------
 

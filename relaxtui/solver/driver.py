@@ -25,12 +25,13 @@ import numpy as np
 from relaxtui.case import model
 from relaxtui.errors import UsageError
 from relaxtui.solver import stopping
-from relaxtui.solver.methods import get_method
+from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
+from relaxtui.solver.methods import MAX_CHUNK, get_method
 
 CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
-MAX_CHUNK = 1000  # most sweeps in one chunk
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
+QUICK_RADIUS_SECONDS = 1.0  # large grids with auto omega: Lanczos time before the first sweep (then beside the sweeps)
 
 
 @dataclass(frozen=True)
@@ -51,61 +52,7 @@ class Progress:
     tolerance: float
     status: str | None
     message: str
-
-
-class History:
-    """Per-sweep records of a run: numpy arrays of equal length (views)."""
-
-    COLUMNS = ("sweep", "seconds", "residual", "estimated_error")
-
-    def __init__(self):
-        self._data = np.empty((5, 256))
-        self._n = 0
-
-    def __len__(self) -> int:
-        return self._n
-
-    def extend(self, sweeps, seconds, residual, error, omega) -> None:
-        k = len(sweeps)
-        need = self._n + k
-        if need > self._data.shape[1]:
-            grown = np.empty((5, max(need, 2 * self._data.shape[1])))
-            grown[:, : self._n] = self._data[:, : self._n]
-            self._data = grown
-        block = self._data[:, self._n : need]
-        block[0] = sweeps
-        block[1] = seconds
-        block[2] = residual
-        block[3] = error
-        block[4] = omega
-        self._n = need
-
-    sweep = property(lambda self: self._data[0, : self._n])
-    seconds = property(lambda self: self._data[1, : self._n])
-    residual = property(lambda self: self._data[2, : self._n])
-    estimated_error = property(lambda self: self._data[3, : self._n])
-    omega = property(lambda self: self._data[4, : self._n])
-
-    def copy(self) -> "History":
-        other = History()
-        other._data = self._data[:, : self._n].copy()
-        other._n = self._n
-        return other
-
-    def to_csv_text(self) -> str:
-        lines = [",".join(self.COLUMNS)]
-        for s, t, r, e in zip(self.sweep, self.seconds, self.residual, self.estimated_error):
-            lines.append(f"{int(s)},{t:.6f},{_num(r)},{_num(e)}")
-        return "\n".join(lines) + "\n"
-
-    def to_csv(self, path) -> Path:
-        from relaxtui.output.atomic import write_text
-
-        return write_text(path, self.to_csv_text(), "history")
-
-
-def _num(x: float) -> str:
-    return repr(float(x)) if math.isfinite(x) else ("inf" if x > 0 else "-inf" if x < 0 else "nan")
+    background: str = ""  # work running beside the sweeps (the Jacobi radius estimate), "" when none
 
 
 @dataclass
@@ -117,75 +64,63 @@ class SolveResult:
 
 
 def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
-    """Apply the case's [solver] defaults and validate; returns the resolved tuple."""
-    s = case.solver
-    meth = get_method(method or s.method or model.DEFAULT_METHOD)
-    explicit = omega is not None
-    if omega is None:
-        omega = s.omega if s.omega is not None else model.DEFAULT_OMEGA
-    if isinstance(omega, str) and omega != "auto":
-        try:
-            omega = float(omega)
-        except ValueError:
-            raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {omega!r}") from None
-    if omega != "auto":
-        if isinstance(omega, bool) or not isinstance(omega, (int, float)):
-            raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {omega!r}")
-        if not meth.omega_meaning and not explicit:
-            omega = "auto"  # the case's omega is for other methods; this one has none
-        else:
-            omega = meth.check_omega(omega)
-    tol = tolerance if tolerance is not None else (s.tolerance if s.tolerance is not None else model.DEFAULT_TOLERANCE)
-    try:
-        tol = float(tol)
-    except (TypeError, ValueError):
-        raise UsageError(f"tolerance must be a positive number, not {tol!r}") from None
-    if not (tol > 0.0 and math.isfinite(tol)):
-        raise UsageError(f"tolerance must be a positive finite number, got {tol:g}")
-    ms = max_sweeps if max_sweeps is not None else (s.max_sweeps if s.max_sweeps is not None else model.DEFAULT_MAX_SWEEPS)
-    if isinstance(ms, bool) or not isinstance(ms, (int, np.integer)) or ms < 1:
-        raise UsageError(f"max_sweeps must be a whole number >= 1, got {ms!r}")
-    if time_limit is not None:
-        try:
-            time_limit = float(time_limit)
-        except (TypeError, ValueError):
-            raise UsageError(f"time_limit must be a number of seconds, not {time_limit!r}") from None
-        if not time_limit > 0.0:
-            raise UsageError(f"time_limit must be > 0 seconds, got {time_limit:g}")
-    return meth, omega, tol, int(ms), time_limit
+    """The call's options over the case's [solver] defaults, checked (see :func:`relaxtui.options.resolve`);
+    returns (Method, ω or "auto", tolerance, max sweeps, time limit)."""
+    from relaxtui.options import resolve
+
+    opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit),
+                   case.solver)
+    return get_method(opts.method), opts.omega, opts.tolerance, opts.max_sweeps, opts.time_limit
 
 
 class Run:
-    """One solve of a case with one method, advanced chunk by chunk."""
+    """One solve of a case with one method, advanced chunk by chunk.
+
+    ``radius_cache``: a folder (the outputs' folder) where the Jacobi radius of
+    the case's operator is cached between processes (see
+    :mod:`relaxtui.solver.radius`); ``on_prepare(text)``: called while
+    :meth:`prepare` works, with what it is doing and how far (also readable at
+    any time, from any thread, as :attr:`preparing`).
+    """
 
     def __init__(self, case, *, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
-                 initial=None, operator=None, field=None):
+                 initial=None, operator=None, field=None, radius_cache=None, on_prepare=None):
         if not isinstance(case, model.Case):
             from relaxtui.case import load_case
 
             case = load_case(case)
         self.case = case
-        self.method_info, self._omega_request, self.tolerance, self.max_sweeps, self.time_limit = resolve_options(
-            case, method, omega, tolerance, max_sweeps, time_limit)
+        from relaxtui.options import resolve
+
+        opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit),
+                       case.solver)
+        self.options = opts
+        self.method_info = get_method(opts.method)
+        self._omega_request, self.tolerance, self.max_sweeps, self.time_limit = opts.omega, opts.tolerance, opts.max_sweeps, opts.time_limit
         self.method = self.method_info.name
         self.operator = operator
         self._initial = initial
         self._continue = field
+        self._radius_cache = radius_cache
+        self.on_prepare = on_prepare
         self.history = History()
         self._cancel = threading.Event()
         self._prepared = False
         self._u = None
+        self._stepper = None
         self.omega = 1.0 if self._omega_request == "auto" else float(self._omega_request)
-        self.omega_note = "given"
+        self.omega_note = "given" if not opts.note else f"auto ({opts.note})"
         self.omega_changes: list[tuple[int, float, str]] = []
-        self.mu: float | None = None  # estimated Jacobi radius (SOR methods)
+        self.mu: float | None = None  # estimated Jacobi radius
         self._radius_note = ""
         self._radius_settled = False  # only a settled estimate guides the stopping rule
+        self._radius_pending = False  # an estimate runs in the background
         self._corrections = 0
         self.seconds = 0.0
         self.prepare_seconds = 0.0
         self.status: str | None = None
         self.message = "not started"
+        self.preparing = ""  # what prepare() is doing now ("" when idle), and how far
         self._chunk = 1
         self._sweep_seconds = None
         self._recent = (0, 0.0)  # sweeps and seconds of the last step() call
@@ -193,12 +128,18 @@ class Run:
         self.progress = self._progress()
 
     # -- set-up ----------------------------------------------------------------
+    def _stage(self, text: str) -> None:
+        self.preparing = text
+        if self.on_prepare is not None:
+            self.on_prepare(text)
+
     def prepare(self) -> None:
-        """Assemble, choose ω, compile kernels. Idempotent; step() calls it."""
+        """Assemble, load the kernels, choose ω. Idempotent; step() calls it."""
         if self._prepared:
             return
         t0 = time.perf_counter()
         if self.operator is None:
+            self._stage("assembling the operator")
             from relaxtui.solver.operator import Operator
 
             self.operator = Operator(self.case)
@@ -209,6 +150,7 @@ class Run:
                 raise UsageError("the field to continue from belongs to another case")
         else:
             self._u = op.new_field(self._initial)
+        self._stage(f"loading the {self.method} kernels")
         self._stepper = self.method_info.make_stepper(op)
         self._upd = np.empty(MAX_CHUNK)
         self._res = np.empty(MAX_CHUNK)
@@ -216,10 +158,11 @@ class Run:
         self._stepper.sweep(self._u, self.omega if self._omega_request != "auto" else 1.0, 0, self._upd, self._res)
         # a stepper may ask for its own rate window and envelope (multigrid: see relaxtui.solver.multigrid)
         self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale(),
-                                          **getattr(self._stepper, "rule_options", {}))
+                                          **self._stepper.rule_options)
         self._choose_omega(self._omega_request)
         self._prepared = True
         self.prepare_seconds = time.perf_counter() - t0
+        self.preparing = ""
         self.message = "running"
         self.progress = self._progress()
 
@@ -238,63 +181,131 @@ class Run:
                     scale = max(scale, abs(v))
         return scale or 1.0
 
-    def _radius(self) -> float:
-        """The Jacobi spectral radius of this case's operator (estimated once per operator)."""
-        if self.mu is None:
-            m = self.method_info
-            cached = getattr(self.operator, "_relaxtui_radius", None)
-            if cached is None or (not cached[1] and not m.needs_radius):
-                # (an unsettled estimate made for SOR is redone for the slow methods,
-                # whose longer solves afford the steps to settle it)
-                from relaxtui.solver.omega import jacobi_radius
+    # -- the Jacobi radius -------------------------------------------------------
+    def _wants_radius(self, request) -> bool:
+        """Auto ω from the radius, or Young's factor for the stopping rule."""
+        m = self.method_info
+        return (request == "auto" and m.needs_radius) or m.factor is not None
 
-                def method_sweeps(mu):
-                    return 9.2 / max(1.0 - m.factor(mu, m.auto(mu)), 1e-300)
+    def _method_sweeps(self, mu: float) -> float:
+        m = self.method_info
+        if m.factor is None:
+            from relaxtui.solver.young import sor_sweeps
 
-                op = self.operator
-                t0 = time.perf_counter()
-                if hasattr(op, "estimate_radius"):  # an operator split across MPI ranks runs its own Lanczos
-                    est = op.estimate_radius(method_sweeps)
-                else:
-                    est = jacobi_radius(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
-                how = "settled" if est.settled else "not settled, corrected from the observed factor"
-                cached = (est.mu, est.settled,
-                          f"Jacobi radius {est.mu:.6f} from {est.steps} Lanczos steps ({time.perf_counter() - t0:.2f} s, {how})")
-                op._relaxtui_radius = cached
-            self.mu, self._radius_settled, self._radius_note = cached
-        return self.mu
+            return sor_sweeps(mu)
+        return 9.2 / max(1.0 - m.factor(mu, m.auto(mu)), 1e-300)
 
-    def _choose_omega(self, request) -> None:
-        """Set ω (a number or "auto") and restart the stopping rule's measurement.
+    def _cache_file(self):
+        from relaxtui.solver.radius import BACKGROUND_UNKNOWNS
 
-        The Jacobi radius is estimated for every method, also when ω is given:
-        Young's relations then give the rule the method's asymptotic factor
-        and, above the optimal ω, the smooth modes' |λ - 1| (see
-        stopping.estimates).
-        """
-        from relaxtui.solver.omega import sor_smooth_gap
+        if self._radius_cache is None or self.operator.unknowns <= BACKGROUND_UNKNOWNS:
+            return None  # small grids: recomputing is quicker than a file
+        from relaxtui.solver.radius import cache_path
+
+        return cache_path(self._radius_cache, self.operator)
+
+    def _radius(self, request) -> None:
+        """Get the estimate: at once on small grids; on large ones beside the sweeps (a quick
+        start first when auto ω needs it). Sets ``mu`` (None while nothing is known)."""
+        from relaxtui.solver import radius
+
+        if self.mu is not None and not self._radius_pending:
+            return
+        m = self.method_info
+        job = self.operator.radius_job()
+        cache = self._cache_file()
+        if cache is not None and job.result() is None:
+            job.load(cache)
+        redo = not m.needs_radius  # an unsettled estimate made for SOR is redone for the slow methods
+
+        def show(lz):
+            self._stage(radius.RadiusState("running", lz.steps, lz.max_steps, lz.mu, lz.settled, 0.0, "lanczos").describe())
+
+        if self.operator.unknowns <= radius.BACKGROUND_UNKNOWNS:
+            est = job.run(self._method_sweeps, redo_unsettled=redo, on_step=show)
+        elif request == "auto" and m.needs_radius:
+            est = job.run(self._method_sweeps, redo_unsettled=redo, max_seconds=QUICK_RADIUS_SECONDS, on_step=show)
+        else:
+            est = job.result() if (job.result() is not None and (job.result().settled or not redo)) else None
+        if est is None:
+            job.start(self._method_sweeps, redo_unsettled=redo)
+            self._radius_pending = True
+            state = job.state()
+            self.mu = state.mu
+            self._radius_settled = False
+            self._radius_note = state.describe() + ", continued beside the sweeps"
+            return
+        self._take_radius(est, job.state().describe())
+        if cache is not None:
+            job.save(cache)
+
+    def _take_radius(self, est, note: str) -> None:
+        self.mu, self._radius_settled, self._radius_note = est.mu, est.settled, note
+        self._radius_pending = False
+
+    def _poll_radius(self) -> None:
+        """Between chunks: take a background estimate that has just finished."""
+        job = self.operator.radius_job()
+        est = job.result()
+        if est is None:
+            return
+        cache = self._cache_file()
+        if cache is not None:
+            job.save(cache)
+        old = self.mu
+        sweeps = self.rule.sweeps
+        self._take_radius(est, f"{job.state().describe()}, ready at sweep {sweeps}")
+        m = self.method_info
+        if self._omega_request == "auto" and m.needs_radius:
+            if old is None or est.mu > old:
+                self.omega_note = ""
+                self._choose_omega("auto")
+            else:
+                self.mu = old  # the radius in use (raised from the observed factor) is the larger
+        else:
+            # given ω: the rule gets Young's factor as its floor from here on (more conservative, no restart)
+            prior, gap = self._prior()
+            self.rule.prior_factor, self.rule.prior_gap = prior, gap
+            self.omega_note = f"given; {self._radius_note}"
+
+    def _prior(self):
+        from relaxtui.solver.young import sor_smooth_gap
 
         m = self.method_info
-        if m.uses_radius:
-            self._radius()  # Young's factor for the method is the rule's best guide
-        if request == "auto":
-            if m.needs_radius:
-                self.omega = m.auto(self.mu)
-                if not self.omega_note.startswith("auto: Jacobi radius raised"):
-                    self.omega_note = f"auto: {self._radius_note}, omega = 2/(1+sqrt(1-radius^2))"
-            else:
-                self.omega = m.auto(self.mu)
-                self.omega_note = ("auto: 1 (the best weight for this method on a red-black-coupled grid)"
-                                   if m.uses_radius else f"auto: {self.omega:g} (the method's default)")
-        else:
-            self.omega = float(request)
-            self.omega_note = "given"
         prior = gap = None
-        if self.mu is not None and m.uses_radius and self._radius_settled:
+        if self.mu is not None and m.factor is not None and self._radius_settled:
             prior = m.factor(self.mu, self.omega)
             gap = sor_smooth_gap(self.mu, self.omega) if m.needs_radius else None
             if prior >= 1.0:
                 prior = gap = None  # no convergence predicted (e.g. over-weighted Jacobi): measure only
+        return prior, gap
+
+    def _choose_omega(self, request) -> None:
+        """Set ω (a number or "auto") and restart the stopping rule's measurement.
+
+        The Jacobi radius is estimated for every method with a theoretical
+        factor, also when ω is given: Young's relations then give the rule the
+        method's asymptotic factor and, above the optimal ω, the smooth modes'
+        |λ - 1| (see stopping.estimates). While the estimate is missing or
+        unsettled the rule measures the factor alone (the conservative path).
+        """
+        m = self.method_info
+        if self._wants_radius(request):
+            self._radius(request)
+        if request == "auto":
+            if m.needs_radius:
+                self.omega = m.auto(self.mu if self.mu is not None else 0.0)
+                if not self.omega_note.startswith("auto: Jacobi radius raised"):
+                    self.omega_note = f"auto: {self._radius_note}, omega = {m.auto_note}"
+            else:
+                self.omega = m.auto(self.mu)
+                if not self.omega_note.startswith("auto ("):
+                    self.omega_note = ("auto: 1 (the best weight for this method on a red-black-coupled grid)"
+                                       if m.factor is not None else f"auto: {self.omega:g} (the method's default)")
+        else:
+            self.omega = float(request)
+            self.omega_note = "given" if not self._radius_pending else f"given; {self._radius_note}"
+        prior, gap = self._prior()
         # SOR near ω = 2 wanders for many sweeps before it settles: never call that a stall
         stall = int(20.0 / max(2.0 - self.omega, 1e-6)) if m.needs_radius else 0
         self.rule.restart(prior_factor=prior, prior_gap=gap, stall_window=stall)
@@ -302,8 +313,9 @@ class Run:
 
     def set_omega(self, omega) -> None:
         """Change ω mid-run (a number in (0, 2) or "auto"); recorded in history and report."""
-        if omega != "auto":
-            omega = self.method_info.check_omega(omega)
+        from relaxtui.options import check_omega_for
+
+        omega = check_omega_for(self.method, omega)
         self._omega_request = omega
         if self._prepared and not self.done:
             self._choose_omega(omega)
@@ -331,7 +343,14 @@ class Run:
     @property
     def stepper_info(self) -> dict | None:
         """What the method's stepper reports about itself (e.g. multigrid levels), or None."""
-        return getattr(self._stepper, "info", None) if self._prepared else None
+        return self._stepper.info if self._prepared else None
+
+    @property
+    def background(self) -> str:
+        """What runs beside the sweeps ("" when nothing): the radius estimate and how far it is."""
+        if not self._radius_pending or self.operator is None:
+            return ""
+        return self.operator.radius_job().state().describe()
 
     # -- stepping --------------------------------------------------------------
     def step(self, max_seconds: float = 0.25) -> Progress:
@@ -345,6 +364,8 @@ class Run:
             if self._cancel.is_set():
                 self._finish(stopping.CANCELLED)
                 break
+            if self._radius_pending:
+                self._poll_radius()
             n = self._chunk_size()
             t0 = time.perf_counter()
             k = self._stepper.sweep(self._u, self.omega, n, self._upd, self._res)
@@ -386,15 +407,16 @@ class Run:
             cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
         remaining = self.max_sweeps - self.rule.sweeps
         # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
-        most = getattr(self._stepper, "max_chunk", MAX_CHUNK)
-        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, most))
+        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
 
     def _maybe_correct_omega(self) -> None:
         """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""
-        if self._omega_request != "auto" or self.mu is None or self._corrections >= MAX_OMEGA_CORRECTIONS:
+        m = self.method_info
+        if (self._omega_request != "auto" or self.mu is None or self._corrections >= MAX_OMEGA_CORRECTIONS
+                or m.invert is None or m.factor is None):
             return
         est = self.rule.last_estimate
-        predicted = self.method_info.factor(self.mu, self.omega)
+        predicted = m.factor(self.mu, self.omega)
         meas = est.measured
         if not est.mature or meas is None or not 0.0 < meas < 1.0:
             return
@@ -403,15 +425,14 @@ class Run:
             return  # too early: near the optimum SOR decays like k·(ω-1)^k for a long while
         if (1.0 - meas) >= 0.5 * (1.0 - predicted):
             return
-        from relaxtui.solver.omega import mu_from_sor_factor
-
-        mu_new = mu_from_sor_factor(meas, self.omega)
+        mu_new = m.invert(meas, self.omega)
         if mu_new <= self.mu:
             return
         self._corrections += 1
         old = self.mu
         self.mu = mu_new
-        self.operator._relaxtui_radius = (mu_new, False, f"Jacobi radius {mu_new:.6f} (raised from the observed SOR factor)")
+        self._radius_pending = False  # the observed factor outranks a Lanczos estimate still running (it errs low)
+        self.operator.radius_job().raise_to(mu_new)
         self.omega_note = (f"auto: Jacobi radius raised {old:.6f} -> {mu_new:.6f} from the observed SOR factor "
                            f"{meas:.6f} (Young's relation), omega = 2/(1+sqrt(1-radius^2))")
         self._choose_omega("auto")
@@ -419,9 +440,18 @@ class Run:
     def _finish(self, status: str) -> None:
         self.status = status
         self.message = self._describe(status)
-        release = getattr(self._stepper, "release", None)  # a stepper's own buffers are not needed any more
-        if release is not None:
-            release()
+        if self._radius_pending:
+            job = self.operator.radius_job()
+            job.pause()  # the Lanczos state is kept: a later run on this operator resumes it
+            self._radius_pending = False
+            if job.result() is not None:
+                cache = self._cache_file()
+                if cache is not None:
+                    job.save(cache)  # for the next run; this one ended without it
+            note = (f"the Jacobi radius estimate was not ready before the run ended ({job.state().describe()}); "
+                    "the stopping rule measured the factor alone")
+            self.omega_note = f"given; {note}" if self._omega_request != "auto" else f"{self.omega_note}; {note}"
+        self._stepper.release()  # a stepper's own buffers are not needed any more
 
     # -- reporting -------------------------------------------------------------
     def _describe(self, status: str | None) -> str:
@@ -474,6 +504,7 @@ class Run:
             tolerance=self.tolerance,
             status=self.status,
             message=self.message if self.status else self._describe(None),
+            background=self.background,
         )
 
     def result(self) -> SolveResult:
@@ -490,7 +521,9 @@ class Run:
 
 
 def _group(n: int) -> str:
-    return f"{n:,}".replace(",", " ")
+    from relaxtui.output.text import group
+
+    return group(n)
 
 
 def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,

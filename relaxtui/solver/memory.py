@@ -11,16 +11,17 @@ array                   bytes per cell  note
 ======================  ==============  =========================================
 working field           8               float64, padded by one cell all round
 class codes             1 or 2          uint8 up to 256 classes, else uint16
-second buffer           8               Jacobi only (old and new iterate), padded
-multigrid hierarchy     22              multigrid only: correction and residual
-                                        on the coarse levels, 2 x 8 x 4/3
+sweep buffers           8 each          ``Method.buffers`` of the registry (Jacobi:
+                                        old and new iterate), padded
+method's own            ``Method.bytes_per_cell`` (multigrid: its hierarchy,
+                                        44: coarse levels and CG vectors)
 output copy             8               the exported float64 field (NaN outside)
 decoded picture         4               transient, while the PNG is decoded
 fixed                   200 MiB         interpreter, numba, compiled code, UI
 ======================  ==============  =========================================
 
-The constants are named below so the operator's owner can refine them to the
-arrays it really allocates.
+The per-method numbers live in the method registry (``relaxtui.solver.methods``),
+the rest are named below.
 """
 
 from __future__ import annotations
@@ -31,15 +32,10 @@ FIELD_BYTES_PER_CELL = 8
 CLASS_CODE_BYTES_SMALL = 1  # up to CLASS_CODE_SMALL_LIMIT classes
 CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
-JACOBI_BUFFER_BYTES_PER_CELL = 8
-MULTIGRID_BYTES_PER_CELL = 44  # measured on the 4096² demo: coarse levels and CG vectors beyond red-black SOR's arrays
+BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
 PICTURE_BYTES_PER_CELL = 4
 FIXED_BYTES = 200 * 1024 * 1024
-
-# Methods that keep a second copy of the field.
-TWO_BUFFER_METHODS = ("jacobi",)
-HIERARCHY_METHODS = ("multigrid",)
 
 
 def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1) -> int:
@@ -50,8 +46,8 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     rows, cols : int
         Picture size in cells.
     method : str or None
-        Method name (see ``relaxtui.solver.methods_names``); ``None`` counts as the
-        default red-black SOR (one field buffer).
+        Method name (see ``relaxtui.solver.methods``); ``None`` (or a name the
+        registry does not know) counts as the default red-black SOR (one field buffer).
     materials : int
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
 
@@ -68,10 +64,12 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     total = FIXED_BYTES
     total += FIELD_BYTES_PER_CELL * padded
     total += code_bytes * padded
-    if method in TWO_BUFFER_METHODS:
-        total += JACOBI_BUFFER_BYTES_PER_CELL * padded
-    if method in HIERARCHY_METHODS:
-        total += MULTIGRID_BYTES_PER_CELL * cells
+    from relaxtui.solver.methods import METHODS
+
+    m = METHODS.get(method) if isinstance(method, str) else None
+    if m is not None:
+        total += BUFFER_BYTES_PER_CELL * m.buffers * padded
+        total += m.bytes_per_cell * cells
     total += OUTPUT_BYTES_PER_CELL * cells
     total += PICTURE_BYTES_PER_CELL * cells
     return int(total)

@@ -48,9 +48,9 @@ import numpy as np
 
 from relaxtui.case.model import CONVECTION, FIXED, FLUX, INTERIOR, Case
 from relaxtui.errors import CaseError, UsageError
-from relaxtui.solver.methods_names import METHOD_NAMES
+from relaxtui.solver.methods import METHODS
 
-SWEEP_METHODS = ("jacobi", "gauss-seidel", "sor", "red-black-sor")
+SWEEP_METHODS = tuple(name for name, m in METHODS.items() if m.kernel is not None)
 MIN_RUN = 16  # shortest run of one class swept with constant weights
 PARALLEL_CELLS = 1 << 16  # below this many cells a sweep runs on one thread (no parallel start-up)
 FLOW_BLOCKS = 64  # row blocks of the flows kernel: fixed, so sums do not depend on the thread count
@@ -112,6 +112,8 @@ class Operator:
         self._check_anchored(assemble)
         self._assemble(assemble)
         self._scratch = None
+        self._radius = None
+        self._fingerprint = None
 
     # --- set-up ------------------------------------------------------------------------
 
@@ -285,18 +287,20 @@ class Operator:
         not finite (the field then holds that sweep's result).
         """
         self._check_field(u)
-        if method not in SWEEP_METHODS:
-            if method in METHOD_NAMES:
+        m = METHODS.get(method) if isinstance(method, str) else None
+        if m is None or m.kernel is None:
+            if m is not None:
                 raise UsageError(f"{method!r} is not a relaxation sweep of the operator")
             raise UsageError(f"unknown method {method!r}; choose one of {', '.join(SWEEP_METHODS)}")
         try:
             omega = float(omega)
         except (TypeError, ValueError):
             raise UsageError(f"omega must be a number, not {omega!r}") from None
+        # kernel-layer guards (the user-facing checks are relaxtui.options)
         if not (0.0 < omega < 2.0):
             raise UsageError(f"omega must lie in (0, 2), got {omega}")
-        if method == "gauss-seidel" and omega != 1.0:
-            raise UsageError(f"gauss-seidel takes omega = 1, got {omega} (use sor)")
+        if not m.has_omega and omega != 1.0:
+            raise UsageError(f"{method} takes omega = 1, got {omega} (use sor)")
         if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
             raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
         sweeps = int(sweeps)
@@ -304,21 +308,27 @@ class Operator:
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float64 or arr.ndim != 1 or arr.shape[0] < sweeps or not arr.flags.writeable:
                 raise UsageError(f"{name} must be a writable 1-D float64 array of length >= {sweeps}")
         # sweeps == 0 still calls the kernel: a cheap way to load (or compile) it before a timed run
-        from relaxtui.kernels import sweeps as k
+        import importlib
 
+        spec = m.kernel
+        module = importlib.import_module(f"relaxtui.kernels.{spec.module}")
         parallel, nblk = self._blocks()
-        if method == "jacobi":
-            if self._scratch is None and sweeps > 0:
-                self._scratch = np.zeros(self.padded_shape)
-            tmp = self._scratch if self._scratch is not None else u  # unused when sweeps == 0
-            if parallel:
-                return int(k.jacobi(u, tmp, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
-            return int(k.jacobi_serial(u, tmp, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
-        if method == "red-black-sor":
-            if parallel:
-                return int(k.sor_red_black(u, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals, nblk))
-            return int(k.sor_red_black_serial(u, self.cls, self.table, *self._segments, omega, sweeps, updates, residuals))
-        return int(k.sor_lexicographic(u, self.cls, self.table, omega, sweeps, updates, residuals))
+        args = []
+        for name in spec.inputs:
+            if name == "u":
+                args.append(u)
+            elif name == "buffer":
+                if self._scratch is None and sweeps > 0:
+                    self._scratch = np.zeros(self.padded_shape)
+                args.append(self._scratch if self._scratch is not None else u)  # unused when sweeps == 0
+            elif name == "segments":
+                args.extend(self._segments)
+            else:
+                args.append(getattr(self, name))
+        args += [omega, sweeps, updates, residuals]
+        if parallel and spec.parallel is not None:
+            return int(getattr(module, spec.parallel)(*args, nblk))
+        return int(getattr(module, spec.serial)(*args))
 
     def _blocks(self) -> tuple[bool, int]:
         import numba
@@ -329,7 +339,7 @@ class Operator:
         return True, max(1, min(threads, self.shape[0]))
 
     def release(self) -> None:
-        """Drop the Jacobi buffer (it is made again by the next Jacobi sweep)."""
+        """Drop the sweep buffer (it is made again by the next sweep that needs it)."""
         self._scratch = None
 
     # --- measures ------------------------------------------------------------------------------
@@ -389,7 +399,8 @@ class Operator:
         """out = J x for the homogeneous Jacobi iteration matrix J = D^-1 (D - A), in the working layout.
 
         ``x`` must be finite everywhere (zeros outside the unknowns will do);
-        ``out`` is overwritten, 0 outside the unknowns.
+        ``out`` is overwritten, 0 outside the unknowns. Safe to call from another
+        thread while a sweep runs (it reads only the operator's arrays).
         """
         self._check_field(x, "vector x")
         self._check_field(out, "output")
@@ -402,21 +413,45 @@ class Operator:
         """Per-cell sqrt(D) in the working layout, 0 outside the unknowns: D^(1/2) J D^(-1/2) is symmetric."""
         return np.sqrt(self.diag)[self.cls]
 
+    # --- the Jacobi radius, estimated once per operator --------------------------------------
+
+    def radius_job(self):
+        """The :class:`~relaxtui.solver.radius.RadiusJob` of this operator (made on first use):
+        every run on this operator shares one estimate of the Jacobi spectral radius."""
+        if self._radius is None:
+            from relaxtui.solver.radius import RadiusJob
+
+            self._radius = RadiusJob(self)
+        return self._radius
+
+    def fingerprint(self) -> str:
+        """A hash of what the operator's spectrum depends on (class codes, class table, diagonal), hex."""
+        if self._fingerprint is None:
+            import hashlib
+
+            h = hashlib.blake2b(digest_size=20)
+            for a in (np.asarray(self.shape, dtype=np.int64), self.cls, self.table, self.diag):
+                h.update(str(a.dtype).encode())
+                h.update(np.ascontiguousarray(a).data)
+            self._fingerprint = h.hexdigest()
+        return self._fingerprint
+
     def memory_bytes(self, method: str) -> int:
         """Bytes this operator and a solve with ``method`` hold: the operator's arrays, the working
-        field, the Jacobi buffer (Jacobi only) and the exported copy made by :meth:`finish`.
+        field, the method's sweep buffers (``Method.buffers``: Jacobi one) and the exported copy made by
+        :meth:`finish`.
 
         Not counted: the case's own code array (owned by the case), and any
         hierarchy a multigrid solve builds on top of this operator.
         """
-        if method not in METHOD_NAMES:
+        m = METHODS.get(method) if isinstance(method, str) else None
+        if m is None:
             raise UsageError(f"unknown method {method!r}")
         field = 8 * self.padded_shape[0] * self.padded_shape[1]
         held = self.cls.nbytes + self.table.nbytes + self.diag.nbytes + sum(a.nbytes for a in self._segments)
         held += self.class_keys.nbytes + self.class_cells.nbytes
         total = held + field + 8 * self.shape[0] * self.shape[1]
-        if method == "jacobi":
-            total += field
+        total += m.buffers * field
         return int(total)
 
 

@@ -49,10 +49,10 @@ class RelaxApp(Controls, Refresher, App):
     BINDINGS = [
         Binding("s", "start", "Start"),
         Binding("c", "continue_run", "Continue"),
-        Binding("space", "pause", "Pause/Go", key_display="space"),
+        Binding("space", "pause", "Pause", key_display="space"),
         Binding("x", "stop", "Stop"),
         Binding("v", "cycle_view", "View"),
-        Binding("w", "panel('omega')", "ω study"),
+        Binding("w", "panel('omega')", "ω"),
         Binding("e", "export", "Export"),
         Binding("question_mark,f1", "help", "Help", key_display="?"),
         Binding("q", "quit", "Quit"),
@@ -61,6 +61,7 @@ class RelaxApp(Controls, Refresher, App):
         ("3", "panel('runs')", "Runs"), ("4", "panel('omega')", "ω study"), ("h", "toggle_held", "Held values"),
         ("a", "toggle_span", "All runs"), ("m", "focus_param('method')", "Method"),
         ("o", "focus_param('omega')", "Omega"), ("t", "focus_param('tolerance')", "Tolerance"),
+        ("r", "focus_study('scan')", "ω scan range"), ("l", "focus_study('csv')", "Load a sweep CSV"),
     )
 
     def __init__(self, case_path, *, method=None, omega=None, tolerance=None, max_sweeps=None, run=False) -> None:
@@ -100,7 +101,7 @@ class RelaxApp(Controls, Refresher, App):
     # -- building ----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
         from relaxtui.solver.methods import METHODS
-        from relaxtui.solver.methods_names import METHOD_NAMES
+        from relaxtui.solver.methods import METHOD_NAMES
 
         omega = self.cli["omega"]
         yield Banner(id="banner")
@@ -121,7 +122,7 @@ class RelaxApp(Controls, Refresher, App):
                     id="params",
                 )
         yield StatusStrip(id="status")
-        yield Footer()
+        yield Footer(compact=True)
 
     def on_mount(self) -> None:
         self.main = self.screen  # widgets are looked up on the main screen, also under a dialog
@@ -231,7 +232,7 @@ class RelaxApp(Controls, Refresher, App):
             options = params.read()
             if omega is not None:
                 options["omega"] = omega
-            run = Run(self.case, operator=self.operator, **options, **kwargs)
+            run = Run(self.case, operator=self.operator, radius_cache=Path.cwd(), **options, **kwargs)
         except RelaxError as exc:
             self._refuse(str(exc))
             return None
@@ -271,7 +272,7 @@ class RelaxApp(Controls, Refresher, App):
             self.main.query_one(FieldView).focus()
         elif name == "omega":
             self.refresh_study()
-            self.main.query_one(OmegaPanel).focus_scan()
+            self.set_focus(None)
         else:
             self.set_focus(None)
         if name == "history":
@@ -279,10 +280,15 @@ class RelaxApp(Controls, Refresher, App):
             self.call_after_refresh(self.refresh_plot)
 
     def action_focus_panel(self) -> None:
-        self.action_panel(self.panel if self.panel != "omega" else "field")
+        self.action_panel(self.panel)
 
     def action_focus_param(self, which: str) -> None:
         self.main.query_one(ParamsPanel).focus_field(which)
+
+    def action_focus_study(self, which: str) -> None:
+        if self.panel != "omega":
+            self.action_panel("omega")
+        self.main.query_one(OmegaPanel).focus_field(which)
 
     # -- export, help, quitting ---------------------------------------------------------------
     def action_export(self) -> None:

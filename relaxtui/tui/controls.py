@@ -83,7 +83,6 @@ class Controls:
             return
         self.scan = list(values)
         self._tell(f"scan of {len(values)} ω values with {method}: x cancels it", timeout=4)
-        self.action_focus_panel()
         self._next_scan()
 
     def _next_scan(self) -> None:

@@ -214,7 +214,8 @@ class FieldView(Widget, can_focus=True):
         values, ticks, unit = frame.values, None, self.unit
         if frame.mode == "solution" and self.mode == "solution":
             lo, hi = domain_range(frame.values, frame.domain, frame.fixed)
-            if self.include_held:
+            flat = not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo <= 1e-12 * max(abs(lo), abs(hi), 1.0)
+            if self.include_held or flat:  # a uniform guess has no range of its own: show it against the held values
                 lo, hi = frame.vmin, frame.vmax
                 if self.scale_range is not None:
                     lo = min(self.scale_range[0], lo) if math.isfinite(lo) else self.scale_range[0]

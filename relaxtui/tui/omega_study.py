@@ -4,7 +4,7 @@ Points come from the session's finished runs of a method with a relaxation
 factor (sor, red-black-sor) and from a ``relaxtui sweep`` CSV. Overlaid:
 
 * Young's prediction for the measured Jacobi radius μ: the SOR factor
-  ρ(ω) (:func:`relaxtui.solver.omega.sor_factor`; Young 1971) gives
+  ρ(ω) (:func:`relaxtui.solver.young.sor_factor`; Young 1971) gives
   N(ω) = K / -ln ρ(ω) sweeps, where K = ln(initial error / tolerance) is not
   known beforehand; it is taken as the median of N_i · -ln ρ(ω_i) over the
   converged runs shown (so the curve is fitted in height only, its shape is
@@ -86,7 +86,7 @@ def load_sweep_csv(path, method: str | None = None) -> list[Point]:
 def young_curve(mu: float, points: list[Point], omegas: np.ndarray) -> np.ndarray | None:
     """Predicted sweeps to tolerance at ``omegas`` (NaN where ρ >= 1), fitted in height to the
     converged ``points``; None without a converged point."""
-    from relaxtui.solver.omega import sor_factor
+    from relaxtui.solver.young import sor_factor
 
     ks = []
     for p in points:
@@ -181,16 +181,17 @@ class OmegaPanel(Vertical):
         yield Static(id="omega-key")
         with Horizontal(classes="param-row"):
             yield Label("scan ω", classes="param-label")
-            yield Input(placeholder="1.80:1.98:0.02 then enter", compact=True, id="omega-scan")
+            yield Input(placeholder="r, then e.g. 1.80:1.98:0.02 and enter", compact=True, id="omega-scan")
         with Horizontal(classes="param-row"):
             yield Label("sweep CSV", classes="param-label")
-            yield Input(placeholder="path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
+            yield Input(placeholder="l, then the path of a relaxtui sweep --csv file", compact=True, id="omega-csv")
 
     async def action_leave(self) -> None:
         await self.app.run_action("focus_panel")
 
-    def focus_scan(self) -> None:
-        self.query_one("#omega-scan", Input).focus()
+    def focus_field(self, which: str) -> None:
+        """``scan`` or ``csv``."""
+        self.query_one(f"#omega-{which}", Input).focus()
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         event.stop()
@@ -198,10 +199,11 @@ class OmegaPanel(Vertical):
             self.post_message(self.ScanRequested(self, event.value))
         elif event.input.id == "omega-csv":
             self.post_message(self.CsvRequested(self, event.value))
+        self.app.call_later(self.app.run_action, "focus_panel")
 
     def update_study(self, records, method: str, mu: float | None, scanning: str = "") -> None:
         """Redraw from the session's runs (``method``: the study's method; ``mu``: the measured radius)."""
-        from relaxtui.solver.omega import optimal_omega
+        from relaxtui.solver.young import optimal_omega
 
         self.method = method if method in STUDY_METHODS else self.method
         if mu is not None:

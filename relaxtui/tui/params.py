@@ -29,54 +29,15 @@ from textual.reactive import reactive
 from textual.widget import Widget
 from textual.widgets import Input, Label, Static
 
+from relaxtui import options
 from relaxtui.errors import UsageError
 from relaxtui.tui.messages import PanelMessage
-
-try:  # the one options path, once it exists (it raises with the command line's messages)
-    from relaxtui import options as _options
-except ImportError:  # pragma: no cover - depends on the solver layer's version
-    _options = None
 
 FIELD_LABEL = {"omega": "ω", "tolerance": "tolerance", "max-sweeps": "sweep limit"}
 
 
-def _cli_omega(text: str):
-    if text == "auto":
-        return "auto"
-    try:
-        value = float(text)
-    except ValueError:
-        raise UsageError(f"omega must be a number in (0, 2) or 'auto', not {text!r}") from None
-    if not 0.0 < value < 2.0:
-        raise UsageError(f"omega must lie in (0, 2), got {value:g}")
-    return value
-
-
-def _cli_number(name: str, kind, wants: str, ok, bad: str):
-    """A parser with the command line's two messages: not a number, and out of range."""
-
-    def parse(text: str):
-        try:
-            value = kind(text)
-        except ValueError:
-            raise UsageError(f"{name} must be {wants}, not {text!r}") from None
-        if not ok(value):
-            raise UsageError(f"{name} must be {bad}, got {text if kind is float else value}")
-        return value
-
-    return parse
-
-
-_cli_tolerance = _cli_number("tolerance", float, "a number", lambda v: v > 0.0 and v == v and v != float("inf"), "a positive finite number")
-_cli_max_sweeps = _cli_number("max-sweeps", int, "a whole number", lambda v: v >= 1, "at least 1")
-
-
-def _parser(name: str, fallback):
-    shared = getattr(_options, f"parse_{name}", None) if _options is not None else None
-    return shared or fallback
-
-
 def _labelled(which: str, parse, text: str):
+    """Parse with the one options path (the command line's messages), the field named in front."""
     try:
         return parse(text)
     except UsageError as exc:
@@ -84,18 +45,17 @@ def _labelled(which: str, parse, text: str):
 
 
 def parse_omega(text: str):
-    """"auto" (also for an empty field) or a number in (0, 2); the command line's messages."""
+    """"auto" (also for an empty field) or a number in (0, 2)."""
     text = text.strip()
-    return _labelled("omega", _parser("omega", _cli_omega), "auto" if text.lower() in ("", "auto") else text)
+    return _labelled("omega", options.parse_omega, "auto" if text == "" else text)
 
 
 def parse_tolerance(text: str) -> float:
-    return _labelled("tolerance", _parser("tolerance", _cli_tolerance), text.strip())
+    return _labelled("tolerance", options.parse_tolerance, text)
 
 
 def parse_max_sweeps(text: str) -> int:
-    text = text.strip().replace("_", "").replace(" ", "").replace("\u202f", "")
-    return _labelled("max-sweeps", _parser("max_sweeps", _cli_max_sweeps), text)
+    return _labelled("max-sweeps", options.parse_max_sweeps, text)
 
 
 PARSERS = {"omega": parse_omega, "tolerance": parse_tolerance, "max-sweeps": parse_max_sweeps}
@@ -105,7 +65,7 @@ def jacobi_warning(omega, mu: float | None) -> str:
     """A warning for a Jacobi weight above 1 (empty when there is none).
 
     Weighted Jacobi's factor on a 2-cyclic operator is max |1 - w (1 ± μ)|
-    (Young 1971; :func:`relaxtui.solver.omega.jacobi_factor`): above 1 once
+    (Young 1971; :func:`relaxtui.solver.young.jacobi_factor`): above 1 once
     w > 2 / (1 + μ), which is barely above 1 on a fine grid (μ near 1).
     """
     if omega == "auto" or omega is None or float(omega) <= 1.0:

@@ -33,6 +33,11 @@ class Refresher:
         self._plans: dict = {}
 
     # -- worker events ---------------------------------------------------------------------
+    def on_preparing(self, ev) -> None:
+        rec = self.session.preparing(ev.run_id, ev.text)
+        if rec is not None and rec.id == self.selected:
+            self.show_run(rec)
+
     def on_prepared(self, ev) -> None:
         rec = self.session.prepared(ev.run_id, ev.progress, ev.mu, ev.theory)
         if rec is not None:
@@ -48,7 +53,7 @@ class Refresher:
             self.main.query_one(FieldView).show_frame(ev.frame, rec.status)
 
     def on_progressed(self, ev) -> None:
-        rec = self.session.progressed(ev.run_id, ev.progress, ev.tail, ev.frame)
+        rec = self.session.progressed(ev.run_id, ev.progress, ev.tail, ev.frame, ev.mu, ev.theory)
         if rec is None:
             return
         if ev.frame is not None and rec.id == self.selected:
@@ -115,7 +120,7 @@ class Refresher:
             if rec is None:
                 timing.show(None)
             elif rec.status == "preparing":
-                timing.show(None, note="preparing: assembling, estimating ω, compiling kernels…")
+                timing.show(None, note=f"preparing: {rec.preparing or 'starting'}…")
             else:
                 timing.show(rec.progress, rec.rate, to_go=present.to_go_text(rec))
             if rec is not None:
@@ -222,10 +227,13 @@ class Refresher:
         else:
             head = f"#{rec.id} {rec.method}"
             if rec.status == "preparing":
-                head += " preparing (assembly, ω estimate, kernel compilation)"
+                head += f" preparing: {rec.preparing or 'starting'} (q quits at once, x stops)"
             report = rec.result.report if rec.result is not None else None
             progress = rec.progress if rec.status != "preparing" else None
             message = present.run_message(rec) if progress is not None else None
+            background = getattr(progress, "background", "") if progress is not None and rec.live else ""
+            if background and message:
+                message += f" ({background}, beside the sweeps)"
             status.show(head, progress, report, self.problem or rec.problem, message=message)
 
     def _tell(self, text: str, **kwargs) -> None:

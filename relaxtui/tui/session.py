@@ -218,6 +218,7 @@ class RunRecord:
         self.problem: str | None = None
         self.source: "RunRecord | None" = None  # the run it continues from
         self.rate: float | None = None
+        self.preparing = ""  # what the preparation is doing now, and how far (the driver's words)
         self.mu: float | None = None  # the run's Jacobi radius estimate, once prepared
         self.theory: float | None = None  # the method's theoretical factor at the run's ω
         self._series = None
@@ -310,8 +311,9 @@ class Session:
         return "ready" if self.active is None else self.active.status
 
     def in_progress(self) -> bool:
-        """A run is sweeping or can still sweep (quitting would lose work)."""
-        return self.active is not None and self.active.live
+        """A run has sweeps that quitting would lose: running or paused (a preparation
+        or a run that is stopping or building its report loses nothing worth a question)."""
+        return self.active is not None and self.active.status in ("running", "paused")
 
     # -- transitions --------------------------------------------------------------
     def begin(self, run, start: str, omega_auto: bool, *, viewport=None, paused=False, one_step=False,
@@ -329,21 +331,30 @@ class Session:
         self.selected = rec.id
         return rec
 
+    def preparing(self, run_id: int, text: str) -> RunRecord | None:
+        rec = self.record(run_id)
+        if rec is not None and rec.status == "preparing":
+            rec.preparing = text
+        return rec
+
     def prepared(self, run_id: int, progress, mu=None, theory=None) -> RunRecord | None:
         rec = self.record(run_id)
         if rec is None:
             return None
         rec.progress = progress
         rec.mu, rec.theory = mu, theory
+        rec.preparing = ""
         if rec is self.active and rec.status == "preparing":
             rec.status = "paused" if self.control.paused else "running"
         return rec
 
-    def progressed(self, run_id: int, progress, chunk: HistoryTail, frame=None) -> RunRecord | None:
+    def progressed(self, run_id: int, progress, chunk: HistoryTail, frame=None, mu=None, theory=None) -> RunRecord | None:
         rec = self.record(run_id)
         if rec is None:
             return None
         rec.add(progress, chunk)
+        if mu is not None:
+            rec.mu, rec.theory = mu, theory
         if frame is not None:
             self.keep_frame(rec, frame)
         if rec is self.active and rec.live:

@@ -31,6 +31,7 @@ from relaxtui.tui.session import HistoryTail, tail
 STEP_SECONDS = 0.2  # one run.step() call of the worker
 FRAME_INTERVAL = 0.5  # seconds between field snapshots while running
 PAUSE_POLL = 0.05  # how often a paused worker looks for requests
+PREPARE_INTERVAL = 0.1  # seconds between posts of the preparation's progress
 
 
 # -- events (immutable; the UI thread owns them once posted) ---------------------------
@@ -39,6 +40,11 @@ PAUSE_POLL = 0.05  # how often a paused worker looks for requests
 @dataclass(frozen=True, eq=False)
 class RunEvent:
     run_id: int
+
+
+@dataclass(frozen=True, eq=False)
+class Preparing(RunEvent):
+    text: str  # what the run's preparation is doing and how far (the driver's words)
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,6 +60,8 @@ class Progressed(RunEvent):
     progress: object
     tail: HistoryTail
     frame: Frame | None  # a new snapshot of the field, or None
+    mu: float | None = None  # the radius estimate now (SOR refines it from the observed factor)
+    theory: float | None = None  # the theoretical factor at the current ω and radius
 
 
 @dataclass(frozen=True, eq=False)
@@ -140,6 +148,18 @@ class Snapshots:
 def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False) -> None:
     """Prepare and advance ``run`` until it ends, posting events; see the module docstring."""
     t0 = time.perf_counter()
+    last = [-math.inf, ""]
+
+    def preparing(text: str) -> None:
+        # every new stage at once, the steps within a stage at most every PREPARE_INTERVAL
+        now = time.perf_counter()
+        stage = text.split(":", 1)[0]
+        if stage != last[1] or now - last[0] >= PREPARE_INTERVAL:
+            last[0], last[1] = now, stage
+            post(Preparing(run_id, text))
+
+    if getattr(run, "on_prepare", None) is None:
+        run.on_prepare = preparing
     try:
         run.prepare()
     except RelaxError as exc:
@@ -187,7 +207,7 @@ def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False)
         if run.done or one or now - last_frame >= FRAME_INTERVAL or control.view()[1] != serial_done:
             frame = snapshot()
             last_frame = now
-        post(Progressed(run_id, progress, chunk, frame))
+        post(Progressed(run_id, progress, chunk, frame, getattr(run, "mu", None), theory_factor(run)))
     if control.quitting or cancelled():
         return
     result = run.result()
