@@ -390,8 +390,9 @@ class DistributedRadiusJob(RadiusJob):
 
     Its Lanczos process is a :class:`DistributedLanczos`; nothing runs in a
     background thread (every step is collective, and only rank 0's main thread
-    talks to the other ranks), so :meth:`start` completes the estimate at once:
-    on a large grid the sweeps start after the estimate instead of beside it.
+    talks to the other ranks), so :meth:`run` and :meth:`start` complete the
+    estimate at once: on a large grid the sweeps start after the estimate
+    instead of beside it (with auto ω the run then starts at the settled ω).
     Loading and saving the cache file work as in one process (same fingerprint,
     same file).
     """
@@ -406,11 +407,13 @@ class DistributedRadiusJob(RadiusJob):
             self._lanczos = DistributedLanczos(self.operator, method_sweeps)
         return True
 
+    def run(self, method_sweeps=None, *, redo_unsettled: bool = False, max_seconds: float | None = None, on_step=None):
+        """Complete the estimate now, whatever ``max_seconds`` says: it cannot continue beside the sweeps."""
+        args = () if method_sweeps is None else (method_sweeps,)
+        return super().run(*args, redo_unsettled=redo_unsettled, max_seconds=None, on_step=on_step)
+
     def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
-        if method_sweeps is None:
-            self.run(redo_unsettled=redo_unsettled)
-        else:
-            self.run(method_sweeps, redo_unsettled=redo_unsettled)
+        self.run(method_sweeps, redo_unsettled=redo_unsettled)
 
 
 def follow(comm, threads: int) -> int:

@@ -35,8 +35,11 @@ def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: 
     code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
     held = memory.FIELD_BYTES_PER_CELL * padded + code_bytes * padded
     solving = held + memory.OUTPUT_BYTES_PER_CELL * cells
-    if method in memory.TWO_BUFFER_METHODS:
-        solving += memory.JACOBI_BUFFER_BYTES_PER_CELL * padded
+    from relaxtui.solver.methods import METHODS
+
+    m = METHODS.get(method) if isinstance(method, str) else None
+    if m is not None:
+        solving += memory.BUFFER_BYTES_PER_CELL * m.buffers * padded
     estimating = held + LANCZOS_VECTORS * memory.FIELD_BYTES_PER_CELL * padded
     other = memory.FIXED_BYTES + max(solving, estimating)
     whole = rows * cols
