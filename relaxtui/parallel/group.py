@@ -388,14 +388,21 @@ class DistributedLanczos:
 class DistributedRadiusJob(RadiusJob):
     """The radius job of :class:`relaxtui.solver.radius.RadiusJob` on a distributed operator.
 
-    Its Lanczos process is a :class:`DistributedLanczos`; nothing runs in a
-    background thread (every step is collective, and only rank 0's main thread
-    talks to the other ranks), so :meth:`run` and :meth:`start` complete the
-    estimate at once: on a large grid the sweeps start after the estimate
-    instead of beside it (with auto ω the run then starts at the settled ω).
-    Loading and saving the cache file work as in one process (same fingerprint,
-    same file).
+    Its Lanczos process is a :class:`DistributedLanczos`. Every step is
+    collective and only rank 0's main thread talks to the other ranks, so
+    nothing runs in a background thread: :meth:`start` marks the estimate as
+    pending, and each :meth:`result` call (the driver asks between chunks)
+    advances it for up to :attr:`SLICE` seconds. The estimate thus goes on
+    beside the sweeps, interleaved with them, as the single-process job's
+    thread does on a small machine. Loading and saving the cache file work as
+    in one process (same fingerprint, same file).
     """
+
+    SLICE = 0.1  # seconds of Lanczos steps per call between chunks (a chunk is about as long)
+
+    def __init__(self, operator):
+        super().__init__(operator)
+        self._pending = False
 
     def _ensure(self, method_sweeps, redo_unsettled: bool) -> bool:
         if self._final is not None:
@@ -407,13 +414,27 @@ class DistributedRadiusJob(RadiusJob):
             self._lanczos = DistributedLanczos(self.operator, method_sweeps)
         return True
 
-    def run(self, method_sweeps=None, *, redo_unsettled: bool = False, max_seconds: float | None = None, on_step=None):
-        """Complete the estimate now, whatever ``max_seconds`` says: it cannot continue beside the sweeps."""
-        args = () if method_sweeps is None else (method_sweeps,)
-        return super().run(*args, redo_unsettled=redo_unsettled, max_seconds=None, on_step=on_step)
+    def run(self, *args, **kwargs):
+        self._pending = False
+        return super().run(*args, **kwargs)
 
     def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
-        self.run(method_sweeps, redo_unsettled=redo_unsettled)
+        with self._lock:
+            args = () if method_sweeps is None else (method_sweeps,)
+            self._pending = self._ensure(*args, redo_unsettled)
+
+    def result(self):
+        if self._pending and self._final is None and self._lanczos is not None:
+            import time
+
+            t0 = time.perf_counter()
+            lz = self._lanczos
+            while not lz.done and time.perf_counter() - t0 < self.SLICE:
+                lz.advance(max_new_steps=1)
+            self._seconds += time.perf_counter() - t0
+            self._finish_if_done()
+            self._pending = self._final is None
+        return self._final
 
 
 def follow(comm, threads: int) -> int:
