@@ -80,6 +80,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("info", help="describe a case: grid, regions, faces, memory", description="Load a case and print its grid, regions and the memory a solve needs.")
     p.add_argument("case", metavar="CASE.toml")
+    p.add_argument("--ranks", type=_positive_int("ranks"), metavar="P",
+                   help="also print the memory each of P MPI ranks needs (mpiexec -n P relaxtui solve)")
 
     p = sub.add_parser("solve", help="solve a case headless and write field, report and history", description="Solve a case to its tolerance without a screen.")
     p.add_argument("case", metavar="CASE.toml")

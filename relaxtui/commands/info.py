@@ -103,7 +103,7 @@ def _map_params(case: Case, r, text: str) -> str:
     return text
 
 
-def describe(case: Case, console=None) -> None:
+def describe(case: Case, console=None, ranks: int | None = None) -> None:
     """Print the description of a loaded case to a rich console."""
     from rich.console import Console
     from rich.table import Table
@@ -152,6 +152,14 @@ def describe(case: Case, console=None) -> None:
     facts.add_row("solver", ", ".join(solver))
     mem = f"a solve needs about {memory.format_bytes(need)}; {memory.format_bytes(have)} available"
     facts.add_row("memory", Text(mem, style="bold red") if have is not None and need > have else mem)
+    if ranks:
+        from relaxtui.parallel.memory import rank_bytes
+
+        ranked = method if method in ("jacobi", "red-black-sor") else "red-black-sor"
+        first, other = rank_bytes(rows, cols, ranked, len(case.regions), ranks)
+        note = "" if ranked == method else f" ({method} does not run across ranks: figures for {ranked})"
+        facts.add_row("per rank", f"on {ranks} MPI ranks, {ranked}: about {memory.format_bytes(other)} per rank, "
+                      f"{memory.format_bytes(first)} on rank 0 (it also decodes the picture and gathers the field){note}")
     console.print(facts)
 
     table = Table(title="regions", title_justify="left", show_edge=False, pad_edge=False)
@@ -227,5 +235,5 @@ def run(args) -> int:
     from relaxtui.case import load_case
 
     case = load_case(args.case)
-    describe(case)
+    describe(case, ranks=getattr(args, "ranks", None))
     return 0

@@ -179,6 +179,14 @@ def warn_if_mismatched(path) -> None:
 
 
 def run(args) -> int:
+    from relaxtui.parallel import launched_ranks
+
+    if launched_ranks() > 1:  # started by mpiexec: only then is mpi4py imported
+        from relaxtui.parallel.solve import run as run_on_ranks
+
+        code = run_on_ranks(args)
+        if code is not None:
+            return code
     from relaxtui.case import load_case
     from relaxtui.output.atomic import clean_stale_temps, pause_for_tests
     from relaxtui.solver.driver import Run, resolve_options

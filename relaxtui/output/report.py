@@ -156,8 +156,13 @@ def build_report(run, field: np.ndarray) -> dict:
         "source_total": _f(source_total),
         "imbalance": _f(imbalance),
     }
-    report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in extremes(case, field).items()})
-    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak_flux_in_strips(field, case).items()}
+    summary = getattr(op, "field_summary", None)
+    if summary is not None:  # an operator split across MPI ranks computes them by strips
+        ext, peak = summary(u)
+    else:
+        ext, peak = extremes(case, field), peak_flux_in_strips(field, case)
+    report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in ext.items()})
+    report["flux_max"] = {k: (_f(v) if isinstance(v, float) else v) for k, v in peak.items()}
     if case.mask_path is not None and case.path is not None:
         from relaxtui.case.domain import mask_outside_folder
 

@@ -180,16 +180,19 @@ class Run:
 
     def _scale(self) -> float:
         """Largest |value| of the starting field's interior and fixed cells and of the boundary values."""
-        # the working array holds 0 in every other cell, so its extremes are those of the
-        # interior and fixed cells (two passes, no 16-byte-per-cell temporaries)
-        hi, lo = float(self._u.max()), float(self._u.min())
-        if math.isfinite(hi) and math.isfinite(lo) and (self.operator.unknowns or hi or lo):
-            scale = max(hi, -lo)
-        else:  # a working array with non-finite cells outside the domain: look at the domain only
-            view = self.operator.view(self._u)
-            kinds = self.case.kind_codes()[self.case.codes]
-            vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
-            scale = float(np.max(np.abs(vals))) if vals.size else 1.0
+        if hasattr(self.operator, "field_scale"):  # an operator split across MPI ranks reduces it itself
+            scale = self.operator.field_scale(self._u)
+        else:
+            # the working array holds 0 in every other cell, so its extremes are those of the
+            # interior and fixed cells (two passes, no 16-byte-per-cell temporaries)
+            hi, lo = float(self._u.max()), float(self._u.min())
+            if math.isfinite(hi) and math.isfinite(lo) and (self.operator.unknowns or hi or lo):
+                scale = max(hi, -lo)
+            else:  # a working array with non-finite cells outside the domain: look at the domain only
+                view = self.operator.view(self._u)
+                kinds = self.case.kind_codes()[self.case.codes]
+                vals = view[(kinds == model.INTERIOR) | (kinds == model.FIXED)]
+                scale = float(np.max(np.abs(vals))) if vals.size else 1.0
         for r in self.case.regions:
             for v in (r.value, r.ambient):
                 if v is not None:

@@ -1,0 +1,477 @@
+"""Rank 0 leads, the other ranks follow: the distributed operator and the follower loop.
+
+Rank 0 runs the ordinary driver (:class:`relaxtui.solver.driver.Run`) with a
+:class:`DistributedOperator` in place of the single-process operator. Every
+method of that operator the driver calls (``new_field``, ``sweep``,
+``residual``, ``flows``, ``finish`` and the hooks ``field_scale``,
+``estimate_radius`` and ``field_summary``) first broadcasts a short command, then does its own
+strip's share of the collective work; the followers (:func:`follow`) wait
+for the command without spinning and do theirs. So all decisions (chunk
+sizes, ω, the stopping rule, time limit, interruption) are taken once, on
+rank 0, from global quantities, and the ranks cannot disagree.
+
+Validation (options, ranges, the initial field) happens on rank 0 *before*
+a command is sent: a user error then leaves the followers idle, rank 0 tells
+them to stop with the error's exit code, and the job ends with the ordinary
+one-line message. An exception while the ranks are inside a collective
+aborts the job (see :mod:`relaxtui.parallel.comm`).
+"""
+
+from __future__ import annotations
+
+import inspect
+from contextlib import contextmanager
+
+import numpy as np
+
+from relaxtui.errors import UsageError
+from relaxtui.parallel.comm import quiet_barrier, quiet_wait
+from relaxtui.parallel.strip import Strip, split_rows
+from relaxtui.solver.radius import Lanczos, RadiusEstimate, RadiusJob
+
+DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
+SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP = range(1, 12)
+TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL = 31, 32, 33, 34
+
+
+def refusal(method: str) -> str:
+    """Why ``method`` is not run across ranks, and what to use instead (one line)."""
+    if method in ("gauss-seidel", "sor", "symmetric-sor"):
+        return (f"{method} does not run across MPI ranks: its lexicographic order makes every row wait for the one "
+                "above; use red-black-sor (the same equations in a parallel order) or jacobi under mpiexec, "
+                f"or run {method} without mpiexec")
+    return (f"{method} does not run across MPI ranks in this version; use red-black-sor or jacobi under mpiexec, "
+            f"or run {method} without mpiexec")
+
+
+class Group:
+    """Rank 0's end of the command channel."""
+
+    def __init__(self, comm):
+        self.comm = comm
+        self.busy = False  # inside a collective: an error now must abort the job
+        self.stopped = False
+
+    def send(self, code: int, *args: float) -> None:
+        buf = np.zeros(4)
+        buf[0] = code
+        buf[1 : 1 + len(args)] = args
+        self.comm.Ibcast(buf, root=0).Wait()
+
+    @contextmanager
+    def collective(self, code: int, *args: float):
+        self.send(code, *args)
+        self.busy = True
+        yield
+        self.busy = False
+
+    def stop(self, exit_code: int) -> None:
+        """Tell the followers to return ``exit_code`` (once; only while they are idle)."""
+        if not self.stopped and not self.busy:
+            self.stopped = True
+            self.send(STOP, exit_code)
+
+
+def _wait_command(comm) -> np.ndarray:
+    buf = np.zeros(4)
+    quiet_wait(comm.Ibcast(buf, root=0))
+    return buf
+
+
+def _part(op, case, a: int, b: int) -> tuple[dict, np.ndarray, np.ndarray]:
+    rows, cols = op.shape
+    meta = {
+        "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str,
+        "up_codes": case.codes[a - 1].copy() if a > 0 else None,
+        "dn_codes": case.codes[b].copy() if b < rows else None,
+        "table": op.table, "diag": op.diag, "kind": op.kind, "value": op.value, "conductivity": op.conductivity,
+        "fixed_conductivity": op.fixed_conductivity, "flux": op.flux, "coefficient": op.coefficient,
+        "ambient": op.ambient, "boundary": op._boundary, "cell_size": op.cell_size, "regions": case.regions,
+    }
+    return meta, op.cls[a : b + 2], op.codes[a:b]
+
+
+def _receive_part(comm) -> dict:
+    meta = comm.recv(source=0, tag=TAG_META)
+    n = meta["b"] - meta["a"]
+    cls = np.empty((n + 2, meta["cols"] + 2), dtype=np.dtype(meta["cls_dtype"]))
+    comm.Recv(cls, source=0, tag=TAG_CLS)
+    codes = np.empty((n, meta["cols"]), dtype=np.uint8)
+    comm.Recv(codes, source=0, tag=TAG_CODES)
+    meta["cls"], meta["codes"] = cls, codes
+    return meta
+
+
+def _warm_in_turn(comm, strip: Strip) -> None:
+    """Rank 0 loads or compiles the kernels first; the others wait (sleeping) and then load them from the cache."""
+    if comm.Get_rank() == 0:
+        strip.warm()
+        quiet_barrier(comm)
+    else:
+        quiet_barrier(comm)
+        strip.warm()
+    quiet_barrier(comm)
+
+
+class DistributedOperator:
+    """The operator interface of :class:`relaxtui.solver.operator.Operator`, over strips on all ranks.
+
+    Built on rank 0 from a loaded case: assembles the case once (every check
+    of the single-process operator runs, with its messages), cuts the rows
+    into strips of about equal unknown count, sends every rank its strip of
+    the class array and region picture, and keeps only its own strip. The
+    working array the driver holds is rank 0's strip; :meth:`view` is that
+    strip's rows, not the whole grid.
+    """
+
+    def __init__(self, case, group: Group, threads: int):
+        from relaxtui.solver.operator import Operator
+
+        comm = group.comm
+        ranks = comm.Get_size()
+        op = Operator(case)
+        rows, cols = op.shape
+        if rows < ranks:
+            raise UsageError(f"the grid has {rows} rows, fewer than the {ranks} MPI ranks: start at most {rows} ranks")
+        self.case = case
+        self.group = group
+        self.shape = op.shape
+        self.unknowns = op.unknowns
+        self.cells_streamed = op.cells_streamed
+        self.classes = op.classes
+        self.cell_size = op.cell_size
+        self.depth = op.depth
+        self.kind = op.kind
+        self.interior = op.interior
+        self.source = op.source
+        self.region_cells = op.region_cells
+        self.guess = op.default_guess()
+        self._fingerprint = op.fingerprint()
+        self._radius = None
+        self.threads = threads
+        self.bounds = split_rows(np.count_nonzero(op.cls[1:-1], axis=1), ranks)
+        group.send(SETUP)
+        group.busy = True
+        for r in range(1, ranks):
+            meta, cls, codes = _part(op, case, *self.bounds[r])
+            comm.send(meta, dest=r, tag=TAG_META)
+            comm.Send(cls, dest=r, tag=TAG_CLS)
+            comm.Send(codes, dest=r, tag=TAG_CODES)
+        meta, cls, codes = _part(op, case, *self.bounds[0])
+        meta["cls"], meta["codes"] = cls.copy(), codes
+        del op, cls  # rank 0 keeps its strip only (and the case's picture)
+        self.strip = Strip(comm, meta, threads)
+        _warm_in_turn(comm, self.strip)
+        group.busy = False
+
+    # --- the working array ----------------------------------------------------------------
+
+    @property
+    def padded_shape(self) -> tuple[int, int]:
+        return self.strip.u.shape
+
+    def _check_field(self, u) -> None:
+        if u is not self.strip.u:
+            raise UsageError("the field must be the working array of this distributed operator (from new_field)")
+
+    def view(self, u) -> np.ndarray:
+        """Rank 0's own rows of the working array (the other strips live on the other ranks)."""
+        self._check_field(u)
+        return u[1:-1, 1:-1]
+
+    def new_field(self, initial: np.ndarray | None = None) -> np.ndarray:
+        """The working array, as :meth:`relaxtui.solver.operator.Operator.new_field`, on every rank's strip."""
+        from relaxtui.kernels import measure
+
+        if initial is not None:
+            if not isinstance(initial, np.ndarray):
+                raise UsageError("the initial field must be a numpy array")
+            if initial.shape != self.shape:
+                raise UsageError(f"the initial field has shape {initial.shape}, the case's grid is {self.shape}")
+            if initial.dtype.kind not in "fiu":
+                raise UsageError(f"the initial field must hold real numbers, not {initial.dtype}")
+            initial = np.ascontiguousarray(initial, dtype=np.float64)
+            row, col = measure.first_bad_initial(self.case.codes, self.kind, initial)
+            if row >= 0:
+                raise UsageError(f"the initial field is not finite at interior cell row {int(row)}, column {int(col)}")
+        comm = self.group.comm
+        with self.group.collective(NEW_FIELD, float(initial is not None), self.guess):
+            if initial is not None:
+                for r in range(1, comm.Get_size()):
+                    a, b = self.bounds[r]
+                    comm.Send(initial[a:b], dest=r, tag=TAG_INITIAL)
+                a, b = self.bounds[0]
+                self.strip.new_field(initial[a:b], self.guess)
+            else:
+                self.strip.new_field(None, self.guess)
+        return self.strip.u
+
+    # --- sweeps ----------------------------------------------------------------------------
+
+    def sweep(self, u, method: str, omega: float, sweeps: int, updates: np.ndarray, residuals: np.ndarray) -> int:
+        """As :meth:`relaxtui.solver.operator.Operator.sweep` (Jacobi and red-black SOR), over all strips.
+
+        Every rank runs all ``sweeps`` sweeps; the per-sweep largest update and
+        residual are reduced once for the chunk. The count returned stops at
+        the first sweep whose largest update is not finite (the field then
+        holds the later sweeps too: a diverged field either way).
+        """
+        self._check_field(u)
+        if method not in DISTRIBUTED_METHODS:
+            raise UsageError(refusal(method))
+        omega = float(omega)
+        if not 0.0 < omega < 2.0:
+            raise UsageError(f"omega must lie in (0, 2), got {omega}")
+        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
+            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+        sweeps = int(sweeps)
+        with self.group.collective(SWEEP, DISTRIBUTED_METHODS.index(method), omega, sweeps):
+            upd_bits, res_bits = self.strip.sweep(method, omega, sweeps)
+        upd = upd_bits.view(np.float64)
+        updates[:sweeps] = upd
+        residuals[:sweeps] = res_bits.view(np.float64) if method == "jacobi" else upd / omega
+        bad = np.flatnonzero(~np.isfinite(upd))
+        return int(bad[0]) + 1 if bad.size else sweeps
+
+    def release(self) -> None:
+        self.strip.tmp = None
+
+    # --- measures ------------------------------------------------------------------------------
+
+    def residual(self, u) -> float:
+        self._check_field(u)
+        with self.group.collective(RESIDUAL):
+            return self.strip.residual()
+
+    def field_scale(self, u) -> float:
+        """Largest |u| over the interior and fixed cells of the whole grid (the driver's scale)."""
+        self._check_field(u)
+        with self.group.collective(SCALE):
+            return self.strip.field_scale()
+
+    def flows(self, u) -> tuple[dict[str, float], float, float]:
+        """As :meth:`relaxtui.solver.operator.Operator.flows`, summed over the strips."""
+        self._check_field(u)
+        with self.group.collective(FLOWS):
+            per_region = self.strip.flows() * self.depth
+        h2 = self.cell_size * self.cell_size
+        source_total = float(sum(self.depth * float(self.source[r]) * h2 * int(self.region_cells[r])
+                                 for r in np.flatnonzero((self.interior != 0) & (self.source != 0.0))))
+        flows = {}
+        for i, r in enumerate(self.case.regions):
+            if r.kind in ("fixed", "flux", "convection"):
+                flows[r.name] = float(per_region[i])
+        total = sum(flows.values()) + source_total
+        scale = sum(abs(v) for v in flows.values()) + abs(source_total)
+        imbalance = abs(total) / scale if scale > 0 else 0.0
+        return flows, source_total, float(imbalance)
+
+    def finish(self, u) -> np.ndarray:
+        """The exported field of the whole grid, gathered on rank 0."""
+        self._check_field(u)
+        out = np.empty(self.shape)
+        with self.group.collective(EXPORT):
+            self.strip.export(out, self.bounds)
+        return out
+
+    def field_summary(self, u) -> tuple[dict, dict]:
+        """The report's extremes and peak flux, computed by strips (see :meth:`Strip.summary`):
+        ``({"min", "max", "min_at", "max_at"}, flux_max)`` with the keys of
+        :func:`relaxtui.output.report.extremes` and :func:`relaxtui.output.flux.peak_flux`."""
+        from relaxtui.output.report import cell_position
+
+        self._check_field(u)
+        with self.group.collective(SUMMARY):
+            low, high, peak = self.strip.summary(self.case.regions, self.cell_size)
+        if low is None:
+            ext = {"min": None, "max": None, "min_at": None, "max_at": None}
+        else:
+            ext = {"min": low[0], "max": high[0], "min_at": cell_position(self.case, low[1], low[2]),
+                   "max_at": cell_position(self.case, high[1], high[2])}
+        if peak is None:
+            flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
+        else:
+            value, qx, qy, row, col = peak
+            at = cell_position(self.case, row, col)
+            flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
+        return ext, flux
+
+    def radius_job(self):
+        """The Jacobi-radius job of this operator (see :class:`DistributedRadiusJob`), made on first use."""
+        if self._radius is None:
+            self._radius = DistributedRadiusJob(self)
+        return self._radius
+
+    def fingerprint(self) -> str:
+        """The single-process operator's fingerprint (its radius cache files serve both)."""
+        return self._fingerprint
+
+    def memory_bytes(self, method: str) -> int:
+        from relaxtui.parallel.memory import rank_bytes
+
+        return rank_bytes(self.shape[0], self.shape[1], method, len(self.case.regions), self.group.comm.Get_size())[0]
+
+
+class DistributedLanczos:
+    """Rank 0's handle on a Lanczos estimate whose vectors are split across the ranks.
+
+    The interface of :class:`relaxtui.solver.radius.Lanczos` (``advance``,
+    ``estimate``, ``steps``, ``mu``, ``settled``, ``done``, ``max_steps``) and
+    its stopping rule, step for step, with its default settings (read from its
+    signature); every :meth:`advance` is one collective command, and rank 0
+    decides after each step whether the ranks do another.
+    """
+
+    def __init__(self, operator: "DistributedOperator", method_sweeps=None):
+        p = {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
+        self.min_steps, self.max_steps = int(p["min_steps"]), int(p["max_steps"])
+        self.budget, self.rtol = float(p["budget"]), float(p["rtol"])
+        self.method_sweeps = method_sweeps if method_sweeps is not None else p["method_sweeps"]
+        self.operator = operator
+        self.steps = 0
+        self.mu = 0.0
+        self.settled = False
+        self.done = False
+        self._history: list[float] = []
+        self.alphas = np.zeros(self.max_steps)
+        self.betas = np.zeros(self.max_steps)
+        with operator.group.collective(LANCZOS_BEGIN):
+            norm = operator.strip.lanczos_begin()
+        if norm == 0.0:
+            self.settled = self.done = True
+
+    def advance(self, max_new_steps: int | None = None, stop=None, on_step=None) -> bool:
+        """Run steps on every rank; returns ``done``. As :meth:`relaxtui.solver.radius.Lanczos.advance`."""
+        from relaxtui.kernels import spectral
+
+        def more(new: int) -> bool:
+            return not (self.done or (stop is not None and stop.is_set()) or (max_new_steps is not None and new >= max_new_steps))
+
+        if not more(0):
+            return self.done
+        new = 0
+
+        def decide(alpha: float, beta_new: float):
+            nonlocal new
+            self.steps += 1
+            new += 1
+            steps = self.steps
+            self.alphas[steps - 1] = alpha
+            top = float(spectral.tridiagonal_extreme(self.alphas, self.betas, steps))
+            self._history.append(top)
+            self.mu = min(max(top, 0.0), 1.0 - 1e-16)
+            back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
+            if len(self._history) > back:
+                old, now = 1.0 - self._history[-1 - back], 1.0 - top
+                if now > 0 and abs(old - now) <= self.rtol * now:
+                    self.settled = self.done = True
+                elif steps >= max(self.min_steps, self.budget * self.method_sweeps(top)):
+                    self.done = True
+            if beta_new <= 1e-14:
+                self.settled = self.done = True
+            if steps >= self.max_steps:
+                self.done = True
+            if not self.done:
+                self.betas[steps - 1] = beta_new
+            if on_step is not None:
+                on_step(self)
+            return more(new), self.done
+
+        with self.operator.group.collective(LANCZOS_ADVANCE):
+            self.operator.strip.lanczos_advance(decide)
+        return self.done
+
+    def estimate(self) -> RadiusEstimate:
+        return RadiusEstimate(self.mu, self.steps, self.settled)
+
+
+class DistributedRadiusJob(RadiusJob):
+    """The radius job of :class:`relaxtui.solver.radius.RadiusJob` on a distributed operator.
+
+    Its Lanczos process is a :class:`DistributedLanczos`. Every step is
+    collective and only rank 0's main thread talks to the other ranks, so
+    nothing runs in a background thread: :meth:`start` marks the estimate as
+    pending, and each :meth:`result` call (the driver asks between chunks)
+    advances it for :attr:`SLICE` seconds. The estimate thus goes on
+    beside the sweeps, interleaved with them, as the single-process job's
+    thread does on a small machine. Loading and saving the cache file work as
+    in one process (same fingerprint, same file).
+    """
+
+    # seconds of Lanczos steps per call between chunks of about 0.1 s: the estimate gets a third of
+    # the time, as the single-process job's thread does on 2 cores beside a 2-thread sweep
+    SLICE = 0.05
+
+    def __init__(self, operator):
+        super().__init__(operator)
+        self._pending = False
+
+    def _ensure(self, method_sweeps, redo_unsettled: bool) -> bool:
+        if self._final is not None:
+            if self._final.settled or not redo_unsettled or self._source != "lanczos":
+                return False
+            self._final = None  # an unsettled estimate made for SOR is redone for the slow methods
+            self._lanczos = None
+        if self._lanczos is None:
+            self._lanczos = DistributedLanczos(self.operator, method_sweeps)
+        return True
+
+    def run(self, *args, **kwargs):
+        self._pending = False
+        return super().run(*args, **kwargs)
+
+    def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
+        with self._lock:
+            args = () if method_sweeps is None else (method_sweeps,)
+            self._pending = self._ensure(*args, redo_unsettled)
+
+    def result(self):
+        if self._pending and self._final is None and self._lanczos is not None:
+            import time
+
+            t0 = time.perf_counter()
+            lz = self._lanczos
+            while not lz.done and time.perf_counter() - t0 < self.SLICE:
+                lz.advance(max_new_steps=1)
+            self._seconds += time.perf_counter() - t0
+            self._finish_if_done()
+            self._pending = self._final is None
+        return self._final
+
+
+def follow(comm, threads: int) -> int:
+    """The loop of ranks 1..P-1: do what rank 0 commands until it says stop; returns the exit code."""
+    strip = None
+    while True:
+        cmd = _wait_command(comm)
+        code = int(cmd[0])
+        if code == STOP:
+            return int(cmd[1])
+        if code == SETUP:
+            strip = Strip(comm, _receive_part(comm), threads)
+            _warm_in_turn(comm, strip)
+        elif code == NEW_FIELD:
+            initial = None
+            if cmd[1]:
+                initial = np.empty((strip.n, strip.cols))
+                comm.Recv(initial, source=0, tag=TAG_INITIAL)
+            strip.new_field(initial, float(cmd[2]))
+        elif code == SWEEP:
+            strip.sweep(DISTRIBUTED_METHODS[int(cmd[1])], float(cmd[2]), int(cmd[3]))
+        elif code == RESIDUAL:
+            strip.residual()
+        elif code == SCALE:
+            strip.field_scale()
+        elif code == FLOWS:
+            strip.flows()
+        elif code == EXPORT:
+            strip.export(None, None)
+        elif code == SUMMARY:
+            strip.summary(strip.regions, strip.cell_size)
+        elif code == LANCZOS_BEGIN:
+            strip.lanczos_begin()
+        elif code == LANCZOS_ADVANCE:
+            strip.lanczos_advance()
+        else:  # pragma: no cover - rank 0 sends only the codes above
+            raise RuntimeError(f"unknown command {code} from rank 0")
+

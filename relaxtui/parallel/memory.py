@@ -1,0 +1,49 @@
+"""Memory a solve split across MPI ranks needs on each rank.
+
+The byte model of :mod:`relaxtui.solver.memory`, applied to one strip: the
+working field, class codes and (Jacobi) second buffer of the strip's rows
+plus one halo row above and below, and the strip's exported copy while it is
+sent to rank 0. Methods whose ω or stopping rule uses the Jacobi radius
+(Jacobi and red-black SOR: all that run across ranks) also hold the three
+Lanczos vectors of the strip while the radius is estimated, before the
+second buffer and the export exist; the larger of the two phases counts.
+Strips are balanced by unknown count, so a strip of a masked picture can
+hold more rows than rows / P; the largest strip of an even split by rows is
+counted here.
+
+Rank 0 also decodes the picture (transient, 4 B/cell), keeps the region
+picture of the whole grid (1 B/cell, for the report and pictures),
+assembles the whole operator once before handing out the strips (class
+codes of the whole grid, transient) and gathers the exported field of the
+whole grid (8 B/cell) to write the outputs, one after the other: its peak
+is its strip plus about 9 B/cell of the whole grid.
+"""
+
+from __future__ import annotations
+
+from relaxtui.solver import memory
+
+LANCZOS_VECTORS = 3  # relaxtui.parallel.strip.Strip.lanczos_begin: v, v_prev, w
+
+
+def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: int) -> tuple[int, int]:
+    """(rank 0's bytes, every other rank's bytes) for a ``rows`` x ``cols`` picture on ``ranks`` ranks."""
+    rows, cols, ranks = int(rows), int(cols), max(1, int(ranks))
+    n = -(-rows // ranks)  # the largest strip of an even split
+    cells = n * cols
+    padded = (n + 2) * (cols + 2)
+    code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
+    held = memory.FIELD_BYTES_PER_CELL * padded + code_bytes * padded
+    solving = held + memory.OUTPUT_BYTES_PER_CELL * cells
+    from relaxtui.solver.methods import METHODS
+
+    m = METHODS.get(method) if isinstance(method, str) else None
+    if m is not None:
+        solving += memory.BUFFER_BYTES_PER_CELL * m.buffers * padded
+    estimating = held + LANCZOS_VECTORS * memory.FIELD_BYTES_PER_CELL * padded
+    other = memory.FIXED_BYTES + max(solving, estimating)
+    whole = rows * cols
+    # the region picture all along, plus the largest of: the decoded picture (loading), the
+    # whole class array (assembly), the gathered exported field (outputs): one at a time
+    rank0 = other + whole * (1 + max(memory.PICTURE_BYTES_PER_CELL, code_bytes, memory.OUTPUT_BYTES_PER_CELL))
+    return int(rank0), int(other)

@@ -1,0 +1,346 @@
+"""Solves across MPI ranks: ``mpiexec -n P relaxtui solve`` against the single-process run.
+
+What is checked, and against what:
+- Jacobi on 2 and 3 ranks (3: uneven strips) gives the single-process field
+  bit for bit for the same sweeps, and the same per-sweep residual history:
+  every cell's update is the same arithmetic on the same values (the
+  strip-decomposition argument: a halo row carries exactly the values the
+  single-process sweep reads). Red-black SOR likewise, to rounding.
+- The converged demo and masked cases agree with the single-process run
+  within the tolerance, and with the independent spsolve solution
+  (tests/exact.py); automatic omega agrees to 1e-6.
+- User errors and refused methods end every rank with the one-line message
+  and exit code 2 (no hang, no traceback, no output files); an exception on
+  one rank aborts the whole job (the guard); SIGTERM under mpiexec writes the
+  current field with status "cancelled" and exit code 130.
+
+The launches use a clean environment (no launcher variables of an enclosing
+job, one numba thread per rank, the caller's numba cache directory shared by
+all ranks), a session of their own and a timeout that kills the whole
+process group. They skip, with the reason shown, only where mpi4py is not
+installed (``pip install '.[mpi]'``).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from exact import exact_solution
+from PIL import Image
+
+from relaxtui.case import load_case
+from relaxtui.cli import main
+from relaxtui.parallel import launched_ranks
+from relaxtui.parallel.strip import split_rows
+
+ROOT = Path(__file__).resolve().parent.parent
+GRIDS = ROOT / "grids"
+LAUNCH_TIMEOUT = 300  # seconds; a cold numba cache compiles the strip kernels on the first launch
+
+try:
+    import mpi4py  # noqa: F401
+
+    HAVE_MPI4PY = True
+except ImportError:
+    HAVE_MPI4PY = False
+
+
+def _mpiexec() -> str | None:
+    return shutil.which("mpiexec", path=str(Path(sys.executable).parent)) or shutil.which("mpiexec")
+
+
+needs_mpi = pytest.mark.skipif(not HAVE_MPI4PY, reason="mpi4py is not installed: pip install '.[mpi]' to run the MPI tests")
+
+LAUNCHER_PREFIXES = ("PMI_", "PMIX_", "HYDRA_", "MPIR_", "OMPI_", "I_MPI_", "MPI_LOCAL")
+
+
+def clean_env() -> dict:
+    env = {k: v for k, v in os.environ.items() if not k.startswith(LAUNCHER_PREFIXES)}
+    env["NUMBA_NUM_THREADS"] = "1"
+    return env
+
+
+def mpirun(ranks: int, args, cwd: Path, *, term_after: float | None = None, timeout: float = LAUNCH_TIMEOUT):
+    """Run ``mpiexec -n ranks python -m relaxtui ARGS`` in ``cwd``; returns (code, stdout, stderr)."""
+    exe = _mpiexec()
+    assert exe is not None, "mpi4py is installed but no mpiexec was found next to the interpreter or on PATH"
+    cmd = [exe, "-n", str(ranks), sys.executable, "-m", "relaxtui", *[str(a) for a in args]]
+    return _launch(cmd, cwd, term_after=term_after, timeout=timeout)
+
+
+def _launch(cmd, cwd, *, term_after=None, timeout=LAUNCH_TIMEOUT, ready=None):
+    """Run ``cmd`` in its own session; with ``term_after``, send SIGTERM that many seconds after
+    stderr first contains ``ready``. Returns (code, stdout, stderr)."""
+    proc = subprocess.Popen(cmd, cwd=cwd, env=clean_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            start_new_session=True)
+    chunks = {"out": [], "err": []}
+    readers = [threading.Thread(target=lambda s=stream, k=key: chunks[k].extend(iter(s.readline, "")), daemon=True)
+               for stream, key in ((proc.stdout, "out"), (proc.stderr, "err"))]
+    for t in readers:
+        t.start()
+    deadline = time.time() + timeout
+    try:
+        if term_after is not None:
+            while proc.poll() is None and time.time() < deadline and not any(ready in line for line in chunks["err"]):
+                time.sleep(0.1)
+            time.sleep(term_after)
+            if proc.poll() is None:
+                proc.send_signal(signal.SIGTERM)  # mpiexec forwards it to every rank
+        proc.wait(timeout=max(1.0, deadline - time.time()))
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()
+        pytest.fail(f"mpiexec did not finish within {timeout} s (a hang): {' '.join(map(str, cmd))}\n"
+                    f"{''.join(chunks['err'])[-2000:]}")
+    for t in readers:
+        t.join(timeout=10)
+    return proc.returncode, "".join(chunks["out"]), "".join(chunks["err"])
+
+
+def single(args, tmp_path: Path, capsys) -> int:
+    code = main([str(a) for a in args])
+    capsys.readouterr()
+    return code
+
+
+# --- cases written to disk -----------------------------------------------------------------------
+
+COLOURS = ["#ffffff", "#c08040", "#ff0000", "#0000ff", "#00ff00", "#ff00ff", "#000000", "#808080"]
+
+
+def write_case(folder: Path, name: str, codes: np.ndarray, regions: list[str], solver: str = "") -> Path:
+    """A PNG (one colour per code) and a TOML whose regions are the given TOML bodies, in code order."""
+    rgb = np.zeros(codes.shape + (3,), dtype=np.uint8)
+    for k in range(len(regions)):
+        rgb[codes == k] = [int(COLOURS[k][i : i + 2], 16) for i in (1, 3, 5)]
+    Image.fromarray(rgb, "RGB").save(folder / f"{name}.png")
+    text = [f'title = "{name}"', 'quantity = "temperature"', 'unit = "K"', f'mask = "{name}.png"', "cell_size = 0.01",
+            "snap = false", ""]
+    if solver:
+        text += ["[solver]", solver, ""]
+    for k, body in enumerate(regions):
+        text += ["[[region]]", f'color = "{COLOURS[k]}"', body, ""]
+    (folder / f"{name}.toml").write_text("\n".join(text), encoding="utf-8")
+    return folder / f"{name}.toml"
+
+
+def masked_case(folder: Path) -> Path:
+    """31 x 23 cells: two materials with a source, fixed top and bottom (one with a contact conductance),
+    a convection edge, a flux edge, an insulated hole and outside corners; 31 rows cut unevenly by 2 and 3."""
+    rows, cols = 31, 23
+    c = np.zeros((rows, cols), dtype=np.uint8)  # 0 plate
+    c[10:17, 5:13] = 1  # insert
+    c[0, :] = 2  # hot
+    c[-1, :] = 3  # cold
+    c[1:-1, -1] = 4  # air
+    c[:, 0] = 6  # void
+    c[5:26, 0] = 5  # heater
+    c[20:24, 14:19] = 6  # hole
+    c[0, 0] = c[0, -1] = c[-1, 0] = c[-1, -1] = 6
+    regions = ['name = "plate"\nkind = "interior"\nconductivity = 2.0\nsource = 50.0',
+               'name = "insert"\nkind = "interior"\nconductivity = 0.3',
+               'name = "hot"\nkind = "fixed"\nvalue = 100.0',
+               'name = "cold"\nkind = "fixed"\nvalue = 0.0\nconductivity = 5.0',
+               'name = "air"\nkind = "convection"\ncoefficient = 30.0\nambient = 20.0',
+               'name = "heater"\nkind = "flux"\nflux = 500.0',
+               'name = "void"\nkind = "outside"']
+    return write_case(folder, "masked", c, regions, 'method = "red-black-sor"\ntolerance = 1e-6')
+
+
+def read(folder: Path, stem: str):
+    return (np.load(folder / f"{stem}.npy"), json.loads((folder / f"{stem}.json").read_text()),
+            np.loadtxt(folder / f"{stem}.csv", delimiter=",", skiprows=1, ndmin=2))
+
+
+def outputs(stem: str) -> list[str]:
+    return ["--out", f"{stem}.npy", "--report", f"{stem}.json", "--history", f"{stem}.csv"]
+
+
+# --- without MPI ---------------------------------------------------------------------------------
+
+
+def test_launcher_detection_reads_only_the_environment():
+    # Variable names: MPICH/Hydra's PMI_SIZE and PMI_RANK, Open MPI's OMPI_COMM_WORLD_SIZE (from memory
+    # of their documentation; the Hydra ones checked here by printing a rank's environment).
+    assert launched_ranks({}) == 0
+    assert launched_ranks({"PMI_SIZE": "4", "PMI_RANK": "1"}) == 4
+    assert launched_ranks({"OMPI_COMM_WORLD_SIZE": "2"}) == 2
+    assert launched_ranks({"PMI_SIZE": "1", "PMI_RANK": "0"}) == 1
+    assert launched_ranks({"PMI_RANK": "0"}) == 2  # a launch of unknown size: ask MPI
+    assert launched_ranks({"MPI_LOCALNRANKS": "1"}) == 0
+
+
+def test_strips_balance_unknowns_not_rows():
+    # A picture whose lower half holds nine times the unknowns per row: an even split by rows
+    # would give the second rank 90 % of the work.
+    weights = np.array([1] * 50 + [9] * 50)
+    parts = split_rows(weights, 2)
+    assert parts[0][0] == 0 and parts[-1][1] == 100 and parts[0][1] == parts[1][0]
+    work = [weights[a:b].sum() for a, b in parts]
+    assert abs(work[0] - work[1]) <= 9  # within one row of the halves
+    # every strip gets a row even where the rows carry no unknowns
+    assert all(b > a for a, b in split_rows(np.array([0, 0, 0, 5]), 4))
+    three = split_rows(np.ones(31), 3)
+    assert sorted(b - a for a, b in three) == [10, 10, 11]
+
+
+def test_plain_solve_never_imports_mpi4py(tmp_path):
+    case = masked_case(tmp_path)
+    code = ("import sys; from relaxtui.cli import main; "
+            f"rc = main(['solve', {str(case)!r}, '--max-sweeps', '5', '-q', '--out', 'f.npy']); "
+            "assert 'mpi4py' not in sys.modules, 'mpi4py was imported'; sys.exit(0 if rc in (0, 1) else rc)")
+    proc = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, env=clean_env(), capture_output=True, text=True,
+                          timeout=LAUNCH_TIMEOUT)
+    assert proc.returncode == 0, proc.stderr
+
+
+def test_info_prints_the_per_rank_memory(tmp_path, capsys):
+    from relaxtui.parallel.memory import rank_bytes
+    from relaxtui.solver import memory
+
+    case = masked_case(tmp_path)
+    assert main(["info", str(case), "--ranks", "4"]) == 0
+    out = capsys.readouterr().out
+    assert "4 MPI ranks" in out
+    # the strip model: a non-root rank needs the single-process bytes per cell for a quarter of
+    # the rows plus its halo rows, without the picture (decoded on rank 0 only); its peak is the
+    # radius estimate (field, codes and three Lanczos vectors: 33 B/cell) or, for Jacobi, the
+    # solve with its second buffer and the exported strip (25 B/cell), whichever is larger
+    rows, cols = 4096, 4096
+    quarter = (rows // 4 + 2) * (cols + 2)
+    for method, per_cell in (("red-black-sor", 8 + 1 + 24), ("jacobi", 8 + 1 + 24)):
+        r0, other = rank_bytes(rows, cols, method, 1, 4)
+        assert other - memory.FIXED_BYTES == per_cell * quarter
+        assert r0 - other == 9 * rows * cols
+    one = memory.estimate_solve_bytes(rows, cols, "jacobi") - memory.FIXED_BYTES - memory.PICTURE_BYTES_PER_CELL * rows * cols
+    assert one / 4 < rank_bytes(rows, cols, "jacobi", 1, 4)[1] - memory.FIXED_BYTES < 1.4 * one / 4
+    assert r0 > other
+
+
+# --- under mpiexec ---------------------------------------------------------------------------------
+
+
+@needs_mpi
+@pytest.mark.parametrize("ranks", [2, 3])
+def test_jacobi_is_bit_for_bit_the_single_process_field(ranks, tmp_path, capsys):
+    case = masked_case(tmp_path)
+    opts = ["--method", "jacobi", "--tolerance", "1e-12", "--max-sweeps", "150", "-q"]
+    if ranks == 3:  # also scatter a starting field: the converged-looking field of a short red-black run
+        assert single(["solve", case, "--max-sweeps", "40", "-q", "--out", tmp_path / "start.npy"], tmp_path, capsys) == 1
+        opts += ["--initial", str(tmp_path / "start.npy")]
+    assert single(["solve", case, *opts, *outputs(str(tmp_path / "one"))], tmp_path, capsys) == 1
+    code, _, err = mpirun(ranks, ["solve", case, *opts, *outputs("many")], tmp_path)
+    assert code == 1, err
+    f1, r1, h1 = read(tmp_path, "one")
+    fp, rp, hp = read(tmp_path, "many")
+    assert np.array_equal(f1, fp, equal_nan=True)
+    assert rp["sweeps"] == r1["sweeps"] == 150 and rp["status"] == r1["status"] == "sweep-limit"
+    assert np.array_equal(h1[:, [0, 2]], hp[:, [0, 2]])  # sweep numbers and per-sweep residuals
+    assert set(rp) == set(r1)
+    for key in ("min", "max", "min_at", "max_at", "flux_max", "unknowns", "grid", "residual"):
+        assert rp[key] == r1[key], key
+    for name, flow in r1["flows"].items():  # summed in another order: equal to rounding
+        assert rp["flows"][name] == pytest.approx(flow, rel=1e-12, abs=1e-12)
+
+
+@needs_mpi
+def test_red_black_equals_the_single_process_field_to_rounding(tmp_path, capsys):
+    case = masked_case(tmp_path)
+    opts = ["--method", "red-black-sor", "--omega", "1.7", "--tolerance", "1e-14", "--max-sweeps", "120", "-q"]
+    single(["solve", case, *opts, *outputs(str(tmp_path / "one"))], tmp_path, capsys)
+    code, _, err = mpirun(3, ["solve", case, *opts, *outputs("many")], tmp_path)
+    assert code in (0, 1), err
+    f1, r1, h1 = read(tmp_path, "one")
+    fp, rp, hp = read(tmp_path, "many")
+    assert rp["sweeps"] == r1["sweeps"]
+    assert np.allclose(fp, f1, rtol=1e-13, atol=1e-12, equal_nan=True)
+    assert np.allclose(hp[:, 2], h1[:, 2], rtol=1e-12, atol=1e-300)
+
+
+@needs_mpi
+def test_converged_masked_case_and_demo_agree_with_one_process(tmp_path, capsys):
+    masked = masked_case(tmp_path)
+    demo = GRIDS / "electrodes.toml"
+    for stem, case in (("masked", masked), ("demo", demo)):
+        assert single(["solve", case, "-q", *outputs(str(tmp_path / f"{stem}-one"))], tmp_path, capsys) == 0
+        code, out, err = mpirun(2, ["solve", case, *outputs(f"{stem}-many")], tmp_path)
+        assert code == 0, err
+        assert "converged" in out and "Traceback" not in err
+        f1, r1, _ = read(tmp_path, f"{stem}-one")
+        fp, rp, _ = read(tmp_path, f"{stem}-many")
+        assert rp["status"] == "converged" and set(rp) == set(r1)
+        assert rp["omega"] == pytest.approx(r1["omega"], abs=1e-6)  # the distributed Lanczos estimate
+        tol = r1["tolerance"]
+        assert np.nanmax(np.abs(fp - f1)) <= 2 * tol  # both within tol of the discrete solution
+        if stem == "masked":  # and against the independent sparse direct solve
+            exact = exact_solution(load_case(masked))
+            assert np.nanmax(np.abs(fp - exact)) <= tol
+        scale = sum(abs(v) for v in r1["flows"].values())
+        for name, flow in r1["flows"].items():
+            assert abs(rp["flows"][name] - flow) <= 1e-3 * scale, name
+
+
+@needs_mpi
+def test_refused_method_and_bad_case_end_every_rank_with_one_line(tmp_path):
+    case = masked_case(tmp_path)
+    code, _, err = mpirun(2, ["solve", case, "--method", "sor", "-q", "--out", "f.npy"], tmp_path)
+    assert code == 2
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "red-black-sor" in lines[0] and "MPI" in lines[0], err
+    assert not (tmp_path / "f.npy").exists()
+    code, _, err = mpirun(2, ["solve", case, "--method", "multigrid", "-q"], tmp_path)
+    assert code == 2 and len([ln for ln in err.splitlines() if ln.strip()]) == 1 and "multigrid" in err, err
+    code, _, err = mpirun(3, ["solve", tmp_path / "missing.toml", "-q"], tmp_path)
+    assert code == 2 and "Traceback" not in err
+    assert len([ln for ln in err.splitlines() if ln.strip()]) == 1, err
+
+
+@needs_mpi
+def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
+    # rank 1 fails while rank 0 waits in a receive that will never be matched: without the
+    # guard the job hangs (the MPI notes' trap 4); with it, one line and a non-zero exit
+    script = tmp_path / "fail.py"
+    script.write_text(
+        "from relaxtui.parallel.comm import install_guard, mpi\n"
+        "comm = mpi().COMM_WORLD\n"
+        "install_guard(comm, 'solve')\n"
+        "if comm.Get_rank() == 1:\n"
+        "    raise RuntimeError('a strip could not be read')\n"
+        "comm.recv(source=1)\n", encoding="utf-8")
+    t0 = time.time()
+    code, _, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
+    assert code != 0
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert lines == ["relaxtui solve: error on rank 1: RuntimeError: a strip could not be read"], err
+    assert time.time() - t0 < 120
+
+
+@needs_mpi
+def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
+    rows, cols = 240, 200
+    c = np.zeros((rows, cols), dtype=np.uint8)
+    c[0, :] = 1
+    c[-1, :] = 2
+    c[:, 0] = c[:, -1] = 2
+    case = write_case(tmp_path, "slab", c, ['name = "slab"\nkind = "interior"', 'name = "hot"\nkind = "fixed"\nvalue = 1.0',
+                                            'name = "cold"\nkind = "fixed"\nvalue = 0.0'])
+    # SIGTERM one second after the first progress line: the solve is then past its preparation
+    code, _, err = _launch([_mpiexec(), "-n", "2", sys.executable, "-m", "relaxtui", "solve", str(case), "--method", "jacobi",
+                            "--tolerance", "1e-13", "--max-sweeps", "100000000", "--out", "f.npy", "--report", "r.json",
+                            "--history", "h.csv"], tmp_path, term_after=1.0, ready="relaxtui: sweep")
+    assert code == 130, err
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["status"] == "cancelled" and report["sweeps"] > 0
+    field = np.load(tmp_path / "f.npy")
+    assert field.shape == (rows, cols) and np.isfinite(field).all()
+    assert "Traceback" not in err
