@@ -20,6 +20,7 @@ and a NaN still wins.
 import numpy as np
 from numba import prange
 from relaxtui.kernels._bits import abs_bits
+from relaxtui.kernels.assemble import face_conductance, film_conductance
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.sweeps import _colour_row, _jacobi_rows
 
@@ -146,10 +147,10 @@ def strip_flows(codes, up_codes, dn_codes, has_up, has_dn, u, cls, row_ptr, seg_
                             kn = fixed_conductivity[rx]
                             if kn <= 0.0:
                                 kn = kp
-                            acc[b, rx] += 2.0 * kp * kn / (kp + kn) * (value[rx] - up)
+                            acc[b, rx] += face_conductance(kp, kn) * (value[rx] - up)
                         elif kx == FLUX:
                             acc[b, rx] += flux[rx] * h
                         elif kx == CONVECTION:
-                            uh = h / (1.0 / coefficient[rx] + h / (2.0 * kp))
+                            uh = film_conductance(coefficient[rx], kp, h)
                             acc[b, rx] += uh * (ambient[rx] - up)
     return acc

@@ -212,17 +212,15 @@ def test_info_prints_the_per_rank_memory(tmp_path, capsys):
     assert main(["info", str(case), "--ranks", "4"]) == 0
     out = capsys.readouterr().out
     assert "4 MPI ranks" in out
-    # the strip model: a non-root rank needs the single-process bytes per cell for a quarter of
-    # the rows plus its halo rows, without the picture (decoded on rank 0 only); its peak is the
-    # radius estimate (field, codes and three Lanczos vectors: 33 B/cell) or, for Jacobi, the
-    # solve with its second buffer and the exported strip (25 B/cell), whichever is larger
+    # the strip model: a non-root rank needs what one process needs for its strip plus its two halo
+    # rows (the same byte model, relaxtui.solver.memory); rank 0 adds about 9 B/cell of the whole
+    # grid (the region picture and, one at a time, the decoded picture, class array or gathered field)
     rows, cols = 4096, 4096
-    quarter = (rows // 4 + 2) * (cols + 2)
-    for method, per_cell in (("red-black-sor", 8 + 1 + 24), ("jacobi", 8 + 1 + 24)):
+    for method in ("red-black-sor", "jacobi"):
         r0, other = rank_bytes(rows, cols, method, 1, 4)
-        assert other - memory.FIXED_BYTES == per_cell * quarter
+        assert other == memory.estimate_solve_bytes(rows // 4 + 2, cols, method)
         assert r0 - other == 9 * rows * cols
-    one = memory.estimate_solve_bytes(rows, cols, "jacobi") - memory.FIXED_BYTES - memory.PICTURE_BYTES_PER_CELL * rows * cols
+    one = memory.estimate_solve_bytes(rows, cols, "jacobi") - memory.FIXED_BYTES
     assert one / 4 < rank_bytes(rows, cols, "jacobi", 1, 4)[1] - memory.FIXED_BYTES < 1.4 * one / 4
     assert r0 > other
 

@@ -148,6 +148,13 @@ class DistributedOperator:
         self.guess = op.default_guess()
         self._fingerprint = op.fingerprint()
         self._radius = None
+        # per-class weights (small) for the stopping rule's checks, and the exact norm of the
+        # inverse where it is cheap (relaxtui.solver.conditioning), while the whole operator is here
+        from relaxtui.solver.conditioning import exact_inverse_norm
+
+        self.table, self.diag = op.table, op.diag
+        exact = exact_inverse_norm(op) if np.all(np.isfinite(op.table)) and np.all(np.isfinite(op.diag)) else None
+        self.inverse_norm = (exact, "exact") if exact is not None else None
         self.threads = threads
         self.bounds = split_rows(np.count_nonzero(op.cls[1:-1], axis=1), ranks)
         group.send(SETUP)

@@ -30,18 +30,10 @@ def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: 
     """(rank 0's bytes, every other rank's bytes) for a ``rows`` x ``cols`` picture on ``ranks`` ranks."""
     rows, cols, ranks = int(rows), int(cols), max(1, int(ranks))
     n = -(-rows // ranks)  # the largest strip of an even split
-    cells = n * cols
-    padded = (n + 2) * (cols + 2)
     code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
-    held = memory.FIELD_BYTES_PER_CELL * padded + code_bytes * padded
-    solving = held + memory.OUTPUT_BYTES_PER_CELL * cells
-    from relaxtui.solver.methods import METHODS
-
-    m = METHODS.get(method) if isinstance(method, str) else None
-    if m is not None:
-        solving += memory.BUFFER_BYTES_PER_CELL * m.buffers * padded
-    estimating = held + LANCZOS_VECTORS * memory.FIELD_BYTES_PER_CELL * padded
-    other = memory.FIXED_BYTES + max(solving, estimating)
+    # a strip with its two halo rows costs what a single-process solve of that many rows costs
+    # (the same phases: radius estimate, sweeps, outputs), less the picture it never decodes
+    other = memory.estimate_solve_bytes(n + 2, cols, method, materials)
     whole = rows * cols
     # the region picture all along, plus the largest of: the decoded picture (loading), the
     # whole class array (assembly), the gathered exported field (outputs): one at a time

@@ -116,12 +116,12 @@ class Physics:
         fixed = kind_n == FIXED
         kn = np.where(fixed & ~(kn > 0.0), kp, kn)
         with np.errstate(divide="ignore", invalid="ignore"):
-            g = 2.0 * kp * kn / (kp + kn)
+            g = _harmonic(kp, kn)  # the kernels' overflow-free form (kernels/assemble.face_conductance)
             r = self.resistance[rp, rn]
             if np.any(r > 0.0):
                 g = np.where(r > 0.0, 1.0 / (1.0 / g + r / h), g)
             g = g * fac
-            uh = h / (1.0 / self.coefficient[rn] + h / (2.0 * kp)) * fac
+            uh = 0.5 * _harmonic(self.coefficient[rn] * h, 2.0 * kp) * fac
         conv = kind_n == CONVECTION
         g_unknown = np.where(kind_n == INTERIOR, g, 0.0)
         a = np.where(fixed, g, 0.0) + np.where(conv, uh, 0.0)
@@ -422,3 +422,9 @@ class Physics:
         scale = sum(abs(v) for v in flows.values()) + abs(source_total)
         imbalance = abs(total) / scale if scale > 0 else 0.0
         return flows, source_total, float(imbalance)
+
+
+def _harmonic(a, b):
+    """2ab/(a + b) as 2 k_min / (1 + k_min/k_max), bit for bit the kernels' face_conductance."""
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    return lo / (0.5 + 0.5 * (lo / hi))

@@ -86,35 +86,29 @@ def exact_inverse_norm(operator) -> float | None:
 def inverse_norm(run) -> tuple[float, str]:
     """``||(I - W)^-1||_inf`` for a run's operator (cached on it) and how it was found."""
     op = run.operator
-    cached = getattr(op, "_relaxtui_inverse_norm", None)
-    if cached is not None:
-        return cached
-    exact = exact_inverse_norm(op)
+    if op.inverse_norm is not None:
+        return op.inverse_norm
+    exact = exact_inverse_norm(op) if hasattr(op, "cls") else None
     if exact is not None:
-        cached = (exact, "exact")
+        found = (exact, "exact")
     else:
-        mu = getattr(run, "mu", None)
+        mu = run.mu
         how = "from the Jacobi radius"
-        if mu is None:  # a radius job of the operator's may know one already (beside the sweeps)
-            job = getattr(op, "radius_job", None)
-            final = job().result() if job is not None else None
-            mu = final.mu if final is not None else None
-        if mu is None:
+        est = op.radius_job().result() if mu is None else None  # the operator's shared estimate, if finished
+        if est is not None:
+            mu = est.mu
+        elif mu is None and not hasattr(op, "jacobi_apply"):  # an operator split across MPI ranks
+            est = op.radius_job().run()
+            mu, how = est.mu, f"from a Lanczos estimate of the Jacobi radius ({est.steps} steps)"
+        elif mu is None:
             from relaxtui.solver.radius import jacobi_radius
-
-            # Asked only when the run is about to stop (converged or stalled): a stepper's own buffers
-            # (the multigrid hierarchy) are not needed any more, and the three Lanczos vectors then
-            # do not add to them at the memory peak.
-            release = getattr(getattr(run, "_stepper", None), "release", None)
-            if release is not None:
-                release()
 
             mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
             how = f"from a Lanczos estimate of the Jacobi radius ({LANCZOS_STEPS} steps at most)"
         gap = 1.0 - float(mu)
-        cached = (ESTIMATE_SAFETY / gap if gap > 0.0 else math.inf, how)
-    op._relaxtui_inverse_norm = cached
-    return cached
+        found = (ESTIMATE_SAFETY / gap if gap > 0.0 else math.inf, how)
+    op.inverse_norm = found
+    return found
 
 
 def rounding_floor(inv_norm: float, scale: float, cells: int = 1) -> float:

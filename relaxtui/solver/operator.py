@@ -122,6 +122,8 @@ class Operator:
         self._scratch = None
         self._radius = None
         self._fingerprint = None
+        # (norm of the inverse, how it was found): relaxtui.solver.conditioning fills it once per operator
+        self.inverse_norm: tuple[float, str] | None = None
 
     # --- set-up ------------------------------------------------------------------------
 
