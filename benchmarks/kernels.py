@@ -102,7 +102,7 @@ def speed_rows(n: int, calls: int, sweeps: int) -> list[dict]:
     import numba
     from relaxtui.kernels import sweeps as k
 
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     threads = numba.get_num_threads()
     rows = []
@@ -167,7 +167,7 @@ def speed_rows(n: int, calls: int, sweeps: int) -> list[dict]:
 
 
 def assembly_rows(n: int) -> list[dict]:
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     Operator(make_case("uniform", 8))  # kernels loaded
     rows = []
@@ -191,7 +191,7 @@ import importlib.util
 spec = importlib.util.spec_from_file_location("bench_kernels", sys.argv[1])
 bench = importlib.util.module_from_spec(spec)
 spec.loader.exec_module(bench)
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 def status(key):
     for line in open("/proc/self/status"):
@@ -252,7 +252,7 @@ bench = importlib.util.module_from_spec(spec)
 spec.loader.exec_module(bench)
 import numba
 t1 = time.perf_counter()
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 case = bench.make_case("uniform", 64)
 t2 = time.perf_counter()
 op = Operator(case)

@@ -69,7 +69,7 @@ def inner_single(n: int, method: str) -> dict:
     """The ordinary single-process sweeps (numba threads as the environment says)."""
     import numba
 
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     op = Operator(plate_case(n))
     u = op.new_field()
@@ -92,7 +92,7 @@ def inner_ranks(n: int, method: str) -> dict | None:
     from relaxtui.parallel.comm import mpi, set_threads
     from relaxtui.parallel.group import _part
     from relaxtui.parallel.strip import Strip, split_rows
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     comm = mpi().COMM_WORLD
     rank, size = comm.Get_rank(), comm.Get_size()

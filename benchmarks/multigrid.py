@@ -126,7 +126,7 @@ def homogeneous(case):
 
 def factor(case, krylov: bool = True, iterations: int = 10) -> float:
     from relaxtui.solver.multigrid import DEFAULT_OMEGA, MultigridStepper
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     op = Operator(homogeneous(case))
     st = MultigridStepper(op, krylov=krylov, pre=2, post=1)
@@ -139,7 +139,7 @@ def factor(case, krylov: bool = True, iterations: int = 10) -> float:
 def relaxtui_time(case, exact_inner: np.ndarray, tol: float = TOL):
     """Seconds for assembly + set-up + iterations to tolerance ``tol``; (seconds, iterations, true error, setup)."""
     from relaxtui.solver.driver import Run
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     t0 = time.perf_counter()
     op = Operator(case)
@@ -214,7 +214,7 @@ import json, sys
 import numpy as np
 from relaxtui.case import load_case
 from relaxtui.solver.driver import Run
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 def peak():
     for line in open("/proc/self/status"):

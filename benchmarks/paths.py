@@ -85,7 +85,7 @@ def main(argv=None) -> int:
     import numba
 
     from relaxtui.solver.methods import get_method
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     ops, setup = {}, {}
     for name, case in cases(args.n).items():

@@ -31,7 +31,7 @@ def _measure_case(kind: str, n: int, repeats: int, quick: bool) -> dict:
     import numba
     from relaxtui.kernels import sweeps as k
 
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     kb = kernels_bench()
     threads = numba.get_num_threads()

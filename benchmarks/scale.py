@@ -152,7 +152,7 @@ def rate_rows(n: int) -> list[dict]:
     import numba
 
     from relaxtui.kernels import sweeps as k
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     op = Operator(common.model_case(n))
     u = op.new_field()

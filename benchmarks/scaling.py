@@ -28,7 +28,7 @@ def sizes(quick: bool) -> list[int]:
 
 
 def _sweep_rates(ns: list[int]) -> dict:
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     ops = {}
     fns = {}
@@ -121,7 +121,7 @@ def run(quick: bool, previous: Path | None = None) -> dict:
         notes.append(f"Fitted exponents against cells: time to tolerance ~ cells^{slope_t:.2f}, sweeps to tolerance ~ cells^{slope_s:.2f} "
                      f"(~ N^{2 * slope_s:.2f}), sweeps/s ~ cells^{slope_r:.2f}. Expected for SOR at optimal ω: 1.5, 0.5, -1.")
         targets.append({"target": "time to tolerance vs cells (fitted exponent; 1.5 expected for SOR)", "measured": f"{slope_t:.2f}", "ok": None})
-    notes.append("Sweeps/s: red-black SOR chunks through relaxtui.solver.operator.Operator.sweep, round-robin over the sizes, 5 rounds after a warm-up. "
+    notes.append("Sweeps/s: red-black SOR chunks through relaxtui.solver.assembled.Operator.sweep, round-robin over the sizes, 5 rounds after a warm-up. "
                  "Small grids sit in cache, so their Mcell/s is higher than the streaming rate of the large ones.")
     if any(solves[n].get("times") and len(solves[n]["times"]) < common.REPEATS for n in ns):
         notes.append("Where n < 5 the solve was long and only as many repeats as fit the time budget were made (section 2's rule).")

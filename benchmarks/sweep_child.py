@@ -26,7 +26,7 @@ OMEGA = {"jacobi": 1.0, "gauss-seidel": 1.0, "sor": 1.9, "red-black-sor": 1.9}
 def main() -> int:
     import numba
 
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     n, kind, work, methods = int(sys.argv[1]), sys.argv[2], float(sys.argv[3]), sys.argv[4:]
     op = Operator(common.kernels_bench().make_case(kind, n))

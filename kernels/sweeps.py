@@ -1,6 +1,6 @@
 """Relaxation sweeps over the class-coded operator, in place.
 
-Layout (built by :mod:`relaxtui.kernels.assemble`, owned by ``relaxtui.solver.operator``):
+Layout (built by :mod:`relaxtui.kernels.assemble`, owned by ``relaxtui.solver.assembled``):
 - ``u`` (rows + 2, cols + 2) float64: the field padded by one cell; cells that
   are not unknowns hold finite values (a fixed cell its value, others 0), so a
   neighbour read with weight 0 is harmless;

@@ -19,7 +19,7 @@ from cases import convection, fixed, flux, interior, make_case, model_problem, o
 from exact import exact_solution
 
 from relaxtui.solver.driver import solve
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 
 def strip_case(length: int, width: int = 3):

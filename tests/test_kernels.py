@@ -19,7 +19,7 @@ import pytest
 import reference
 from cases import feature_case, fixed, interior, make_case, outside
 
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 HERE = Path(__file__).resolve().parent
 
@@ -184,7 +184,7 @@ import json, sys
 import numpy as np
 sys.path.insert(0, sys.argv[1])
 from test_kernels import CASES, start_field
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 out = {}
 for name, case in CASES.items():
     op = Operator(case)

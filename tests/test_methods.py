@@ -18,7 +18,7 @@ from relaxtui.errors import CaseError, UsageError
 from relaxtui.solver import radius
 from relaxtui.solver.driver import Run, solve
 from relaxtui.solver.methods import METHOD_NAMES, METHODS, Stepper
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 # --- the registry ----------------------------------------------------------------------------
 

@@ -29,7 +29,7 @@ from relaxtui.solver import stopping
 from relaxtui.solver.driver import solve
 from relaxtui.solver.methods import get_method
 from relaxtui.solver.multigrid import DEFAULT_OMEGA, Hierarchy, MultigridStepper
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 from relaxtui.solver.stopping import StoppingRule
 
 GRIDS = "grids"

@@ -23,7 +23,7 @@ from cases import (
 )
 
 from relaxtui.errors import CaseError, UsageError
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 CASES = {
     "uniform": feature_case(False),
@@ -289,6 +289,6 @@ def test_memory_bytes_counts_the_jacobi_buffer():
 
 
 def test_importing_does_not_load_numba():
-    code = "import sys, relaxtui, relaxtui.solver.operator; assert 'numba' not in sys.modules, 'numba imported'"
+    code = "import sys, relaxtui, relaxtui.solver.assembled; assert 'numba' not in sys.modules, 'numba imported'"
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr

@@ -20,7 +20,7 @@ from relaxtui.case.physics import CoefficientMap, Contact
 from relaxtui.errors import CaseError
 from relaxtui.solver.driver import solve
 from relaxtui.solver.methods import METHODS
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 ALL_METHODS = tuple(METHODS)  # every method in the registry
 

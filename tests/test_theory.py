@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from cases import convection, fixed, interior, make_case, model_problem, outside
 
-from relaxtui.solver.operator import Operator
+from relaxtui.solver.assembled import Operator
 
 N = 31  # model problem: 31 x 31 unknowns, h = 1/32
 H = 1.0 / (N + 1)

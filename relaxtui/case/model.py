@@ -1,7 +1,7 @@
 """The validated problem: what a case file and its picture mean.
 
 A :class:`Case` is produced by :func:`relaxtui.case.load_case` and consumed by
-the operator assembly (``relaxtui.solver.operator``), the reports and the UI. It holds
+the operator assembly (``relaxtui.solver.assembled``), the reports and the UI. It holds
 no numba objects and is cheap to build.
 """
 

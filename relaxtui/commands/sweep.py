@@ -51,7 +51,7 @@ def run(args) -> int:
     from relaxtui.options import parse_method
     from relaxtui.solver.driver import Run, check_outputs
     from relaxtui.solver.methods import OMEGA_SCAN_METHODS
-    from relaxtui.solver.operator import Operator
+    from relaxtui.solver.assembled import Operator
 
     if args.omega is None and args.methods is None:
         raise UsageError("give --omega START:STOP:STEP (with --method) or --methods M1,M2,...")

@@ -114,7 +114,7 @@ def _warm_in_turn(comm, strip: Strip) -> None:
 
 
 class DistributedOperator:
-    """The operator interface of :class:`relaxtui.solver.operator.Operator`, over strips on all ranks.
+    """The operator interface of :class:`relaxtui.solver.assembled.Operator`, over strips on all ranks.
 
     Built on rank 0 from a loaded case: assembles the case once (every check
     of the single-process operator runs, with its messages), cuts the rows
@@ -125,7 +125,7 @@ class DistributedOperator:
     """
 
     def __init__(self, case, group: Group, threads: int):
-        from relaxtui.solver.operator import Operator
+        from relaxtui.solver.assembled import Operator
 
         comm = group.comm
         ranks = comm.Get_size()
@@ -187,7 +187,7 @@ class DistributedOperator:
         return u[1:-1, 1:-1]
 
     def new_field(self, initial: np.ndarray | None = None) -> np.ndarray:
-        """The working array, as :meth:`relaxtui.solver.operator.Operator.new_field`, on every rank's strip."""
+        """The working array, as :meth:`relaxtui.solver.assembled.Operator.new_field`, on every rank's strip."""
         from relaxtui.kernels import measure
 
         if initial is not None:
@@ -216,7 +216,7 @@ class DistributedOperator:
     # --- sweeps ----------------------------------------------------------------------------
 
     def sweep(self, u, method: str, omega: float, sweeps: int, updates: np.ndarray, residuals: np.ndarray) -> int:
-        """As :meth:`relaxtui.solver.operator.Operator.sweep` (Jacobi and red-black SOR), over all strips.
+        """As :meth:`relaxtui.solver.assembled.Operator.sweep` (Jacobi and red-black SOR), over all strips.
 
         Every rank runs all ``sweeps`` sweeps; the per-sweep largest update and
         residual are reduced once for the chunk. The count returned stops at
@@ -257,7 +257,7 @@ class DistributedOperator:
             return self.strip.field_scale()
 
     def flows(self, u) -> tuple[dict[str, float], float, float]:
-        """As :meth:`relaxtui.solver.operator.Operator.flows`, summed over the strips."""
+        """As :meth:`relaxtui.solver.assembled.Operator.flows`, summed over the strips."""
         self._check_field(u)
         with self.group.collective(FLOWS):
             per_region = self.strip.flows() * self.depth

@@ -73,7 +73,7 @@ class Strip:
 
     def __init__(self, comm, part: dict, threads: int):
         from relaxtui.kernels import assemble
-        from relaxtui.solver.operator import MIN_RUN
+        from relaxtui.solver.assembled import MIN_RUN
 
         MPI = mpi()
         self.comm = comm

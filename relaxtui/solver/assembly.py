@@ -1,6 +1,6 @@
 """Assembly of the case format v1.1 operator: contacts, orthotropy, maps, axisymmetry.
 
-The v1 operator (``relaxtui.solver.operator``) is class-coded: a cell's
+The v1 operator (``relaxtui.solver.assembled``) is class-coded: a cell's
 normalised equation depends only on the regions of the cell and its four
 neighbours. Two of the v1.1 features keep that property and stay on the class
 path; two break it and take the per-cell path.
@@ -61,7 +61,7 @@ SIDES = ((-1, 0, "y"), (1, 0, "y"), (0, -1, "x"), (0, 1, "x"))
 
 
 class Physics:
-    """The v1.1 part of an :class:`~relaxtui.solver.operator.Operator` (built by it).
+    """The v1.1 part of an :class:`~relaxtui.solver.assembled.Operator` (built by it).
 
     Attributes
     ----------
@@ -240,7 +240,7 @@ class Physics:
         """Planar maps: the class path everywhere, then a class of its own for every cell whose
         equation a map touches (the mapped region's cells and, for a conductivity map, their
         interior neighbours). A map over a small part of a picture costs only that part."""
-        from relaxtui.solver.operator import MIN_RUN, _class_dtype
+        from relaxtui.solver.assembled import MIN_RUN, _class_dtype
 
         op = self.op
         op._assemble(assemble)
@@ -283,7 +283,7 @@ class Physics:
         self.cells_with_own_class = int(n)
 
     def _assemble_cells(self, assemble) -> None:
-        from relaxtui.solver.operator import MIN_RUN, _class_dtype
+        from relaxtui.solver.assembled import MIN_RUN, _class_dtype
 
         op = self.op
         codes = op.codes
@@ -317,7 +317,7 @@ class Physics:
         """Axisymmetric without maps: a cell's weights depend on its v1 class and its column only,
         so the classes are the distinct (v1 class, column) pairs; the table stays small (it is
         read from cache) and a sweep streams a class code of 1-4 B per cell, not 48 B of weights."""
-        from relaxtui.solver.operator import MIN_RUN, _class_dtype
+        from relaxtui.solver.assembled import MIN_RUN, _class_dtype
 
         op = self.op
         op._assemble(assemble)

@@ -151,7 +151,7 @@ class Run:
         t0 = self._t_prepare = time.perf_counter()
         if self.operator is None:
             self._stage("assembling the operator")
-            from relaxtui.solver.operator import Operator
+            from relaxtui.solver.assembled import Operator
 
             self.operator = Operator(self.case)
         op = self.operator

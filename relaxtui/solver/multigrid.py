@@ -143,7 +143,7 @@ class Hierarchy:
 
     Parameters
     ----------
-    operator : relaxtui.solver.operator.Operator
+    operator : relaxtui.solver.assembled.Operator
     coarsest : int
         A level with at most this many unknowns is the coarsest and is solved
         directly (banded Cholesky).
@@ -311,7 +311,7 @@ class MultigridStepper:
 
     Parameters
     ----------
-    operator : relaxtui.solver.operator.Operator
+    operator : relaxtui.solver.assembled.Operator
     krylov : bool
         True (default): conjugate gradients, each iteration preconditioned by
         one symmetric cycle (``krylov_sweeps`` forward red-black sweeps before
@@ -388,7 +388,7 @@ class MultigridStepper:
             # red-black kernel run on the whole buffer (class codes shifted alike) sees every cell's
             # colour flipped, so it sweeps black then red: the adjoint of the forward sweep.
             from relaxtui.kernels import assemble
-            from relaxtui.solver.operator import MIN_RUN
+            from relaxtui.solver.assembled import MIN_RUN
 
             self._w_big = np.zeros((shape[0] + 1, shape[1]))
             self.w = self._w_big[1:]
@@ -468,7 +468,7 @@ class MultigridStepper:
         import numba
 
         from relaxtui.kernels import sweeps as k
-        from relaxtui.solver.operator import PARALLEL_CELLS
+        from relaxtui.solver.assembled import PARALLEL_CELLS
 
         op = self.operator
         threads = numba.get_num_threads()

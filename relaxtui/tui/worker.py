@@ -245,7 +245,7 @@ def load_case(path, post) -> None:
     t0 = time.perf_counter()
     try:
         from relaxtui.case import load_case as load
-        from relaxtui.solver.operator import Operator
+        from relaxtui.solver.assembled import Operator
         from relaxtui.tui.sampling import CellLayout
 
         case = load(path)
