@@ -187,3 +187,15 @@ def feature_case(two_materials: bool) -> Case:
     if two_materials:
         return make_case(FEATURE_ART, feature_legend(True), cell_size=0.5, depth=2.0, name="features-two")
     return make_case(FEATURE_ART, feature_legend(False), cell_size=0.5, name="features-uniform")
+
+
+def hot_cold_toml(mask: str, *, head: str = "", interior: str = "", void: bool = True) -> str:
+    """A case file: white interior ("plate", extra keys in ``interior``), red fixed at 100 ("hot"),
+    blue fixed at 0 ("cold") and, with ``void``, black outside; ``head`` adds top-level keys."""
+    parts = [f'mask = "{mask}"\n{head}',
+             f'[[region]]\nname = "plate"\ncolor = "#ffffff"\nkind = "interior"\n{interior}',
+             '[[region]]\nname = "hot"\ncolor = "#ff0000"\nkind = "fixed"\nvalue = 100.0\n',
+             '[[region]]\nname = "cold"\ncolor = "#0000ff"\nkind = "fixed"\nvalue = 0.0\n']
+    if void:
+        parts.append('[[region]]\nname = "void"\ncolor = "#000000"\nkind = "outside"\n')
+    return "".join(p if p.endswith("\n") else p + "\n" for p in parts)

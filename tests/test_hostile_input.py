@@ -18,31 +18,10 @@ import pytest
 from PIL import Image
 
 from relaxtui.cli import main
+from cases import hot_cold_toml
 
-CASE = """\
-title = "plate"
-mask = "{mask}"
-{extra}
-[[region]]
-name = "plate"
-color = "#ffffff"
-kind = "interior"
-{interior}
-[[region]]
-name = "hot"
-color = "#ff0000"
-kind = "fixed"
-value = 100.0
-[[region]]
-name = "cold"
-color = "#0000ff"
-kind = "fixed"
-value = 0.0
-[[region]]
-name = "void"
-color = "#000000"
-kind = "outside"
-"""
+def _case_text(mask, extra="", interior=""):
+    return 'title = "plate"\n' + hot_cold_toml(mask, head=extra, interior=interior)
 
 
 def write_case(folder: Path, *, extra: str = "", interior: str = "", mask: str = "plate.png", n: int = 16,
@@ -55,7 +34,7 @@ def write_case(folder: Path, *, extra: str = "", interior: str = "", mask: str =
     mask_path.parent.mkdir(parents=True, exist_ok=True)
     Image.fromarray(img, "RGB").save(mask_path)
     path = folder / name
-    path.write_text(CASE.format(mask=mask, extra=extra, interior=interior), encoding="utf-8")
+    path.write_text(_case_text(mask, extra, interior), encoding="utf-8")
     return path
 
 
@@ -139,7 +118,7 @@ def test_extreme_valid_conductivity_solves(tmp_path, capsys, k):
 def test_one_cell_case_warns_nothing(tmp_path, capsys):
     img = np.array([[[0, 0, 255], [255, 255, 255], [255, 0, 0]]], dtype=np.uint8)
     Image.fromarray(img, "RGB").save(tmp_path / "plate.png")
-    (tmp_path / "case.toml").write_text(CASE.format(mask="plate.png", extra="", interior=""), encoding="utf-8")
+    (tmp_path / "case.toml").write_text(_case_text("plate.png", "", ""), encoding="utf-8")
     for method in ("jacobi", "sor", "multigrid"):
         code, _, err = cli(["solve", tmp_path / "case.toml", "--method", method, "-q",
                             "--out", tmp_path / "f.npy", "--report", tmp_path / "r.json"], capsys)
@@ -166,7 +145,7 @@ def test_fifo_as_case_file(fifo, capsys):
 def test_fifo_as_mask(tmp_path, capsys):
     write_case(tmp_path)
     os.mkfifo(tmp_path / "pipe.png")
-    (tmp_path / "c2.toml").write_text(CASE.format(mask="pipe.png", extra="", interior=""), encoding="utf-8")
+    (tmp_path / "c2.toml").write_text(_case_text("pipe.png", "", ""), encoding="utf-8")
     code, _, err = cli(["info", tmp_path / "c2.toml"], capsys)
     assert code == 2 and "FIFO" in one_line_error(err)
 
@@ -285,7 +264,7 @@ def test_mask_outside_the_case_folder_is_shown(tmp_path, capsys):
     (tmp_path / "cases").mkdir()
     write_case(tmp_path, mask="shared/plate.png", name="tmp.toml")
     case = tmp_path / "cases" / "case.toml"
-    case.write_text(CASE.format(mask="../shared/plate.png", extra="", interior=""), encoding="utf-8")
+    case.write_text(_case_text("../shared/plate.png", "", ""), encoding="utf-8")
     resolved = str((tmp_path / "shared" / "plate.png").resolve())
     code, out, _ = cli(["info", case], capsys)
     squeezed = "".join(out.split())  # rich folds long paths over several lines

@@ -20,27 +20,9 @@ from PIL import Image
 from relaxtui.cli import main
 from relaxtui.solver import memory
 
-CASE = """\
-mask = "m.png"
-[[region]]
-name = "plate"
-color = "#ffffff"
-kind = "interior"
-[[region]]
-name = "hot"
-color = "#ff0000"
-kind = "fixed"
-value = 100.0
-[[region]]
-name = "cold"
-color = "#0000ff"
-kind = "fixed"
-value = 0.0
-[[region]]
-name = "void"
-color = "#000000"
-kind = "outside"
-"""
+from cases import hot_cold_toml
+
+CASE = hot_cold_toml("m.png")
 
 ALLOWANCE = 4 * 1024 * 1024
 

@@ -30,25 +30,11 @@ import numpy as np
 import pytest
 from PIL import Image
 
+from cases import hot_cold_toml
+
 pytestmark = pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to see a stopped process")
 
-CASE = """\
-mask = "plate.png"
-[[region]]
-name = "plate"
-color = "#ffffff"
-kind = "interior"
-[[region]]
-name = "hot"
-color = "#ff0000"
-kind = "fixed"
-value = 100.0
-[[region]]
-name = "cold"
-color = "#0000ff"
-kind = "fixed"
-value = 0.0
-"""
+CASE = hot_cold_toml("plate.png", void=False)
 
 OUTPUTS = ("f.npy", "r.json", "h.csv")
 
