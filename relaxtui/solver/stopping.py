@@ -147,7 +147,8 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
         # needed, but a measured decay slower than it (a wrong prior, SOR's
         # transient near the optimum) always wins.
         rho = np.maximum(measured, prior_factor)
-        rate = -np.log(rho)
+        with np.errstate(divide="ignore"):  # a factor of 0 (an exact step) is an infinite rate, not a warning
+            rate = -np.log(rho)
     gap = 1.0 - rho
     if prior_gap is not None and prior_factor is not None and 0.0 < prior_factor < 1.0:
         with np.errstate(divide="ignore", invalid="ignore"):
