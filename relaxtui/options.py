@@ -36,7 +36,10 @@ DEFAULT_MAX_SWEEPS = 200_000
 _GROUPING = (" ", "\u202f", "\u2009", "\u00a0", "_")  # thousands separators accepted in a typed sweep count
 
 
-def _type_name(value) -> str:
+def type_name(value) -> str:
+    """How a message names the type of a value read from the command line or a TOML file."""
+    from datetime import date, datetime, time
+
     if isinstance(value, bool):
         return "a boolean"
     if isinstance(value, int):
@@ -49,15 +52,23 @@ def _type_name(value) -> str:
         return "an array"
     if isinstance(value, dict):
         return "a table"
+    if isinstance(value, (datetime, date, time)):
+        return "a date/time"
     return f"a {type(value).__name__}"
 
 
-def _show(value) -> str:
+def show_value(value) -> str:
+    """A value as a message quotes it: true/false, %g floats, quoted strings."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, float):
         return f"{value:g}"
-    return repr(value)
+    if isinstance(value, str):
+        return repr(value)
+    return str(value)
+
+
+_type_name, _show = type_name, show_value
 
 
 def _is_number(value) -> bool:

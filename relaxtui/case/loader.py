@@ -25,12 +25,12 @@ import difflib
 import math
 import re
 import tomllib
-from datetime import date, datetime, time
 from pathlib import Path
 from typing import Sequence
 
 import numpy as np
 
+from relaxtui import options
 from relaxtui.case import physics, picture
 from relaxtui.case.domain import check_domain
 from relaxtui.case.model import (
@@ -39,8 +39,9 @@ from relaxtui.case.model import (
     Region,
     SolverDefaults,
 )
-from relaxtui import options
 from relaxtui.errors import CaseError, UsageError
+from relaxtui.options import show_value as _show
+from relaxtui.options import type_name as _type_name
 from relaxtui.solver import memory
 
 TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region") + physics.TOP_KEYS_V11
@@ -198,24 +199,6 @@ def _fail(label: str, line: int | None, message: str) -> CaseError:
     return CaseError(f"{_where(label, line)}: {message}")
 
 
-def _type_name(value) -> str:
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a float"
-    if isinstance(value, str):
-        return "a string"
-    if isinstance(value, list):
-        return "an array"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, (datetime, date, time)):
-        return "a date/time"
-    return type(value).__name__  # pragma: no cover - tomllib makes no other types
-
-
 def check_range(key: str, x: float, fail) -> None:
     """Call ``fail(message)`` when the number ``x`` of ``key`` lies outside what relaxtui computes in."""
     if key in NUMBER_RANGES:
@@ -245,16 +228,6 @@ def _nesting_line(text: str) -> int | None:
         elif ch in "]}":
             depth = max(0, depth - 1)
     return None
-
-
-def _show(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, float):
-        return f"{value:g}"
-    if isinstance(value, str):
-        return repr(value)
-    return str(value)
 
 
 def _q(text: str) -> str:
