@@ -3,7 +3,7 @@
 Level 0 is the operator's padded class array ``cls`` with its class
 ``table`` and diagonal ``diag`` (see :mod:`relaxtui.kernels.sweeps`). Its
 interpolation weights come from per-class row/column weights ``ptab`` and
-flags ``pflag`` (built by ``relaxtui.solver.multigrid.level0_tables``), so the
+flags ``pflag`` (built by ``relaxtui.solver.mgtables.level0_tables``), so the
 finest grid, the only big one, carries no interpolation arrays. The layout of
 the 8 weights of a block is described in :mod:`relaxtui.kernels.multigrid`.
 """

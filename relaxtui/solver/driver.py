@@ -17,8 +17,7 @@ from __future__ import annotations
 import math
 import threading
 import time
-from dataclasses import dataclass, replace
-from pathlib import Path
+from dataclasses import replace
 
 import numpy as np
 
@@ -27,6 +26,7 @@ from relaxtui.errors import UsageError
 from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
 from relaxtui.solver.methods import MAX_CHUNK, get_method
+from relaxtui.solver.outcome import Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
 
 CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
@@ -35,36 +35,6 @@ QUICK_RADIUS_STEPS = 30  # large grids with auto omega: Lanczos steps (beside th
 BACKGROUND_DELAY_SECONDS = 1.0  # given omega on a large grid: seconds of sweeping before the estimate starts beside them
 BACKGROUND_MIN_SECONDS = 5.0  # ... and only when the run may still go on this long (else it is not worth a core)
 RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
-
-
-@dataclass(frozen=True)
-class Progress:
-    """An immutable snapshot of a run, safe to hand to another thread."""
-
-    sweeps: int
-    seconds: float
-    residual: float
-    estimated_error: float
-    factor: float | None
-    eta_sweeps: float | None
-    eta_seconds: float | None
-    mcells_per_s: float
-    omega: float
-    omega_note: str
-    method: str
-    tolerance: float
-    status: str | None
-    message: str
-    background: str = ""  # work running beside the sweeps (the Jacobi radius estimate), "" when none
-
-
-@dataclass
-class SolveResult:
-    field: np.ndarray
-    report: dict
-    history: History
-    case: model.Case
-    probes: object = None  # relaxtui.output.probes.ProbeLog of a case with probes (case format v1.1)
 
 
 def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
@@ -621,20 +591,3 @@ def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_l
         if on_progress is not None:
             on_progress(progress)
     return run.result()
-
-
-def check_outputs(**paths) -> None:
-    """Refuse, before any work, output paths whose folder does not exist."""
-    from relaxtui.output.atomic import check_target
-
-    for what, path in paths.items():
-        if path is not None:
-            check_target(path, what)
-
-
-def write_outputs(result: SolveResult, *, out=None, report=None, history=None, probes=None) -> list[Path]:
-    """Write the field (.npy), report (.json), history (.csv) and probe log (.csv, v1.1) as one set."""
-    from relaxtui.output.sets import write_run_outputs
-
-    check_outputs(field=out, report=report, history=history, probes=probes)
-    return write_run_outputs(result, out=out, report=report, history=history, probes=probes)  # temporaries, then renames
