@@ -20,7 +20,7 @@ and a NaN still wins.
 import numpy as np
 from numba import prange
 from relaxtui.kernels._bits import abs_bits
-from relaxtui.kernels.assemble import face_conductance, film_conductance
+from relaxtui.kernels.measure import flows as strip_flows  # noqa: F401 - one flows kernel: a strip passes its neighbour rows
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.sweeps import _colour_row, _jacobi_rows
 
@@ -98,59 +98,3 @@ def largest_bits(values, n):
     for k in range(n):
         out[k] = abs_bits(values[k])
     return out
-
-
-@kernel(parallel=True)
-def strip_flows(codes, up_codes, dn_codes, has_up, has_dn, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary,
-                kind, conductivity, fixed_conductivity, value, flux, coefficient, ambient, h, nblk):
-    """The flows kernel of :func:`relaxtui.kernels.measure.flows` on a strip.
-
-    ``codes`` is the strip's own (n, cols) region picture, ``up_codes`` and
-    ``dn_codes`` the picture rows just above and below it (read only when
-    ``has_up`` / ``has_dn``: at the picture's top and bottom there is no
-    neighbour row). Returns acc (nblk, regions): per row block of the strip,
-    the flow into the domain through each region's faces (not multiplied by
-    the depth), by the same face formulas as the single-process kernel.
-    """
-    rows, cols = codes.shape
-    nreg = kind.shape[0]
-    acc = np.zeros((nblk, nreg))
-    for b in prange(nblk):
-        for pi in range(1 + b * rows // nblk, 1 + (b + 1) * rows // nblk):
-            i = pi - 1
-            for s in range(row_ptr[pi], row_ptr[pi + 1]):
-                if seg_class[s] > 0 and boundary[seg_class[s]] == 0:
-                    continue
-                for pj in range(seg_start[s], seg_end[s]):
-                    if boundary[cls[pi, pj]] == 0:
-                        continue
-                    j = pj - 1
-                    kp = conductivity[codes[i, j]]
-                    up = u[pi, pj]
-                    for side in range(4):
-                        a = i + (-1 if side == 0 else (1 if side == 1 else 0))
-                        c = j + (-1 if side == 2 else (1 if side == 3 else 0))
-                        if c < 0 or c >= cols:
-                            continue
-                        if a < 0:
-                            if not has_up:
-                                continue
-                            rx = up_codes[c]
-                        elif a >= rows:
-                            if not has_dn:
-                                continue
-                            rx = dn_codes[c]
-                        else:
-                            rx = codes[a, c]
-                        kx = kind[rx]
-                        if kx == FIXED:
-                            kn = fixed_conductivity[rx]
-                            if kn <= 0.0:
-                                kn = kp
-                            acc[b, rx] += face_conductance(kp, kn) * (value[rx] - up)
-                        elif kx == FLUX:
-                            acc[b, rx] += flux[rx] * h
-                        elif kx == CONVECTION:
-                            uh = film_conductance(coefficient[rx], kp, h)
-                            acc[b, rx] += uh * (ambient[rx] - up)
-    return acc

@@ -97,8 +97,8 @@ def jacobi_apply(x, out, cls, table, row_ptr, seg_start, seg_end, seg_class, nbl
 
 
 @kernel(parallel=True)
-def flows(codes, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind, conductivity, fixed_conductivity,
-          value, flux, coefficient, ambient, h, nblk):
+def flows(codes, up_codes, dn_codes, has_up, has_dn, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind,
+          conductivity, fixed_conductivity, value, flux, coefficient, ambient, h, nblk):
     """Per row block: the flow into the domain through each region's faces.
 
     ``acc[b, r]`` sums, over the interior cells of row block b and their faces
@@ -109,6 +109,11 @@ def flows(codes, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind,
     runs never have such faces. ``u`` and ``cls`` are padded, ``codes`` is not.
     Blocks depend on ``nblk`` only, so the caller's sum does not depend on
     the thread count.
+
+    ``up_codes`` and ``dn_codes`` are the picture rows just above and below
+    ``codes``, read only when ``has_up`` / ``has_dn``: a strip of an MPI run
+    (:mod:`relaxtui.parallel.strip`) passes its neighbours' rows; the whole
+    picture passes any row and False, False (no neighbour rows).
     """
     rows, cols = codes.shape
     nreg = kind.shape[0]
@@ -128,9 +133,18 @@ def flows(codes, u, cls, row_ptr, seg_start, seg_end, seg_class, boundary, kind,
                     for side in range(4):
                         a = i + (-1 if side == 0 else (1 if side == 1 else 0))
                         c = j + (-1 if side == 2 else (1 if side == 3 else 0))
-                        if a < 0 or c < 0 or a >= rows or c >= cols:
+                        if c < 0 or c >= cols:
                             continue
-                        rx = codes[a, c]
+                        if a < 0:
+                            if not has_up:
+                                continue
+                            rx = up_codes[c]
+                        elif a >= rows:
+                            if not has_dn:
+                                continue
+                            rx = dn_codes[c]
+                        else:
+                            rx = codes[a, c]
                         kx = kind[rx]
                         if kx == FIXED:
                             kn = fixed_conductivity[rx]

@@ -164,29 +164,31 @@ def _parse_region(i: int, raw, lines: KeyLines, chk: _Checker) -> tuple[dict, in
         chk.fail(header, f"region {n} must be a table ([[region]]), not {_type_name(raw)}")
     name = raw.get("name")
     who = f"region {n} ({name if name.isprintable() else repr(name)}): " if isinstance(name, str) and name.strip() else f"region {n}: "
-    for key in raw:
-        if key not in ALL_REGION_KEYS:
-            chk.fail(lines.region_line(i, key), f"{who}unknown key {_q(key)}{_suggest(key, ALL_REGION_KEYS)}")
-    if "kind" not in raw:
-        chk.fail(header, f"{who}missing key 'kind' (one of: {_KIND_CHOICES})")
-    kind_line = lines.region_line(i, "kind")
+
+    def only(allowed, message) -> None:  # refuse the first key of the table not in ``allowed``
+        for key in raw:
+            if key not in allowed:
+                chk.fail(lines.region_line(i, key), f"{who}{message(key)}")
+
+    def needed(key: str, note: str) -> int | None:  # refuse a missing key; else its line
+        if key not in raw:
+            chk.fail(header, f"{who}missing key '{key}' {note}")
+        return lines.region_line(i, key)
+
+    only(ALL_REGION_KEYS, lambda key: f"unknown key {_q(key)}{_suggest(key, ALL_REGION_KEYS)}")
+    kind_line = needed("kind", f"(one of: {_KIND_CHOICES})")
     kind = chk.string(raw["kind"], "kind", kind_line, who)
     if kind not in KINDS:
         chk.fail(kind_line, f"{who}key 'kind' must be one of {_KIND_CHOICES}; got {kind!r}{_suggest(kind, KINDS)}")
     takes = COMMON_KEYS + KIND_KEYS[kind]
-    for key in raw:
-        if key not in takes:
-            chk.fail(lines.region_line(i, key), f"{who}key '{key}' does not apply to kind '{kind}' (it takes: {', '.join(takes)})")
-    if "color" not in raw:
-        chk.fail(header, f"{who}missing key 'color' (\"#rrggbb\" or \"transparent\")")
-    color_line = lines.region_line(i, "color")
+    only(takes, lambda key: f"key '{key}' does not apply to kind '{kind}' (it takes: {', '.join(takes)})")
+    color_line = needed("color", "(\"#rrggbb\" or \"transparent\")")
     color_text = chk.string(raw["color"], "color", color_line, who)
     packed = picture.parse_color(color_text)
     if packed is None:
         chk.fail(color_line, f"{who}key 'color' must be \"#rrggbb\" (six hex digits) or \"transparent\", got {color_text!r}")
     for key in REQUIRED_KEYS[kind]:
-        if key not in raw:
-            chk.fail(header, f"{who}missing key '{key}' (kind '{kind}' needs: {', '.join(REQUIRED_KEYS[kind])})")
+        needed(key, f"(kind '{kind}' needs: {', '.join(REQUIRED_KEYS[kind])})")
     if "name" in raw:
         name = chk.string(raw["name"], "name", lines.region_line(i, "name"), who, nonempty=True)
     else:

@@ -89,22 +89,29 @@ def parse_geometry(value, line, chk) -> str:
     return text
 
 
-def parse_contacts(raw, top_line, entry_line, chk) -> list[tuple[str, str, float, int | None]]:
-    """``raw`` is the value of the ``contact`` key; ``entry_line(i, key)`` the line of key in entry i."""
+def _entries(raw, what: str, keys, top_line, entry_line, chk):
+    """Yield (i, entry, "what i: ") for each table of the ``[[what]]`` array ``raw`` once it is a
+    table with exactly the keys ``keys``; ``entry_line(i, key)`` is the line of key in entry i."""
     if not isinstance(raw, list):
-        chk.fail(top_line, "key 'contact' must be an array of tables (write each as [[contact]])")
-    out = []
+        chk.fail(top_line, f"key '{what}' must be an array of tables (write each as [[{what}]])")
     for i, entry in enumerate(raw):
-        who = f"contact {i + 1}: "
+        who = f"{what} {i + 1}: "
         header = entry_line(i, None)
         if not isinstance(entry, dict):
-            chk.fail(header, f"contact {i + 1} must be a table ([[contact]])")
+            chk.fail(header, f"{what} {i + 1} must be a table ([[{what}]])")
         for key in entry:
-            if key not in CONTACT_KEYS:
-                chk.fail(entry_line(i, key), f"{who}unknown key {key!r} (it takes: between, resistance)")
-        for key in CONTACT_KEYS:
+            if key not in keys:
+                chk.fail(entry_line(i, key), f"{who}unknown key {key!r} (it takes: {', '.join(keys)})")
+        for key in keys:
             if key not in entry:
                 chk.fail(header, f"{who}missing key '{key}'")
+        yield i, entry, who
+
+
+def parse_contacts(raw, top_line, entry_line, chk) -> list[tuple[str, str, float, int | None]]:
+    """``raw`` is the value of the ``contact`` key; ``entry_line(i, key)`` the line of key in entry i."""
+    out = []
+    for i, entry, who in _entries(raw, "contact", CONTACT_KEYS, top_line, entry_line, chk):
         line = entry_line(i, "between")
         between = entry["between"]
         if not isinstance(between, list) or len(between) != 2 or not all(isinstance(n, str) for n in between):
@@ -117,21 +124,9 @@ def parse_contacts(raw, top_line, entry_line, chk) -> list[tuple[str, str, float
 
 
 def parse_probes(raw, top_line, entry_line, chk) -> list[Probe]:
-    if not isinstance(raw, list):
-        chk.fail(top_line, "key 'probe' must be an array of tables (write each as [[probe]])")
     out = []
     seen: dict[str, int] = {}
-    for i, entry in enumerate(raw):
-        who = f"probe {i + 1}: "
-        header = entry_line(i, None)
-        if not isinstance(entry, dict):
-            chk.fail(header, f"probe {i + 1} must be a table ([[probe]])")
-        for key in entry:
-            if key not in PROBE_KEYS:
-                chk.fail(entry_line(i, key), f"{who}unknown key {key!r} (it takes: name, x, y)")
-        for key in PROBE_KEYS:
-            if key not in entry:
-                chk.fail(header, f"{who}missing key '{key}'")
+    for i, entry, who in _entries(raw, "probe", PROBE_KEYS, top_line, entry_line, chk):
         name = chk.string(entry["name"], "name", entry_line(i, "name"), who, nonempty=True)
         if not name.isprintable() or "," in name or '"' in name:
             chk.fail(entry_line(i, "name"), f"{who}key 'name' must be printable text without commas or quotes (it is a CSV column)")
@@ -140,7 +135,7 @@ def parse_probes(raw, top_line, entry_line, chk) -> list[Probe]:
         seen[name] = i
         x = chk.number(entry["x"], "x", entry_line(i, "x"), who)
         y = chk.number(entry["y"], "y", entry_line(i, "y"), who)
-        out.append(Probe(name=name, x=x, y=y, line=header))
+        out.append(Probe(name=name, x=x, y=y, line=entry_line(i, None)))
     return out
 
 

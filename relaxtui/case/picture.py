@@ -138,19 +138,25 @@ def require_regular_file(path, label: str, what: str) -> None:
         raise CaseError(f"{label}: is a {kind}, not a regular file; a {what} must be a regular file")
 
 
+def read_file(path, label: str, what: str, noun: str, limit: int | None = None) -> bytes:
+    """The bytes of a regular file (the first ``limit`` of them if given), or a CaseError that
+    names ``label``: "``noun`` not found", "is a folder, not a ``what``", "cannot read the ``noun``"."""
+    require_regular_file(path, label, what)
+    try:
+        with open(path, "rb") as f:
+            return f.read() if limit is None else f.read(limit)
+    except FileNotFoundError:
+        raise CaseError(f"{label}: {noun} not found") from None
+    except IsADirectoryError:
+        raise CaseError(f"{label}: is a folder, not a {what}") from None
+    except OSError as exc:
+        raise CaseError(f"{label}: cannot read the {noun} ({exc.strerror or exc})") from None
+
+
 def read_header(path: Path, label: str | None = None) -> Header:
     """Read width, height, bit depth and colour type from the PNG's IHDR chunk."""
     label = label or str(path)
-    require_regular_file(path, label, "PNG picture")
-    try:
-        with open(path, "rb") as f:
-            head = f.read(33)
-    except FileNotFoundError:
-        raise CaseError(f"{label}: picture not found") from None
-    except IsADirectoryError:
-        raise CaseError(f"{label}: is a folder, not a PNG picture") from None
-    except OSError as exc:
-        raise CaseError(f"{label}: cannot read the picture ({exc.strerror or exc})") from None
+    head = read_file(path, label, "PNG picture", "picture", 33)
     if not head.startswith(PNG_SIGNATURE):
         raise CaseError(f"{label}: not a PNG picture (no PNG signature at the start of the file)")
     if len(head) < 33 or head[12:16] != b"IHDR":

@@ -67,26 +67,19 @@ class KeyLines:
             s = raw.strip()
             if not s or s.startswith("#"):
                 continue
-            m = _AOT_RE.match(s)
+            m = _AOT_RE.match(s) or _TABLE_RE.match(s)  # [[array entry]] or [table] header
             if m:
                 name = m.group(1)
                 first = _first_component(name)
                 self.top.setdefault(first, no)
-                if first == "region" and _unquote(name) == "region":
+                if m.re is _AOT_RE:
                     entry: dict[str, int] = {}
-                    self.regions.append((no, entry))
+                    if first == "region" and _unquote(name) == "region":
+                        self.regions.append((no, entry))
+                    else:
+                        self.arrays.setdefault(_unquote(name), []).append((no, entry))
                     current = entry
-                else:
-                    entry = {}
-                    self.arrays.setdefault(_unquote(name), []).append((no, entry))
-                    current = entry
-                continue
-            m = _TABLE_RE.match(s)
-            if m:
-                name = m.group(1)
-                first = _first_component(name)
-                self.top.setdefault(first, no)
-                if first == "region" and self.regions:
+                elif first == "region" and self.regions:
                     # a sub-table of the last region: point its key at the header
                     rest = name.split(".", 1)[1] if "." in name else name
                     self.regions[-1][1].setdefault(_first_component(rest), no)
@@ -166,17 +159,9 @@ def _nesting_line(text: str) -> int | None:
 # The TOML file
 
 def _read_toml(path: Path, label: str) -> tuple[dict, str]:
-    from relaxtui.case.picture import require_regular_file
+    from relaxtui.case.picture import read_file
 
-    require_regular_file(path, label, "case file")
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise CaseError(f"{label}: case file not found") from None
-    except IsADirectoryError:
-        raise CaseError(f"{label}: is a folder, not a case file") from None
-    except OSError as exc:
-        raise CaseError(f"{label}: cannot read the case file ({exc.strerror or exc})") from None
+    data = read_file(path, label, "case file", "case file")
     if data.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark some editors write
         data = data[3:]
     try:

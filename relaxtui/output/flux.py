@@ -143,6 +143,18 @@ def flux(field, case: Case) -> tuple[np.ndarray, np.ndarray]:
     return gx, gy
 
 
+def largest_flux(qx: np.ndarray, qy: np.ndarray) -> tuple[float, float, float, int, int] | None:
+    """(|q|, qx, qy, row, col) of the largest finite flux magnitude in a block of cells (the first
+    one on a tie), or None when the block has none; a caller combining blocks keeps a strictly larger one."""
+    mag = np.hypot(qx, qy)
+    finite = np.isfinite(mag)
+    if not finite.any():
+        return None
+    mag[~finite] = -1.0
+    i, j = divmod(int(np.argmax(mag)), mag.shape[1])
+    return float(mag[i, j]), float(qx[i, j]), float(qy[i, j]), i, j
+
+
 def peak_flux(field, case: Case) -> dict:
     """The cell with the largest flux magnitude |q| = k |∇u|, for the report.
 
@@ -162,14 +174,9 @@ def peak_flux(field, case: Case) -> dict:
         a, b = max(0, r0 - 1), min(rows, r1 + 1)
         qx, qy = flux(u[a:b], replace(case, codes=case.codes[a:b]))
         qx, qy = qx[r0 - a : r1 - a], qy[r0 - a : r1 - a]
-        mag = np.hypot(qx, qy)
-        finite = np.isfinite(mag)
-        if not finite.any():
-            continue
-        mag[~finite] = -1.0
-        i, j = divmod(int(np.argmax(mag)), cols)
-        if best is None or mag[i, j] > best[0]:
-            best = (float(mag[i, j]), float(qx[i, j]), float(qy[i, j]), r0 + i, j)
+        top = largest_flux(qx, qy)
+        if top is not None and (best is None or top[0] > best[0]):
+            best = (*top[:3], r0 + top[3], top[4])
     if best is None:
         return {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
     value, bx, by, row, col = best

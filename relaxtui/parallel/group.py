@@ -27,7 +27,7 @@ import numpy as np
 from relaxtui.errors import UsageError
 from relaxtui.parallel.comm import quiet_barrier, quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
-from relaxtui.solver.radius import Lanczos, RadiusEstimate, RadiusJob
+from relaxtui.solver.radius import Lanczos, RadiusJob, RitzRule
 
 DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
 SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP = range(1, 12)
@@ -189,15 +189,10 @@ class DistributedOperator:
     def new_field(self, initial: np.ndarray | None = None) -> np.ndarray:
         """The working array, as :meth:`relaxtui.solver.assembled.Operator.new_field`, on every rank's strip."""
         from relaxtui.kernels import measure
+        from relaxtui.solver.assembled import initial_values
 
         if initial is not None:
-            if not isinstance(initial, np.ndarray):
-                raise UsageError("the initial field must be a numpy array")
-            if initial.shape != self.shape:
-                raise UsageError(f"the initial field has shape {initial.shape}, the case's grid is {self.shape}")
-            if initial.dtype.kind not in "fiu":
-                raise UsageError(f"the initial field must hold real numbers, not {initial.dtype}")
-            initial = np.ascontiguousarray(initial, dtype=np.float64)
+            initial = initial_values(initial, self.shape)
             row, col = measure.first_bad_initial(self.case.codes, self.kind, initial)
             if row >= 0:
                 raise UsageError(f"the initial field is not finite at interior cell row {int(row)}, column {int(col)}")
@@ -261,17 +256,9 @@ class DistributedOperator:
         self._check_field(u)
         with self.group.collective(FLOWS):
             per_region = self.strip.flows() * self.depth
-        h2 = self.cell_size * self.cell_size
-        source_total = float(sum(self.depth * float(self.source[r]) * h2 * int(self.region_cells[r])
-                                 for r in np.flatnonzero((self.interior != 0) & (self.source != 0.0))))
-        flows = {}
-        for i, r in enumerate(self.case.regions):
-            if r.kind in ("fixed", "flux", "convection"):
-                flows[r.name] = float(per_region[i])
-        total = sum(flows.values()) + source_total
-        scale = sum(abs(v) for v in flows.values()) + abs(source_total)
-        imbalance = abs(total) / scale if scale > 0 else 0.0
-        return flows, source_total, float(imbalance)
+        from relaxtui.solver.assembled import flow_balance, region_source_total
+
+        return flow_balance(self.case.regions, per_region, region_source_total(self))
 
     def finish(self, u) -> np.ndarray:
         """The exported field of the whole grid, gathered on rank 0."""
@@ -319,7 +306,7 @@ class DistributedOperator:
         return rank_bytes(self.shape[0], self.shape[1], method, len(self.case.regions), self.group.comm.Get_size())[0]
 
 
-class DistributedLanczos:
+class DistributedLanczos(RitzRule):
     """Rank 0's handle on a Lanczos estimate whose vectors are split across the ranks.
 
     The interface of :class:`relaxtui.solver.radius.Lanczos` (``advance``,
@@ -349,8 +336,6 @@ class DistributedLanczos:
 
     def advance(self, max_new_steps: int | None = None, stop=None, on_step=None) -> bool:
         """Run steps on every rank; returns ``done``. As :meth:`relaxtui.solver.radius.Lanczos.advance`."""
-        from relaxtui.kernels import spectral
-
         def more(new: int) -> bool:
             return not (self.done or (stop is not None and stop.is_set()) or (max_new_steps is not None and new >= max_new_steps))
 
@@ -360,26 +345,8 @@ class DistributedLanczos:
 
         def decide(alpha: float, beta_new: float):
             nonlocal new
-            self.steps += 1
             new += 1
-            steps = self.steps
-            self.alphas[steps - 1] = alpha
-            top = float(spectral.tridiagonal_extreme(self.alphas, self.betas, steps))
-            self._history.append(top)
-            self.mu = min(max(top, 0.0), 1.0 - 1e-16)
-            back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
-            if len(self._history) > back:
-                old, now = 1.0 - self._history[-1 - back], 1.0 - top
-                if now > 0 and abs(old - now) <= self.rtol * now:
-                    self.settled = self.done = True
-                elif steps >= max(self.min_steps, self.budget * self.method_sweeps(top)):
-                    self.done = True
-            if beta_new <= 1e-14:
-                self.settled = self.done = True
-            if steps >= self.max_steps:
-                self.done = True
-            if not self.done:
-                self.betas[steps - 1] = beta_new
+            self.record_step(alpha, beta_new)
             if on_step is not None:
                 on_step(self)
             return more(new), self.done
@@ -387,9 +354,6 @@ class DistributedLanczos:
         with self.operator.group.collective(LANCZOS_ADVANCE):
             self.operator.strip.lanczos_advance(decide)
         return self.done
-
-    def estimate(self) -> RadiusEstimate:
-        return RadiusEstimate(self.mu, self.steps, self.settled)
 
 
 class DistributedRadiusJob(RadiusJob):

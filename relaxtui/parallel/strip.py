@@ -261,12 +261,12 @@ class Strip:
 
     def flows(self) -> np.ndarray | None:
         """Per region, the flow into the domain through its faces summed over all strips (no depth factor)."""
-        from relaxtui.kernels import halo
+        from relaxtui.kernels import measure
 
         nblk = max(1, min(64, self.n))
-        acc = halo.strip_flows(self.codes, self.up_codes, self.dn_codes, self.has_up, self.has_dn, self.u, self.cls,
-                               *self.segments, self.boundary, self.kind, self.conductivity, self.fixed_conductivity,
-                               self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
+        acc = measure.flows(self.codes, self.up_codes, self.dn_codes, self.has_up, self.has_dn, self.u, self.cls,
+                            *self.segments, self.boundary, self.kind, self.conductivity, self.fixed_conductivity,
+                            self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
         return self.reduce_sum(np.ascontiguousarray(acc.sum(axis=0)))
 
     def summary(self, regions, cell_size: float, block: int = 256):
@@ -290,7 +290,7 @@ class Strip:
 
         from relaxtui.case.model import Case
         from relaxtui.kernels import measure
-        from relaxtui.output.flux import flux
+        from relaxtui.output.flux import flux, largest_flux
 
         n, cols = self.n, self.cols
         ext = np.empty((n + 2, cols))
@@ -318,14 +318,9 @@ class Strip:
             qx, qy = flux(ext[e0:e1], sub)
             own = slice(r0 - e0, r1 - e0)
             qx, qy = qx[own], qy[own]
-            mag = np.hypot(qx, qy)
-            ok = np.isfinite(mag)
-            if not ok.any():
-                continue
-            mag[~ok] = -1.0
-            i, j = divmod(int(np.argmax(mag)), cols)
-            if peak is None or mag[i, j] > peak[0]:  # strictly larger: the first one wins a tie
-                peak = (float(mag[i, j]), float(qx[i, j]), float(qy[i, j]), self.a + r0 - 1 + i, j)
+            top = largest_flux(qx, qy)
+            if top is not None and (peak is None or top[0] > peak[0]):  # strictly larger: the first one wins a tie
+                peak = (*top[:3], self.a + r0 - 1 + top[3], top[4])
         found = self.comm.gather((low, high, peak), root=0)
         if self.rank != 0:
             return None
@@ -422,9 +417,9 @@ class Strip:
         halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
         halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
         halo.largest_bits(np.zeros(1), 0)
-        halo.strip_flows(self.codes[:0], self.up_codes, self.dn_codes, False, False, u, cls, *segs, self.boundary,
-                         self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux, self.coefficient,
-                         self.ambient, self.cell_size, 1)
+        measure.flows(self.codes[:0], self.up_codes, self.dn_codes, False, False, u, cls, *segs, self.boundary,
+                      self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux, self.coefficient,
+                      self.ambient, self.cell_size, 1)
         measure.residual(u[:2], cls[:2], self.table, *segs, np.zeros((1, 1)), False, 1)
         measure.export_field(self.codes[:0], self.kind, u, np.empty((0, self.cols)))
         measure.init_field(self.codes[:0], self.kind, self.value, np.zeros((1, 1)), False, 0.0, u)

@@ -248,13 +248,7 @@ class Operator:
         if initial is None:
             measure.init_field(self.codes, self.kind, self.value, np.zeros((1, 1)), False, self.default_guess(), u)
             return u
-        if not isinstance(initial, np.ndarray):
-            raise UsageError("the initial field must be a numpy array")
-        if initial.shape != self.shape:
-            raise UsageError(f"the initial field has shape {initial.shape}, the case's grid is {self.shape}")
-        if initial.dtype.kind not in "fiu":
-            raise UsageError(f"the initial field must hold real numbers, not {initial.dtype}")
-        values = np.ascontiguousarray(initial, dtype=np.float64)
+        values = initial_values(initial, self.shape)
         if measure.init_field(self.codes, self.kind, self.value, values, True, 0.0, u):
             row, col = measure.first_bad_initial(self.codes, self.kind, values)
             raise UsageError(f"the initial field is not finite at interior cell row {int(row)}, column {int(col)}")
@@ -377,20 +371,11 @@ class Operator:
         from relaxtui.kernels import measure
 
         nblk = max(1, min(FLOW_BLOCKS, self.shape[0]))
-        acc = measure.flows(self.codes, u, self.cls, *self._segments, self._boundary, self.kind, self.conductivity,
+        edge = self.codes[0]  # the whole picture: no neighbour rows above or below it (not read)
+        acc = measure.flows(self.codes, edge, edge, False, False, u, self.cls, *self._segments, self._boundary, self.kind, self.conductivity,
                             self.fixed_conductivity, self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
         per_region = acc.sum(axis=0) * self.depth
-        h2 = self.cell_size * self.cell_size
-        source_total = float(sum(self.depth * float(self.source[r]) * h2 * int(self.region_cells[r])
-                                 for r in np.flatnonzero((self.interior != 0) & (self.source != 0.0))))
-        flows = {}
-        for i, r in enumerate(self.case.regions):
-            if r.kind in ("fixed", "flux", "convection"):
-                flows[r.name] = float(per_region[i])
-        total = sum(flows.values()) + source_total
-        scale = sum(abs(v) for v in flows.values()) + abs(source_total)
-        imbalance = abs(total) / scale if scale > 0 else 0.0
-        return flows, source_total, float(imbalance)
+        return flow_balance(self.case.regions, per_region, region_source_total(self))
 
     def finish(self, u) -> np.ndarray:
         """The exported field: (rows, cols) C-contiguous float64 copy; interior and fixed cells hold values, others NaN."""
@@ -459,6 +444,34 @@ class Operator:
         total = held + field + 8 * self.shape[0] * self.shape[1]
         total += m.buffers * field
         return int(total)
+
+
+def initial_values(initial, shape) -> np.ndarray:
+    """A starting field checked against the grid's ``shape`` (UsageError otherwise): C-contiguous float64."""
+    if not isinstance(initial, np.ndarray):
+        raise UsageError("the initial field must be a numpy array")
+    if initial.shape != shape:
+        raise UsageError(f"the initial field has shape {initial.shape}, the case's grid is {shape}")
+    if initial.dtype.kind not in "fiu":
+        raise UsageError(f"the initial field must hold real numbers, not {initial.dtype}")
+    return np.ascontiguousarray(initial, dtype=np.float64)
+
+
+def region_source_total(op) -> float:
+    """The whole source of an operator whose regions have one source each: sum of depth s h² over their cells."""
+    h2 = op.cell_size * op.cell_size
+    return float(sum(op.depth * float(op.source[r]) * h2 * int(op.region_cells[r])
+                     for r in np.flatnonzero((op.interior != 0) & (op.source != 0.0))))
+
+
+def flow_balance(regions, per_region, source_total: float) -> tuple[dict[str, float], float, float]:
+    """(flow of each fixed, flux or convection region by name, source total, imbalance) from the
+    per-region flows: imbalance = |sum of flows + source| / (sum of |flows| + |source|), 0 when that is 0."""
+    flows = {r.name: float(per_region[i]) for i, r in enumerate(regions) if r.kind in ("fixed", "flux", "convection")}
+    total = sum(flows.values()) + source_total
+    scale = sum(abs(v) for v in flows.values()) + abs(source_total)
+    imbalance = abs(total) / scale if scale > 0 else 0.0
+    return flows, source_total, float(imbalance)
 
 
 def _finite(x, what: str) -> float:

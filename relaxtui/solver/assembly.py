@@ -131,16 +131,21 @@ class Physics:
 
     # --- the class path ---------------------------------------------------------------------
 
-    def _class_table(self) -> None:
-        op = self.op
+    def _key_regions(self, keys: np.ndarray):
+        """(rp, rn, rs, rw, re): the cell's and its four neighbours' region codes packed in class keys
+        (digits in base border + 1, east lowest); ``keys`` is not changed."""
         base = self.border + 1
-        keys = op.class_keys[1:].copy()
+        k = keys.copy()
         regs = []
         for _ in range(4):
-            regs.append(keys % base)
-            keys //= base
+            regs.append(k % base)
+            k //= base
         re, rw, rs, rn = regs
-        rp = keys
+        return k, rn, rs, rw, re
+
+    def _class_table(self) -> None:
+        op = self.op
+        rp, rn, rs, rw, re = self._key_regions(op.class_keys[1:])
         nbrs = (rn, rs, rw, re)
         d = np.zeros(rp.shape[0])
         b = np.zeros(rp.shape[0])
@@ -327,15 +332,8 @@ class Physics:
         pair = inner.astype(np.int64) * cols + np.arange(cols, dtype=np.int64)[None, :]
         pairs, inverse = np.unique(pair[live], return_inverse=True)
         v1_class, column = pairs // cols, pairs % cols
-        base = self.border + 1
         keys = op.class_keys[v1_class]
-        k = keys.copy()
-        regs = []
-        for _ in range(4):
-            regs.append(k % base)
-            k //= base
-        re, rw, rs, rn = regs
-        rp = k
+        rp, rn, rs, rw, re = self._key_regions(keys)
         d = np.zeros(pairs.shape[0])
         b = np.zeros(pairs.shape[0])
         gs = []
@@ -414,14 +412,9 @@ class Physics:
         per_region = acc[: self.border] * self.flow_scale
         h2 = self.h * self.h
         source_total = float(np.sum(self.cell_sources()[ii, jj] * self.volume_factor(jj)) * h2 * self.flow_scale)
-        flows = {}
-        for i, r in enumerate(self.case.regions):
-            if r.kind in ("fixed", "flux", "convection"):
-                flows[r.name] = float(per_region[i])
-        total = sum(flows.values()) + source_total
-        scale = sum(abs(v) for v in flows.values()) + abs(source_total)
-        imbalance = abs(total) / scale if scale > 0 else 0.0
-        return flows, source_total, float(imbalance)
+        from relaxtui.solver.assembled import flow_balance
+
+        return flow_balance(self.case.regions, per_region, source_total)
 
 
 def _harmonic(a, b):

@@ -139,6 +139,9 @@ def _multigrid():
 
 
 _SEGMENTED = ("u", "cls", "table", "segments")
+# what both SOR orderings share: the meaning of ω, Young's automatic ω and factor (young.py)
+_SOR = dict(omega_meaning="relaxation factor", needs_radius=True, auto=young.optimal_omega,
+            auto_note="2/(1+sqrt(1-radius^2))", factor=young.sor_factor, invert=young.mu_from_sor_factor)
 
 METHODS: dict[str, Method] = {
     "jacobi": Method(
@@ -165,26 +168,16 @@ METHODS: dict[str, Method] = {
     "sor": Method(
         "sor", "sor",
         "lexicographic successive over-relaxation, serial",
-        "relaxation factor",
-        needs_radius=True,
-        auto=young.optimal_omega,
-        auto_note="2/(1+sqrt(1-radius^2))",
-        factor=young.sor_factor,
         parallel=False,
         kernel=Kernel("sweeps", "sor_lexicographic", None, ("u", "cls", "table")),
-        invert=young.mu_from_sor_factor,
+        **_SOR,
     ),
     "red-black-sor": Method(
         "red-black-sor", "rb-sor",
         "red-black SOR (omega 1: red-black Gauss-Seidel), parallel",
-        "relaxation factor",
-        needs_radius=True,
-        auto=young.optimal_omega,
-        auto_note="2/(1+sqrt(1-radius^2))",
-        factor=young.sor_factor,
         parallel=True,
         kernel=Kernel("sweeps", "sor_red_black_serial", "sor_red_black", _SEGMENTED),
-        invert=young.mu_from_sor_factor,
+        **_SOR,
     ),
     "multigrid": Method(
         "multigrid", "mgrid",

@@ -23,7 +23,44 @@ class RadiusEstimate:
     settled: bool  # whether the estimate stopped moving before the step limit
 
 
-class Lanczos:
+class RitzRule:
+    """The stopping rule of a Lanczos estimate, shared by one process's :class:`Lanczos` and the
+    distributed one (:class:`relaxtui.parallel.group.DistributedLanczos`).
+
+    A subclass sets ``steps``, ``mu``, ``settled``, ``done``, ``_history``, the (max_steps,)
+    arrays ``alphas`` and ``betas``, and the options ``min_steps``, ``max_steps``, ``budget``,
+    ``rtol`` and ``method_sweeps`` (see :class:`Lanczos`).
+    """
+
+    def record_step(self, alpha: float, beta_new: float) -> None:
+        """Take one step's coefficients: update ``mu`` and decide ``settled`` / ``done``."""
+        from relaxtui.kernels import spectral
+
+        self.steps += 1
+        steps = self.steps
+        self.alphas[steps - 1] = alpha
+        top = float(spectral.tridiagonal_extreme(self.alphas, self.betas, steps))
+        self._history.append(top)
+        self.mu = min(max(top, 0.0), 1.0 - 1e-16)
+        back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
+        if len(self._history) > back:
+            old, now = 1.0 - self._history[-1 - back], 1.0 - top
+            if now > 0 and abs(old - now) <= self.rtol * now:
+                self.settled = self.done = True
+            elif steps >= max(self.min_steps, self.budget * self.method_sweeps(top)):
+                self.done = True
+        if beta_new <= 1e-14:
+            self.settled = self.done = True
+        if steps >= self.max_steps:
+            self.done = True
+        if not self.done:
+            self.betas[steps - 1] = beta_new
+
+    def estimate(self) -> RadiusEstimate:
+        return RadiusEstimate(self.mu, self.steps, self.settled)
+
+
+class Lanczos(RitzRule):
     """A resumable Lanczos estimate of ρ(J): :meth:`advance` runs steps until the estimate
     settles, the step limit is hit, a step budget is spent or ``stop`` is set.
 
@@ -88,27 +125,10 @@ class Lanczos:
             self.apply(self.v, self.w)
             alpha = k.d_dot(self.w, self.v, self.cls, self.diag)
             beta_new = k.d_orthogonalise(self.w, self.v, alpha, self.v_prev, self.beta, self.cls, self.diag)
-            self.steps += 1
             new += 1
-            steps = self.steps
-            self.alphas[steps - 1] = alpha
-            top = float(k.tridiagonal_extreme(self.alphas, self.betas, steps))
-            self._history.append(top)
-            self.mu = min(max(top, 0.0), 1.0 - 1e-16)
-            back = max(20, steps // 4)  # Ritz values can stall for a while, then move again
-            if len(self._history) > back:
-                old, now = 1.0 - self._history[-1 - back], 1.0 - top
-                if now > 0 and abs(old - now) <= self.rtol * now:
-                    self.settled = self.done = True
-                elif steps >= max(self.min_steps, self.budget * self.method_sweeps(top)):
-                    self.done = True
-            if beta_new <= 1e-14:
-                self.settled = self.done = True
-            if steps >= self.max_steps:
-                self.done = True
+            self.record_step(alpha, beta_new)
             if not self.done:
                 self.beta = beta_new
-                self.betas[steps - 1] = beta_new
                 self.v_prev, self.v = self.v, self.v_prev
                 k.scale_into(self.w, 1.0 / beta_new, self.v)
             if on_step is not None:
@@ -116,9 +136,6 @@ class Lanczos:
         if self.done:
             self.v = self.v_prev = self.w = None  # the vectors are not needed any more
         return self.done
-
-    def estimate(self) -> RadiusEstimate:
-        return RadiusEstimate(self.mu, self.steps, self.settled)
 
 
 def jacobi_radius(apply, cls: np.ndarray, diag: np.ndarray, **options) -> RadiusEstimate:
