@@ -318,17 +318,9 @@ class DistributedLanczos(RitzRule):
 
     def __init__(self, operator: "DistributedOperator", method_sweeps=None):
         p = {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
-        self.min_steps, self.max_steps = int(p["min_steps"]), int(p["max_steps"])
-        self.budget, self.rtol = float(p["budget"]), float(p["rtol"])
-        self.method_sweeps = method_sweeps if method_sweeps is not None else p["method_sweeps"]
+        super().__init__(p["min_steps"], p["max_steps"], p["budget"], p["rtol"],
+                         method_sweeps if method_sweeps is not None else p["method_sweeps"])
         self.operator = operator
-        self.steps = 0
-        self.mu = 0.0
-        self.settled = False
-        self.done = False
-        self._history: list[float] = []
-        self.alphas = np.zeros(self.max_steps)
-        self.betas = np.zeros(self.max_steps)
         with operator.group.collective(LANCZOS_BEGIN):
             norm = operator.strip.lanczos_begin()
         if norm == 0.0:

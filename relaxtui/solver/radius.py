@@ -27,10 +27,20 @@ class RitzRule:
     """The stopping rule of a Lanczos estimate, shared by one process's :class:`Lanczos` and the
     distributed one (:class:`relaxtui.parallel.group.DistributedLanczos`).
 
-    A subclass sets ``steps``, ``mu``, ``settled``, ``done``, ``_history``, the (max_steps,)
-    arrays ``alphas`` and ``betas``, and the options ``min_steps``, ``max_steps``, ``budget``,
-    ``rtol`` and ``method_sweeps`` (see :class:`Lanczos`).
+    The options are those of :class:`Lanczos`; the state is ``steps``, ``mu``, ``settled``,
+    ``done`` and the (max_steps,) tridiagonal coefficients ``alphas`` and ``betas``.
     """
+
+    def __init__(self, min_steps, max_steps, budget, rtol, method_sweeps):
+        self.min_steps, self.max_steps, self.budget, self.rtol = int(min_steps), int(max_steps), float(budget), float(rtol)
+        self.method_sweeps = method_sweeps
+        self.steps = 0
+        self.mu = 0.0
+        self.settled = False
+        self.done = False
+        self._history: list[float] = []
+        self.alphas = np.zeros(self.max_steps)
+        self.betas = np.zeros(self.max_steps)
 
     def record_step(self, alpha: float, beta_new: float) -> None:
         """Take one step's coefficients: update ``mu`` and decide ``settled`` / ``done``."""
@@ -89,15 +99,9 @@ class Lanczos(RitzRule):
                  budget: float = 0.6, rtol: float = 0.01, method_sweeps=_sor_sweeps):
         from relaxtui.kernels import spectral
 
+        super().__init__(min_steps, max_steps, budget, rtol, method_sweeps)
         self._k = spectral
         self.apply, self.cls, self.diag = apply, cls, diag
-        self.min_steps, self.max_steps, self.budget, self.rtol = int(min_steps), int(max_steps), float(budget), float(rtol)
-        self.method_sweeps = method_sweeps
-        self.steps = 0
-        self.mu = 0.0
-        self.settled = False
-        self.done = False
-        self._history: list[float] = []
         self.v = np.empty(cls.shape)
         norm = spectral.start_vector(cls, diag, self.v)
         if norm == 0.0:
@@ -108,8 +112,6 @@ class Lanczos(RitzRule):
         spectral.scale_into(self.v, 1.0 / norm, self.v)
         self.v_prev = np.zeros_like(self.v)
         self.w = np.empty_like(self.v)
-        self.alphas = np.zeros(self.max_steps)
-        self.betas = np.zeros(self.max_steps)
         self.beta = 0.0
 
     def advance(self, max_new_steps: int | None = None, stop=None, on_step=None) -> bool:
