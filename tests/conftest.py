@@ -1,0 +1,30 @@
+"""Session set-up shared by every test file: warm the numba cache on the idle core.
+
+See warm_kernels.py. Set RELAXTUI_TEST_NO_WARM=1 to run without it (for
+measuring the suite's own compile time, for instance).
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+_WARMER: subprocess.Popen | None = None
+
+
+def pytest_sessionstart(session) -> None:
+    global _WARMER
+    if os.environ.get("RELAXTUI_TEST_NO_WARM") or os.environ.get("NUMBA_DISABLE_JIT"):
+        return
+    script = Path(__file__).with_name("warm_kernels.py")
+    env = dict(os.environ, NUMBA_NUM_THREADS="1")
+    _WARMER = subprocess.Popen([sys.executable, str(script)], stdin=subprocess.DEVNULL,
+                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+
+
+def pytest_sessionfinish(session, exitstatus) -> None:
+    if _WARMER is not None and _WARMER.poll() is None:
+        _WARMER.kill()
+        _WARMER.wait()

@@ -1,0 +1,50 @@
+"""Compile the numba kernels into the disk cache beside the test session.
+
+With a cold cache most of the suite's time is numba compiling kernels, one
+at a time, in the pytest process, while the second core waits. conftest.py
+starts this script in a child process at the beginning of the session: it
+runs every method and output path once on small demo cases, so that numba
+writes the compiled kernels to its disk cache (``cache=True``) and the tests
+load them instead of compiling them again. numba writes its cache files by
+rename, so the two processes never see a half-written entry; a kernel both
+reach at once is simply compiled twice.
+
+The order is roughly the reverse of the tests' first use (the pytest process
+compiles the early ones itself), so the two processes meet late. This file
+asserts nothing: it is a cache warmer, not a test.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import sys
+import tempfile
+from pathlib import Path
+
+GRIDS = Path(__file__).resolve().parent.parent / "grids"
+METHODS = ("multigrid", "symmetric-sor", "jacobi", "sor", "gauss-seidel", "red-black-sor")
+
+
+def main() -> int:
+    from relaxtui.cli import main as cli
+
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp)
+        for case in ("electrodes", "composite", "power-module", "well-drawdown", "heat-spreader"):
+            toml = GRIDS / f"{case}.toml"
+            if not toml.exists():
+                continue
+            for method in METHODS:
+                stem = out / f"{case}-{method}"
+                argv = ["solve", str(toml), "--method", method, "--max-sweeps", "3", "-q",
+                        "--out", f"{stem}.npy", "--report", f"{stem}.json", "--history", f"{stem}.csv",
+                        "--picture", f"{stem}.png", "--isolines", "4", "--bundle", f"{stem}.npz"]
+                with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+                    with contextlib.suppress(Exception, SystemExit):
+                        cli(argv)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
