@@ -199,3 +199,39 @@ def hot_cold_toml(mask: str, *, head: str = "", interior: str = "", void: bool =
     if void:
         parts.append('[[region]]\nname = "void"\ncolor = "#000000"\nkind = "outside"\n')
     return "".join(p if p.endswith("\n") else p + "\n" for p in parts)
+
+
+def toml_value(value) -> str:
+    """A TOML literal for a test value: strings quoted, booleans in lower case, lists bracketed."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return f'"{value}"'
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(toml_value(v) for v in value) + "]"
+    return str(value)
+
+
+def region_toml(color: str, kind: str, name: str | None = None, **keys) -> str:
+    """One ``[[region]]`` table of a case file (the contract's keys, case-format.md): name (if any),
+    color, kind, then ``keys`` in the order given; ends with a newline."""
+    lines = ["[[region]]"] + ([f'name = "{name}"'] if name is not None else []) + [f'color = "{color}"', f'kind = "{kind}"']
+    lines += [f"{key} = {toml_value(value)}" for key, value in keys.items()]
+    return "\n".join(lines) + "\n"
+
+
+def number_unknowns(case) -> tuple[np.ndarray, int]:
+    """(index, count): index[row, col] numbers the interior cells row by row from 0, -1 elsewhere.
+
+    Only the numbering of the unknowns, shared by the independent assemblies of tests/exact.py and
+    tests/exact_fraction.py; each builds its own coefficients.
+    """
+    codes = case.codes
+    index = -np.ones(codes.shape, dtype=np.int64)
+    count = 0
+    for i in range(codes.shape[0]):
+        for j in range(codes.shape[1]):
+            if case.regions[int(codes[i, j])].kind == "interior":
+                index[i, j] = count
+                count += 1
+    return index, count

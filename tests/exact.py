@@ -23,6 +23,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse
 import scipy.sparse.linalg
+from cases import number_unknowns
 
 STEPS = ((-1, 0), (1, 0), (0, -1), (0, 1))  # north, south, west, east
 
@@ -125,13 +126,7 @@ def assemble(case):
     codes = case.codes
     rows, cols = codes.shape
     h = float(case.cell_size)
-    index = -np.ones((rows, cols), dtype=np.int64)
-    count = 0
-    for i in range(rows):
-        for j in range(cols):
-            if case.regions[int(codes[i, j])].kind == "interior":
-                index[i, j] = count
-                count += 1
+    index, count = number_unknowns(case)
     data, ri, ci = [], [], []
     b = np.zeros(count)
     for i in range(rows):

@@ -15,6 +15,7 @@ from __future__ import annotations
 from fractions import Fraction
 
 import numpy as np
+from cases import number_unknowns
 
 STEPS = ((-1, 0), (1, 0), (0, -1), (0, 1))
 
@@ -40,13 +41,7 @@ def assemble(case):
     codes = case.codes
     rows, cols = codes.shape
     h = _q(case.cell_size)
-    index = -np.ones((rows, cols), dtype=np.int64)
-    n = 0
-    for i in range(rows):
-        for j in range(cols):
-            if case.regions[int(codes[i, j])].kind == "interior":
-                index[i, j] = n
-                n += 1
+    index, n = number_unknowns(case)
     A = [dict() for _ in range(n)]
     b = [Fraction(0)] * n
     for i in range(rows):

@@ -31,15 +31,8 @@ REPO = Path(__file__).resolve().parents[1]
 
 W, R, K, B = (255, 255, 255), (255, 0, 0), (0, 0, 0), (0, 0, 255)
 # R fixed column on the left, W interior, B one flux cell, K outside column on the right
-PICTURE = np.array(
-    [
-        [R, W, W, W, W, K],
-        [R, W, W, W, W, K],
-        [R, W, B, W, W, K],
-        [R, W, W, W, W, K],
-    ],
-    np.uint8,
-)
+PICTURE = np.array([[R, W, W, W, W, K]] * 4, np.uint8)
+PICTURE[2, 2] = B
 REGIONS = """
 [[region]]
 color = "#ffffff"
@@ -178,28 +171,7 @@ def test_default_names_count_every_region_of_the_kind(tmp_path):
 def test_omega_auto_and_transparent_any_case(tmp_path):
     rgba = np.concatenate([PICTURE, np.full(PICTURE.shape[:2] + (1,), 255, np.uint8)], axis=2)
     rgba[:, 5, 3] = 0  # the right column is transparent
-    body = """
-    [solver]
-    omega = "auto"
-
-    [[region]]
-    color = "#ffffff"
-    kind = "interior"
-
-    [[region]]
-    color = "#ff0000"
-    kind = "fixed"
-    value = 1
-
-    [[region]]
-    color = "Transparent"
-    kind = "outside"
-
-    [[region]]
-    color = "#0000ff"
-    kind = "flux"
-    flux = 2
-    """
+    body = '[solver]\nomega = "auto"\n' + REGIONS.replace('color = "#000000"', 'color = "Transparent"')
     case = load_case(write_case(tmp_path, body, rgb=rgba))
     assert case.solver.omega == "auto"
     assert case.regions[2].color == "transparent"

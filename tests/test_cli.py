@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from cases import region_toml
 from exact import exact_solution
 from PIL import Image
 
@@ -38,35 +39,13 @@ cell_size = 0.01
 method = "red-black-sor"
 tolerance = 1e-3
 
-[[region]]
-name = "plate"
-color = "#ffffff"
-kind = "interior"
-conductivity = 2.0
-
-[[region]]
-name = "hot"
-color = "#ff0000"
-kind = "fixed"
-value = 100.0
-
-[[region]]
-name = "cold"
-color = "#0000ff"
-kind = "fixed"
-value = 0.0
-
-[[region]]
-name = "air"
-color = "#00ff00"
-kind = "convection"
-coefficient = 50.0
-ambient = 20.0
-
-[[region]]
-color = "#000000"
-kind = "outside"
-"""
+""" + "\n".join([
+    region_toml("#ffffff", "interior", "plate", conductivity=2.0),
+    region_toml("#ff0000", "fixed", "hot", value=100.0),
+    region_toml("#0000ff", "fixed", "cold", value=0.0),
+    region_toml("#00ff00", "convection", "air", coefficient=50.0, ambient=20.0),
+    region_toml("#000000", "outside"),
+])
 
 
 def write_plate(folder: Path, rows=30, cols=40) -> Path:

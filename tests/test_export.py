@@ -8,6 +8,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
+from cases import region_toml
 from PIL import Image
 
 from relaxtui import export
@@ -518,9 +519,8 @@ def write_case_files(folder: Path):
     Image.fromarray(mask).save(folder / "wall.png")
     (folder / "wall.toml").write_text(
         'quantity = "temperature"\nunit = "°C"\nmask = "wall.png"\ncell_size = 0.01\n'
-        '[[region]]\ncolor = "#ffffff"\nkind = "interior"\n'
-        '[[region]]\ncolor = "#ff0000"\nkind = "fixed"\nvalue = 80.0\n'
-        '[[region]]\ncolor = "#0000ff"\nkind = "fixed"\nvalue = 20.0\n',
+        + region_toml("#ffffff", "interior") + region_toml("#ff0000", "fixed", value=80.0)
+        + region_toml("#0000ff", "fixed", value=20.0),
         encoding="utf-8",
     )
     return folder / "wall.toml"

@@ -13,6 +13,7 @@ import re
 from pathlib import Path
 
 import numpy as np
+from cases import region_toml
 from PIL import Image
 from rich.console import Console
 
@@ -126,9 +127,7 @@ def test_info_command_on_a_case_file(tmp_path, capsys, monkeypatch):
     Image.fromarray(rgb).save(tmp_path / "bar.png")
     (tmp_path / "bar.toml").write_text(
         'title = "A bar"\nmask = "bar.png"\ncell_size = 0.5\n'
-        '[[region]]\ncolor = "#ffffff"\nkind = "interior"\n'
-        '[[region]]\ncolor = "#ff0000"\nkind = "fixed"\nvalue = 1\n'
-        '[[region]]\ncolor = "#000000"\nkind = "outside"\n',
+        + region_toml("#ffffff", "interior") + region_toml("#ff0000", "fixed", value=1) + region_toml("#000000", "outside"),
         encoding="utf-8",
     )
     assert main(["info", str(tmp_path / "bar.toml")]) == 0

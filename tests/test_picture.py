@@ -230,15 +230,21 @@ def test_16_bit_alpha_is_reduced_before_the_alpha_test(tmp_path):
     np.testing.assert_array_equal(codes, [[1, 0]])
 
 
-def test_unmatched_colours_are_listed(tmp_path):
-    rgb = np.zeros((3, 4, 3), np.uint8)
-    rgb[1, 2] = (0x12, 0x34, 0x56)
-    rgb[2, 0:3] = (0xAB, 0xCD, 0xEF)
+def unmatched_message(tmp_path, rgb):
+    """The error a picture with colours no region matches (only "#000000" declared) raises; it is one line."""
     Image.fromarray(rgb).save(tmp_path / "u.png")
     with pytest.raises(CaseError) as err:
         codes_of(tmp_path / "u.png", ["#000000"])
     msg = str(err.value)
     assert "\n" not in msg
+    return msg
+
+
+def test_unmatched_colours_are_listed(tmp_path):
+    rgb = np.zeros((3, 4, 3), np.uint8)
+    rgb[1, 2] = (0x12, 0x34, 0x56)
+    rgb[2, 0:3] = (0xAB, 0xCD, 0xEF)
+    msg = unmatched_message(tmp_path, rgb)
     assert "2 colours match no region" in msg
     assert "#123456 in 1 pixels (first at row 1, column 2)" in msg
     assert "#abcdef in 3 pixels (first at row 2, column 0)" in msg
@@ -249,11 +255,7 @@ def test_unmatched_colours_are_listed(tmp_path):
 def test_many_unmatched_colours_keep_one_line(tmp_path):
     rgb = np.zeros((10, 10, 3), np.uint8)
     rgb[:, :, 0] = np.arange(100).reshape(10, 10) + 1
-    Image.fromarray(rgb).save(tmp_path / "m.png")
-    with pytest.raises(CaseError) as err:
-        codes_of(tmp_path / "m.png", ["#000000"])
-    msg = str(err.value)
-    assert "\n" not in msg
+    msg = unmatched_message(tmp_path, rgb)
     assert "100 colours match no region" in msg
     assert f"and {100 - picture.LIST_LIMIT} more colours in {100 - picture.LIST_LIMIT} pixels" in msg
 

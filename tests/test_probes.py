@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from cases import fixed, interior, outside
+from cases import fixed, interior, outside, region_toml
 from relaxtui.case.loader import build_case
 from relaxtui.case.physics import Probe
 from relaxtui.cli import main
@@ -56,24 +56,8 @@ def _plate(tmp_path, probes=True):
     a[0] = (0, 0, 255)
     a[-1] = (255, 0, 0)
     Image.fromarray(a).save(tmp_path / "m.png")
-    text = """\
-    mask = "m.png"
-    cell_size = 0.01
-    [[region]]
-    name = "plate"
-    color = "#ffffff"
-    kind = "interior"
-    [[region]]
-    name = "cold"
-    color = "#0000ff"
-    kind = "fixed"
-    value = 0.0
-    [[region]]
-    name = "hot"
-    color = "#ff0000"
-    kind = "fixed"
-    value = 11.0
-    """
+    text = ('mask = "m.png"\ncell_size = 0.01\n' + region_toml("#ffffff", "interior", "plate")
+            + region_toml("#0000ff", "fixed", "cold", value=0.0) + region_toml("#ff0000", "fixed", "hot", value=11.0))
     if probes:
         text += '[[probe]]\nname = "middle"\nx = 0.08\ny = 0.06\n[[probe]]\nname = "near hot"\nx = 0.08\ny = 0.015\n'
     p = tmp_path / "c.toml"

@@ -6,6 +6,7 @@ cleanly with exit status 0.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import sys
 from pathlib import Path
@@ -17,26 +18,36 @@ pexpect = pytest.importorskip("pexpect")
 from test_tui import make_plate  # noqa: E402
 
 
-def test_open_run_reaches_converged_in_a_terminal(tmp_path):
+@contextlib.contextmanager
+def relaxtui_open(tmp_path, *options):
+    """The real ``relaxtui open OPTIONS CASE`` on test_tui's plate in an 80 x 24 pseudo-terminal.
+
+    Yields (child, screen log path); afterwards the child is closed and must have exited with status 0.
+    """
     case = make_plate(tmp_path)
     exe = Path(sys.executable).with_name("relaxtui")
     if not exe.exists():
         pytest.skip("the relaxtui script is not installed next to this Python")
     env = {k: v for k, v in os.environ.items() if k != "NO_COLOR"}
     env.update(TERM="xterm-256color", COLUMNS="80", LINES="24")
-    child = pexpect.spawn(str(exe), ["open", "--run", str(case)], dimensions=(24, 80), env=env, encoding="utf-8", timeout=240, cwd=str(tmp_path))
+    child = pexpect.spawn(str(exe), ["open", *options, str(case)], dimensions=(24, 80), env=env, encoding="utf-8", timeout=240, cwd=str(tmp_path))
     log = tmp_path / "screen.log"
     child.logfile_read = open(log, "w", encoding="utf-8")
     try:
+        yield child, log
+    finally:
+        child.close(force=True)
+        child.logfile_read.close()
+    assert child.exitstatus == 0, child.before
+
+
+def test_open_run_reaches_converged_in_a_terminal(tmp_path):
+    with relaxtui_open(tmp_path, "--run") as (child, log):
         # the stopping rule in words reaches the status strip (the generous timeout guards a
         # first kernel compilation; it is no speed check)
         child.expect("equilibrium reached")
         child.send("q")
         child.expect(pexpect.EOF)
-    finally:
-        child.close(force=True)
-        child.logfile_read.close()
-    assert child.exitstatus == 0, child.before
     assert "converged" in log.read_text(encoding="utf-8")
 
 
@@ -49,21 +60,12 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
     """
     import json
 
-    case = make_plate(tmp_path)
-    exe = Path(sys.executable).with_name("relaxtui")
-    if not exe.exists():
-        pytest.skip("the relaxtui script is not installed next to this Python")
-    env = {k: v for k, v in os.environ.items() if k != "NO_COLOR"}
-    env.update(TERM="xterm-256color", COLUMNS="80", LINES="24")
-    child = pexpect.spawn(str(exe), ["open", str(case)], dimensions=(24, 80), env=env, encoding="utf-8", timeout=240, cwd=str(tmp_path))
-    log = tmp_path / "screen.log"
-    child.logfile_read = open(log, "w", encoding="utf-8")
+    with relaxtui_open(tmp_path) as (child, _log):
 
-    def key(text: str, then: str) -> None:
-        child.send(text)
-        child.expect(then)
+        def key(text: str, then: str) -> None:
+            child.send(text)
+            child.expect(then)
 
-    try:
         child.expect("ready")
         # the method (m, left arrow: sor), Enter and start, in one burst
         key("m\x1b[D\rs", "run #1 converged")
@@ -77,10 +79,6 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
         key("\r", "exported")
         child.send("q")
         child.expect(pexpect.EOF)
-    finally:
-        child.close(force=True)
-        child.logfile_read.close()
-    assert child.exitstatus == 0, child.before
     report = json.loads((tmp_path / "plate.run2.report.json").read_text(encoding="utf-8"))
     assert report["omega"] == 1.9 and report["status"] == "converged" and report["method"] == "sor"
     assert (tmp_path / "plate.run2.field.npy").exists() and (tmp_path / "plate.run2.history.csv").exists()

@@ -6,7 +6,6 @@ plate is the one of tests/test_tui.py (top edge hot, the rest cold).
 
 from __future__ import annotations
 
-import asyncio
 import re
 import threading
 
@@ -19,7 +18,6 @@ from textual.widgets import Input  # noqa: E402
 
 from relaxtui.output.text import GROUP  # noqa: E402
 from relaxtui.solver.driver import Run  # noqa: E402
-from relaxtui.tui.app import RelaxApp  # noqa: E402
 from relaxtui.tui.banner import Banner  # noqa: E402
 from relaxtui.tui.dialogs import ConfirmQuit  # noqa: E402
 from relaxtui.tui.fieldview import FieldView  # noqa: E402
@@ -28,7 +26,7 @@ from relaxtui.tui.omega_study import OmegaPanel, OmegaPlot  # noqa: E402
 from relaxtui.tui.params import ParamsPanel  # noqa: E402
 from relaxtui.tui.runs import COLUMNS, RunsPanel  # noqa: E402
 from relaxtui.tui.timing import TimingPanel  # noqa: E402
-from test_tui import finished, loaded, make_plate, status_text, wait_for  # noqa: E402
+from test_tui import finished, make_plate, pilot_test, status_text, stop, wait_for  # noqa: E402
 
 CONVECTION = """
 [[region]]
@@ -38,17 +36,6 @@ kind = "convection"
 coefficient = 10.0
 ambient = 500.0
 """
-
-
-def pilot_test(case, body, size=(80, 24), **app_kwargs):
-    async def scenario():
-        app = RelaxApp(case, **app_kwargs)
-        async with app.run_test(size=size) as pilot:
-            await loaded(pilot, app)
-            await body(pilot, app)
-        return app
-
-    return asyncio.run(scenario())
 
 
 async def type_into(pilot, app, key: str, text: str, enter: bool = True) -> None:
@@ -212,8 +199,7 @@ def test_paused_reads_paused_everywhere(tmp_path):
         # the field shown is the paused field: the same sweep as the banner
         assert "paused" in title and f"sweep {rec.sweeps_text()}" in title and rec.sweeps_text() in banner_text(app)
         assert "paused" in status_text(app) and "running" not in status_text(app)
-        await pilot.press("x")
-        await finished(pilot, app, 1)
+        await stop(pilot, app, 1)
 
     pilot_test(make_plate(tmp_path, n=300, method="jacobi", tolerance=1e-10), body)
 
@@ -226,8 +212,7 @@ def test_to_go_is_ended_by_the_sweep_limit(tmp_path):
         await pilot.pause(0.1)
         assert re.search(r"ends by\s+sweep limit", timing_text(app))
         assert "sweeps to go" in status_text(app) and "sweep limit" in status_text(app)
-        await pilot.press("x")
-        await finished(pilot, app, 1)
+        await stop(pilot, app, 1)
 
     pilot_test(make_plate(tmp_path, n=60, method="jacobi", tolerance=1e-10), body, max_sweeps=3000)
 
@@ -360,8 +345,7 @@ def test_update_view_while_running_is_the_change_per_sweep(tmp_path):
                        and np.isfinite(app.records[0].frames["update"].values).any(), "an update frame")
         frame = app.records[0].frames["update"]
         assert frame.mode == "update" and np.nanmax(np.abs(frame.values)) > 0
-        await pilot.press("x")
-        await finished(pilot, app, 1)
+        await stop(pilot, app, 1)
 
     pilot_test(make_plate(tmp_path, n=60, method="jacobi", tolerance=1e-10), body)
 
@@ -398,8 +382,7 @@ def test_a_scan_is_cancelled_with_x(tmp_path):
         await pilot.press("r", *"1.0:1.9:0.05", "enter")
         await wait_for(pilot, lambda: app.active is not None and app.active.status == "running", "the first scan run")
         started = len(app.records)
-        await pilot.press("x")
-        await finished(pilot, app, started)
+        await stop(pilot, app, started)
         await pilot.pause(0.2)
         assert app.scan == [] and app.active is None and len(app.records) == started
         assert app.records[-1].status == "cancelled"

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
+from cases import region_toml
 from relaxtui.case import load_case
 from relaxtui.cli import main
 
@@ -25,26 +26,7 @@ def _case(tmp_path, geometry=None):
     mask = "m.png"
     cell_size = 0.01
     {'geometry = "' + geometry + '"' if geometry else ''}
-    [[region]]
-    name = "laminate"
-    color = "#ffffff"
-    kind = "interior"
-    conductivity = [8.0, 0.5]
-    [[region]]
-    name = "filler"
-    color = "#00ff00"
-    kind = "interior"
-    conductivity_map = "k.npy"
-    [[region]]
-    name = "cold"
-    color = "#0000ff"
-    kind = "fixed"
-    value = 0.0
-    [[region]]
-    name = "hot"
-    color = "#ff0000"
-    kind = "fixed"
-    value = 5.0
+    {{regions}}
     [[contact]]
     between = ["laminate", "filler"]
     resistance = 0.002
@@ -53,8 +35,11 @@ def _case(tmp_path, geometry=None):
     x = 0.06
     y = 0.05
     """
+    regions = (region_toml("#ffffff", "interior", "laminate", conductivity=[8.0, 0.5])
+               + region_toml("#00ff00", "interior", "filler", conductivity_map="k.npy")
+               + region_toml("#0000ff", "fixed", "cold", value=0.0) + region_toml("#ff0000", "fixed", "hot", value=5.0))
     p = tmp_path / "c.toml"
-    p.write_text(textwrap.dedent(text))
+    p.write_text(textwrap.dedent(text).replace("{regions}\n", regions))
     return p
 
 
