@@ -20,7 +20,6 @@ and a NaN still wins.
 import numpy as np
 from numba import prange
 from relaxtui.kernels._bits import abs_bits
-from relaxtui.kernels.measure import flows as strip_flows  # noqa: F401 - one flows kernel: a strip passes its neighbour rows
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.sweeps import _colour_row, _jacobi_rows
 

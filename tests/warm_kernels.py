@@ -40,6 +40,8 @@ def main() -> int:
                 argv = ["solve", str(toml), "--method", method, "--max-sweeps", "3", "-q",
                         "--out", f"{stem}.npy", "--report", f"{stem}.json", "--history", f"{stem}.csv",
                         "--picture", f"{stem}.png", "--isolines", "4", "--bundle", f"{stem}.npz"]
+                if method == "red-black-sor":  # the starting-field check
+                    argv += ["--initial", str(out / f"{case}-multigrid.npy")]
                 with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
                     with contextlib.suppress(Exception, SystemExit):
                         cli(argv)
