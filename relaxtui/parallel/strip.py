@@ -296,7 +296,7 @@ class Strip:
         ext = np.empty((n + 2, cols))
         measure.export_field(self.codes, self.kind, self.u, ext[1 : n + 1])
         self.exchange(ext)
-        top = 0 if self.has_up else 1
+        first = 0 if self.has_up else 1
         bottom = n + 2 if self.has_dn else n + 1
         codes = np.empty((n + 2, cols), dtype=self.codes.dtype)
         codes[0], codes[1 : n + 1], codes[n + 1] = self.up_codes, self.codes, self.dn_codes
@@ -313,7 +313,7 @@ class Strip:
         peak = None
         for r0 in range(1, n + 1, block):
             r1 = min(r0 + block, n + 1)
-            e0, e1 = max(r0 - 1, top), min(r1 + 1, bottom)
+            e0, e1 = max(r0 - 1, first), min(r1 + 1, bottom)
             sub = Case(path=None, mask_path=Path("strip"), regions=regions, codes=codes[e0:e1], cell_size=cell_size)
             qx, qy = flux(ext[e0:e1], sub)
             own = slice(r0 - e0, r1 - e0)
