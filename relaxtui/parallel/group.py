@@ -306,6 +306,11 @@ class DistributedOperator:
         return rank_bytes(self.shape[0], self.shape[1], method, len(self.case.regions), self.group.comm.Get_size())[0]
 
 
+def _lanczos_defaults() -> dict:
+    """The default options of the single-process :class:`relaxtui.solver.radius.Lanczos` (read from its signature)."""
+    return {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
+
+
 class DistributedLanczos(RitzRule):
     """Rank 0's handle on a Lanczos estimate whose vectors are split across the ranks.
 
@@ -317,7 +322,7 @@ class DistributedLanczos(RitzRule):
     """
 
     def __init__(self, operator: "DistributedOperator", method_sweeps=None):
-        p = {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
+        p = _lanczos_defaults()
         super().__init__(p["min_steps"], p["max_steps"], p["budget"], p["rtol"],
                          method_sweeps if method_sweeps is not None else p["method_sweeps"])
         self.operator = operator
@@ -365,9 +370,49 @@ class DistributedRadiusJob(RadiusJob):
     # the time, as the single-process job's thread does on 2 cores beside a 2-thread sweep
     SLICE = 0.05
 
+    # a Lanczos step (one operator application, two inner products, one halo exchange) costs about two
+    # sweeps before it has been timed (measured at 4096², 2 ranks: 62 ms a step against 34 ms a red-black sweep)
+    STEP_SWEEPS = 2.0
+
     def __init__(self, operator):
         super().__init__(operator)
         self._pending = False
+        self._slice_steps = 0  # steps done in the slices (their seconds are in _seconds)
+
+    @property
+    def running(self) -> bool:
+        return self._pending
+
+    def pause(self) -> None:
+        """Stop taking turns with the sweeps (the Lanczos state is kept; :meth:`start` resumes)."""
+        self._pending = False
+
+    def affordable(self, remaining_seconds: float, sweep_seconds: float | None) -> bool:
+        """Whether the estimate can finish before the run ends, at its share of the time.
+
+        Its slices take turns with the sweeps, so every second it runs is a second
+        the sweeps wait: an estimate that cannot be ready by the end (its steps
+        left, at most the step limit, at their measured cost, or
+        :attr:`STEP_SWEEPS` sweeps each before that) would only make the run
+        longer, and the stopping rule measures the factor alone either way."""
+        if self._final is not None:
+            return True
+        lz = self._lanczos
+        if lz is not None and lz.done:
+            return True
+        if self._slice_steps > 0:
+            step = self._seconds / self._slice_steps
+        elif sweep_seconds is not None:
+            step = self.STEP_SWEEPS * sweep_seconds
+        else:
+            return True  # nothing timed yet: the driver's own delay decides
+        max_steps = lz.max_steps if lz is not None else _lanczos_defaults()["max_steps"]
+        left = max_steps - (lz.steps if lz is not None else 0)
+        # a slice of SLICE seconds per chunk of about CHUNK_SECONDS: the estimate gets SLICE / CHUNK_SECONDS
+        # of the sweeping time
+        from relaxtui.solver.driver import CHUNK_SECONDS
+
+        return left * step <= remaining_seconds * self.SLICE / CHUNK_SECONDS
 
     def _ensure(self, method_sweeps, redo_unsettled: bool) -> bool:
         if self._final is not None:
@@ -396,6 +441,7 @@ class DistributedRadiusJob(RadiusJob):
             lz = self._lanczos
             while not lz.done and time.perf_counter() - t0 < self.SLICE:
                 lz.advance(max_new_steps=1)
+                self._slice_steps += 1
             self._seconds += time.perf_counter() - t0
             self._finish_if_done()
             self._pending = self._final is None

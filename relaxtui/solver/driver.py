@@ -252,8 +252,12 @@ class Run:
         est = job.result()
         if est is None:
             delay, redo = self._radius_start
-            if not job.running and self.seconds >= delay and (self._provisional or self._remaining_seconds() >= BACKGROUND_MIN_SECONDS):
+            left = self._remaining_seconds()
+            worth = self._provisional or (left >= BACKGROUND_MIN_SECONDS and job.affordable(left, self._sweep_seconds))
+            if not job.running and self.seconds >= delay and worth:
                 job.start(self._method_sweeps, redo_unsettled=redo)
+            elif job.running and not worth:
+                job.pause()  # an estimate that takes turns with the sweeps and cannot finish: the sweeps go first
             state = job.state()
             if self._provisional and state.steps >= QUICK_RADIUS_STEPS and self._omega_request == "auto":
                 self._provisional = False  # auto ω from the estimate so far (it errs low: ω below the optimum)

@@ -304,6 +304,15 @@ class RadiusJob:
         _RUNNING.add(self)
         self._thread.start()
 
+    def affordable(self, remaining_seconds: float, sweep_seconds: float | None) -> bool:
+        """Whether the estimate may go on when the run has about ``remaining_seconds`` left.
+
+        Here it runs in its own thread beside the sweeps: always (the driver's own
+        rules decide when to start it). A job that takes turns with the sweeps
+        (:class:`relaxtui.parallel.group.DistributedRadiusJob`) says no when it
+        could not finish before the run ends."""
+        return True
+
     def pause(self) -> None:
         """Stop the background thread after its current step (the Lanczos state is kept)."""
         thread = self._thread
