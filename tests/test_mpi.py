@@ -342,3 +342,48 @@ def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
     field = np.load(tmp_path / "f.npy")
     assert field.shape == (rows, cols) and np.isfinite(field).all()
     assert "Traceback" not in err
+
+
+# --- in this process (one rank, no mpiexec) ------------------------------------------------------
+
+def test_given_omega_estimate_that_takes_turns_starts_only_when_it_can_finish():
+    # Under MPI the Lanczos slices take turns with the sweeps; with a given omega an estimate that
+    # cannot be ready before the run ends would only lengthen it (the stopping rule then measures the
+    # factor alone either way). Lanczos limit 600 steps, about 2 sweeps a step before it is timed.
+    from relaxtui.parallel.group import DistributedRadiusJob
+    from relaxtui.solver.radius import RadiusJob
+
+    job = DistributedRadiusJob(operator=None)
+    sweep = 0.034  # seconds a sweep
+    assert not job.affordable(1000 * sweep, sweep)  # 1 000 sweeps left: 1 200 sweeps of Lanczos do not fit
+    assert job.affordable(3000 * sweep, sweep)  # 3 000 left: half of them (the slices' share) is 1 500 >= 1 200
+    job._slice_steps, job._seconds = 100, 100 * 0.5 * sweep  # steps timed at half a sweep: now 1 000 left will do
+    assert job.affordable(1000 * sweep, sweep)
+    assert not job.running
+    job._pending = True
+    assert job.running
+    job.pause()
+    assert not job.running
+    assert RadiusJob(operator=None).affordable(0.0, sweep)  # the single-process thread runs beside the sweeps
+
+
+@needs_mpi
+def test_strip_summary_over_several_blocks_matches_the_whole_field(tmp_path):
+    # A strip longer than one block of rows (the default block is 256 rows) once failed; blocks of
+    # 4 rows on the 31-row masked case cross the hole, the insert and both fixed edges.
+    from mpi4py import MPI
+
+    from relaxtui.output.flux import peak_flux
+    from relaxtui.output.report import extremes
+    from relaxtui.parallel.group import DistributedOperator, Group
+
+    case = load_case(masked_case(tmp_path))
+    op = DistributedOperator(case, Group(MPI.COMM_WORLD), 1)
+    u = op.new_field()
+    n = 30
+    op.sweep(u, "red-black-sor", 1.5, n, np.zeros(n), np.zeros(n))
+    field = op.finish(u)
+    low, high, peak = op.strip.summary(case.regions, case.cell_size, block=4)
+    ext, flux = extremes(case, field), peak_flux(field, case)
+    assert low[0] == ext["min"] and high[0] == ext["max"]
+    assert peak[0] == pytest.approx(flux["value"], rel=1e-12) and (peak[3], peak[4]) == (flux["row"], flux["col"])
