@@ -19,7 +19,11 @@ def pytest_sessionstart(session) -> None:
     if os.environ.get("RELAXTUI_TEST_NO_WARM") or os.environ.get("NUMBA_DISABLE_JIT"):
         return
     script = Path(__file__).with_name("warm_kernels.py")
-    env = dict(os.environ, NUMBA_NUM_THREADS="1")
+    import relaxtui  # the child imports the same copy as the tests (installed or source tree)
+
+    root = str(Path(relaxtui.__file__).resolve().parent.parent)
+    path = os.pathsep.join(p for p in (root, os.environ.get("PYTHONPATH", "")) if p)
+    env = dict(os.environ, NUMBA_NUM_THREADS="1", PYTHONPATH=path)
     _WARMER = subprocess.Popen([sys.executable, str(script)], stdin=subprocess.DEVNULL,
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
 
