@@ -253,11 +253,12 @@ class Run:
         if est is None:
             delay, redo = self._radius_start
             left = self._remaining_seconds()
-            worth = self._provisional or (left >= BACKGROUND_MIN_SECONDS and job.affordable(left, self._sweep_seconds))
-            if not job.running and self.seconds >= delay and worth:
+            # auto ω waits for the estimate; a given ω only if it can finish (a job taking turns with the sweeps)
+            fits = (self._omega_request == "auto" and self.method_info.needs_radius) or job.affordable(left, self._sweep_seconds)
+            if not job.running and self.seconds >= delay and fits and (self._provisional or left >= BACKGROUND_MIN_SECONDS):
                 job.start(self._method_sweeps, redo_unsettled=redo)
-            elif job.running and not worth:
-                job.pause()  # an estimate that takes turns with the sweeps and cannot finish: the sweeps go first
+            elif job.running and not fits:
+                job.pause()  # it would only hold the sweeps back: they go first
             state = job.state()
             if self._provisional and state.steps >= QUICK_RADIUS_STEPS and self._omega_request == "auto":
                 self._provisional = False  # auto ω from the estimate so far (it errs low: ω below the optimum)
