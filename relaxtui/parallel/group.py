@@ -19,6 +19,7 @@ aborts the job (see :mod:`relaxtui.parallel.comm`).
 
 from __future__ import annotations
 
+import functools
 import inspect
 from contextlib import contextmanager
 
@@ -306,6 +307,7 @@ class DistributedOperator:
         return rank_bytes(self.shape[0], self.shape[1], method, len(self.case.regions), self.group.comm.Get_size())[0]
 
 
+@functools.cache
 def _lanczos_defaults() -> dict:
     """The default options of the single-process :class:`relaxtui.solver.radius.Lanczos` (read from its signature)."""
     return {k: v.default for k, v in inspect.signature(Lanczos.__init__).parameters.items() if v.default is not v.empty}
