@@ -1,4 +1,5 @@
-"""Session set-up shared by every test file: warm the numba cache on the idle core.
+"""Session set-up shared by every test file: warm the numba cache on the idle core
+(for runs of at least WARM_FROM_ITEMS tests, such as the whole suite).
 
 See warm_kernels.py. Set RELAXTUI_TEST_NO_WARM=1 to run without it (for
 measuring the suite's own compile time, for instance).
@@ -14,9 +15,15 @@ from pathlib import Path
 _WARMER: subprocess.Popen | None = None
 
 
-def pytest_sessionstart(session) -> None:
+# a targeted run of a few test files gains little from the warmer and would pay its CPU beside them
+WARM_FROM_ITEMS = 200
+
+
+def pytest_collection_finish(session) -> None:
     global _WARMER
     if os.environ.get("RELAXTUI_TEST_NO_WARM") or os.environ.get("NUMBA_DISABLE_JIT"):
+        return
+    if len(session.items) < WARM_FROM_ITEMS:
         return
     script = Path(__file__).with_name("warm_kernels.py")
     import relaxtui  # the child imports the same copy as the tests (installed or source tree)
