@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 import scipy.ndimage
 import scipy.sparse as sp
+import scipy.sparse.linalg
 from cases import case_from_codes, convection, feature_case, fixed, flux, interior, make_case, model_problem, outside
 
 from relaxtui.case import load_case
@@ -319,6 +320,30 @@ def test_converged_means_within_tolerance(name, tol):
     assert rep["sweeps"] <= 40  # and not needlessly late: every iteration gains more than a decade here
     hist = result.history
     assert len(hist) == rep["sweeps"] and np.all(np.diff(hist.seconds) >= 0)
+
+
+@pytest.mark.parametrize("name", ["model", "random", "heat-spreader"])
+def test_norm_of_the_inverse_from_the_hierarchy(name):
+    # ||(I - W)^-1||_inf = max w for (I - W) w = 1, i.e. A w = diag(A) (relaxtui.solver.conditioning; an M-matrix's
+    # inverse is non-negative, common practice): scipy's spsolve on tests/exact.py's matrix is the reference
+    case, _ = exact_of(name, HONESTY_CASES[name])
+    matrix, _, _ = exact.assemble(case)
+    want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
+    op = Operator(case)
+    st = MultigridStepper(op)
+    u = op.new_field()
+    upd, res = np.zeros(8), np.zeros(8)
+    st.sweep(u, DEFAULT_OMEGA, 2, upd, res)
+    table = op.table.copy()
+    got = st.inverse_norm()
+    assert got is not None and abs(got / want - 1.0) <= 2e-3
+    assert np.array_equal(op.table, table)  # the right-hand sides are the case's again
+    # the CG state it took over restarts: the iteration still reaches the discrete solution
+    st.sweep(u, DEFAULT_OMEGA, 8, upd, res)
+    _, want_u = exact_of(name, HONESTY_CASES[name])
+    mask = np.isfinite(want_u)
+    assert float(np.max(np.abs(op.view(u)[mask] - want_u[mask]))) <= 1e-6 * float(np.max(np.abs(want_u[mask])))
+    assert MultigridStepper(op, krylov=False).inverse_norm() is None  # one work vector only: the caller estimates
 
 
 def test_stationary_cycles_are_honest_too():

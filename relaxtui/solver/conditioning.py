@@ -25,8 +25,9 @@ strictly less where a cell leaks to a fixed or convection face), so
 ``||(I - W)^-1||_inf = max w`` for the solution of ``(I - W) w = 1`` (all
 ones): the expected number of random-walk steps before a walker leaves the
 domain. It is computed exactly (banded Cholesky of the symmetric unnormalised
-form, the multigrid kernels' own) on grids where that is cheap, and estimated
-from the Jacobi spectral radius μ elsewhere (``1/(1 - μ)`` is the D-norm of
+form, the multigrid kernels' own) on grids where that is cheap, solved for to
+0.1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``),
+and estimated from the Jacobi spectral radius μ elsewhere (``1/(1 - μ)`` is the D-norm of
 the inverse; times a safety factor for the infinity norm).
 """
 
@@ -89,8 +90,16 @@ def inverse_norm(run) -> tuple[float, str]:
     if op.inverse_norm is not None:
         return op.inverse_norm
     exact = exact_inverse_norm(op) if hasattr(op, "cls") else None
+    own = None
+    if exact is None:
+        # a stepper with a hierarchy of its own (multigrid) solves for the norm with it: a few cycles
+        # in its own work vectors, where the Lanczos estimate below needs three field-sized ones
+        solver = getattr(getattr(run, "_stepper", None), "inverse_norm", None)
+        own = solver() if callable(solver) else None
     if exact is not None:
         found = (exact, "exact")
+    elif own is not None:
+        found = (own, "solved for with the multigrid hierarchy")
     else:
         mu = run.mu
         how = "from the Jacobi radius"

@@ -31,6 +31,8 @@ POST_SWEEPS = 1
 COARSEST_UNKNOWNS = 2048  # a coarse level this small is solved directly (banded Cholesky)
 DIRECT_UNKNOWNS = 64  # a problem this small is solved directly on its own grid
 PARALLEL_CELLS = 1 << 14
+INVERSE_NORM_STEPS = 30  # most preconditioned steps spent on the norm of the inverse (see MultigridStepper.inverse_norm)
+INVERSE_NORM_RTOL = 1e-3  # the last step against max w when it stops
 
 
 def _threads() -> int:
@@ -504,6 +506,59 @@ class MultigridStepper:
         self._rz = rz
         self._k += 1
         return du, res
+
+    def inverse_norm(self, omega: float = DEFAULT_OMEGA) -> float | None:
+        """``||(I - W)^-1||_inf`` of the operator, solved for with this stepper's own hierarchy, or None.
+
+        ``max w`` for ``(I - W) w = 1`` (relaxtui.solver.conditioning explains why that is the
+        norm): steepest descent preconditioned by the symmetric cycle, on the equations with every
+        right-hand side 1 and every fixed value 0, run in the CG's two work vectors (the iterate in
+        the direction's buffer), so it needs no field-sized array of its own (the Lanczos estimate
+        it replaces needs three). The CG state is dropped: the next :meth:`sweep` restarts it.
+        Returns None (the caller estimates the norm otherwise) for the direct and plain-cycle
+        variants, after :meth:`release`, or when ``INVERSE_NORM_STEPS`` steps do not settle
+        ``max w`` to ``INVERSE_NORM_RTOL``; the value returned is ``max w`` plus the last step,
+        which bounds what is left once the steps fall by half or more each time.
+        """
+        from relaxtui.kernels import multigrid as mg
+
+        op = self.operator
+        if self.h is None or self.direct or not self.krylov or op.unknowns == 0:
+            return None
+        nb = self.h.nblk0
+        x, w = self.p, self.w
+        table = op.table
+        ones = table.copy()
+        ones[1:, 4] = 1.0  # row 0 is no unknown's class
+        self._synced = None  # w and p are taken over: the next sweep restarts CG from its field
+        self._k = 0
+        self._rz = 0.0
+        found = None
+        try:
+            op.table = ones  # the cycle's kernels read the operator's table (right-hand sides in column 4)
+            mg.zero_fill(x, nb)
+            mg.copy_into(x, w, nb)
+            top = prev = None
+            for _ in range(INVERSE_NORM_STEPS):
+                self.cycle_symmetric(omega)  # w = x + B r(x)
+                mg.fcg_direction(w, x, w, 0.0, nb)  # the preconditioned residual z = w - x, in w
+                pap, pz, _ = mg.fcg_dots(x, w, op.cls, ones, op.diag, *self._segments(), nb)
+                alpha = pz / pap if pap > 0.0 else 0.0  # exact line search along z
+                du = mg.fcg_update(x, w, alpha, w, nb)  # x += alpha z; w = x
+                if not math.isfinite(du):
+                    break
+                if top is None:
+                    top = float(np.max(x))
+                if prev is not None and du <= 0.5 * prev and du <= INVERSE_NORM_RTOL * top:
+                    top = float(np.max(x))
+                    if math.isfinite(top) and top > 0.0:
+                        found = max(top + du, 1.0)
+                    break
+                prev = du
+        finally:
+            op.table = table
+            mg.zero_fill(self.p, nb)
+        return found
 
     def _warm(self, u, omega) -> None:
         """Load (or compile) every kernel of an iteration without changing u: a step of length 0."""
