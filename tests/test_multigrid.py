@@ -336,7 +336,7 @@ def test_norm_of_the_inverse_from_the_hierarchy(name):
     st.sweep(u, DEFAULT_OMEGA, 2, upd, res)
     table = op.table.copy()
     got = st.inverse_norm()
-    assert got is not None and abs(got / want - 1.0) <= 2e-3
+    assert got is not None and 1.0 - 1e-3 <= got / want <= 1.02  # INVERSE_NORM_RTOL 1 %, the step added on top
     assert np.array_equal(op.table, table)  # the right-hand sides are the case's again
     # the CG state it took over restarts: the iteration still reaches the discrete solution
     st.sweep(u, DEFAULT_OMEGA, 8, upd, res)
