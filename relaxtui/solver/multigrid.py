@@ -31,6 +31,9 @@ POST_SWEEPS = 1
 COARSEST_UNKNOWNS = 2048  # a coarse level this small is solved directly (banded Cholesky)
 DIRECT_UNKNOWNS = 64  # a problem this small is solved directly on its own grid
 PARALLEL_CELLS = 1 << 14
+WARM_GRID = 160  # cells square of the problem the kernels of a big one are loaded on (streamed in parallel)
+WARM_COARSEST = 16  # its coarsest level: every coarse kernel runs
+WARM_SMALL_FROM = 1 << 20  # streamed cells from which a problem is warmed up on the small one
 INVERSE_NORM_STEPS = 30  # most preconditioned steps spent on the norm of the inverse (see MultigridStepper.inverse_norm)
 INVERSE_NORM_RTOL = 1e-2  # the last step against max w when it stops (the value returned adds it: an upper estimate)
 
@@ -558,6 +561,30 @@ class MultigridStepper:
             mg.zero_fill(self.p, nb)
         return found
 
+    def _warm_on_a_small_grid(self, omega) -> bool:
+        """Load a big problem's iteration kernels by running one iteration of a small model problem's
+        (``WARM_GRID`` cells square, coarsened as deep): a warm-up on the problem itself costs a whole
+        cycle of it (10 s at 16 383²). False (nothing done) where the small operator's array types
+        might differ: per-cell operators, more than 256 classes, stationary or direct variants, grids
+        below ``WARM_SMALL_FROM`` cells or run on one thread (the kernels' serial builds)."""
+        from relaxtui.solver.assembled import Operator
+
+        op = self.operator
+        per_cell = getattr(getattr(op, "physics", None), "per_cell", False)
+        if (per_cell or self.direct or not self.krylov or op.cls.dtype != np.uint8 or op.cells_streamed < WARM_SMALL_FROM
+                or self.h.nblk0 < 2 or _threads() < 2):
+            return False
+        small = Operator(_warm_case())
+        if small.cls.dtype != op.cls.dtype or getattr(getattr(small, "physics", None), "per_cell", False):
+            return False
+        st = MultigridStepper(small, coarsest=WARM_COARSEST)
+        if st.direct or st.h.nblk0 < 2:
+            return False
+        u = small.new_field()
+        upd, res = np.zeros(1), np.zeros(1)
+        st.sweep(u, omega, 1, upd, res)
+        return True
+
     def _warm(self, u, omega) -> None:
         """Load (or compile) every kernel of an iteration without changing u: a step of length 0."""
         key = (self.operator.cls.dtype.str, self.krylov, self.direct)
@@ -565,6 +592,9 @@ class MultigridStepper:
             return
         from relaxtui.kernels import multigrid as mg
 
+        if self._warm_on_a_small_grid(omega):
+            _WARM.add(key)
+            return
         nb = self.h.nblk0
         if self.direct:
             mg.band_solve(self.L0, self.cells0, self.bw0, self.b0, u.copy())
@@ -582,6 +612,23 @@ class MultigridStepper:
             mg.delta_copy(u, self.u_old, nb)  # u_old = u again
         self._synced = None
         _WARM.add(key)
+
+
+def _warm_case():
+    """A small model problem (one material, a fixed frame at 0 and 1) whose operator's arrays have the
+    types of a big one's (the same class dtype, row segments streamed in parallel): what
+    :meth:`MultigridStepper._warm` loads the kernels on."""
+    from relaxtui.case.model import Case, Region
+    from pathlib import Path
+
+    n = WARM_GRID
+    codes = np.full((n, n), 0, dtype=np.uint8)
+    codes[0, :] = codes[-1, :] = codes[:, 0] = codes[:, -1] = 1
+    codes[0, 1:-1] = 2
+    regions = (Region(name="plate", color="#ffffff", kind="interior", conductivity=1.0),
+               Region(name="cold", color="#0000ff", kind="fixed", value=0.0),
+               Region(name="hot", color="#ff0000", kind="fixed", value=1.0))
+    return Case(path=None, mask_path=Path("warm.png"), regions=regions, codes=codes)
 
 
 _WARM: set = set()  # (class dtype, krylov, direct) whose kernels this process has loaded
