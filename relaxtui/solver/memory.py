@@ -29,7 +29,7 @@ phases (the largest counts)
                                         when the run ends
   output copy           8               the exported field built for the report
   method's own          ``Method.bytes_per_cell``: the peak of what the
-                                        method builds (multigrid 42: coarse levels
+                                        method builds (multigrid 41: coarse levels
                                         and CG vectors, held through the iterations)
   decoded picture       6               while the PNG is decoded
 fixed                   200 MiB         interpreter, numba, compiled code, UI,
@@ -42,7 +42,7 @@ the rest are named below.
 Measured peaks (tracemalloc, which sees numpy's allocations) over a whole
 ``relaxtui solve`` of a 1024 x 1024 picture, beyond the warmed-up
 interpreter: red-black SOR and Jacobi stopped by a sweep limit (the Lanczos
-vectors still held) 45.2 B/cell, multigrid 52.3 B/cell (its iterations; 71.6 before
+vectors still held) 45.2 B/cell, multigrid 51.3 B/cell (its iterations; 71.6 before
 its certificate's norm of the inverse came from its own hierarchy), of which
 about 3 MiB is the report's strip buffers (the fixed part covers those);
 tests/test_memory.py keeps the estimate an upper bound within 20 % of them.

@@ -324,11 +324,10 @@ class MultigridStepper:
 
             self._w_big = np.zeros((shape[0] + 1, shape[1]))
             self.w = self._w_big[1:]
-            self._cls_b = np.zeros((shape[0] + 1, shape[1]), dtype=operator.cls.dtype)
-            self._cls_b[1:] = operator.cls
+            self._cls_b = _shifted_classes(operator)
             self._seg_b = assemble.segments(self._cls_b, MIN_RUN)
             self.p = np.zeros(shape)
-            held += self._w_big.nbytes + self._cls_b.nbytes + sum(a.nbytes for a in self._seg_b) + self.p.nbytes
+            held += self._w_big.nbytes + self._cls_b[0].nbytes + sum(a.nbytes for a in self._seg_b) + self.p.nbytes
         elif not self.direct:
             self.u_old = np.zeros(shape)
             held += self.u_old.nbytes
@@ -612,6 +611,24 @@ class MultigridStepper:
             mg.delta_copy(u, self.u_old, nb)  # u_old = u again
         self._synced = None
         _WARM.add(key)
+
+
+def _shifted_classes(operator) -> np.ndarray:
+    """The operator's class codes with one more row (of zeros) on top, for the backward sweep.
+
+    The operator's own ``cls`` becomes the view of rows 1.. of that buffer (same values, same type,
+    C-contiguous): one copy of the codes, not two. Again after a release, the buffer is found
+    through the view.
+    """
+    cls = operator.cls
+    base = cls.base
+    if (isinstance(base, np.ndarray) and base.dtype == cls.dtype and base.shape == (cls.shape[0] + 1, cls.shape[1])
+            and base.flags.c_contiguous and base[1:].ctypes.data == cls.ctypes.data):
+        return base
+    big = np.zeros((cls.shape[0] + 1, cls.shape[1]), dtype=cls.dtype)
+    big[1:] = cls
+    operator.cls = big[1:]
+    return big
 
 
 def _warm_case():
