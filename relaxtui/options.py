@@ -32,6 +32,8 @@ DEFAULT_METHOD = "red-black-sor"
 DEFAULT_OMEGA = "auto"
 DEFAULT_TOLERANCE = 1e-3
 DEFAULT_MAX_SWEEPS = 200_000
+DEFAULT_PRECISION = "double"
+PRECISIONS = ("double", "single")  # the working field's storage: float64 or float32 (issue 14, case format v1.1)
 
 _GROUPING = (" ", "\u202f", "\u2009", "\u00a0", "_")  # thousands separators accepted in a typed sweep count
 
@@ -219,6 +221,22 @@ def parse_max_sweeps(text: str, subject: str = "max sweeps") -> int:
     return check_max_sweeps(value, subject)
 
 
+# --- precision -------------------------------------------------------------------------------
+
+
+def check_precision(value, subject: str = "precision") -> str:
+    """The working field's storage: ``"double"`` (float64) or ``"single"`` (float32)."""
+    if not isinstance(value, str):
+        raise UsageError(f"{subject} must be one of {', '.join(map(repr, PRECISIONS))}, not {_type_name(value)} ({_show(value)})")
+    if value not in PRECISIONS:
+        raise UsageError(f"{subject} must be one of {', '.join(map(repr, PRECISIONS))}; got {value!r}{_suggestion(value, PRECISIONS)}")
+    return value
+
+
+def parse_precision(text: str, subject: str = "precision") -> str:
+    return check_precision(text.strip().lower() if isinstance(text, str) else text, subject)
+
+
 # --- argparse ------------------------------------------------------------------------------------
 
 
@@ -251,9 +269,11 @@ class Options:
     max_sweeps: int
     time_limit: float | None = None
     note: str = ""  # what resolving left aside (a case's ω that does not apply to the method chosen)
+    precision: str = DEFAULT_PRECISION  # "double" or "single": the working field's storage
 
 
-KEYS = ("method", "omega", "tolerance", "max_sweeps", "time_limit")
+KEYS = ("method", "omega", "tolerance", "max_sweeps", "time_limit", "precision")
+CASE_KEYS = ("method", "omega", "tolerance", "max_sweeps", "precision")  # the keys a [solver] table may give
 
 
 def resolve(cli: dict | None = None, case_solver=None) -> Options:
@@ -263,7 +283,7 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     ----------
     cli : dict
         Any of ``method``, ``omega``, ``tolerance``, ``max_sweeps``,
-        ``time_limit``; ``None`` (or a missing key) means "not given". Values
+        ``time_limit``, ``precision``; ``None`` (or a missing key) means "not given". Values
         may be typed or text (text goes through the ``parse_*`` functions).
     case_solver : relaxtui.case.model.SolverDefaults or None
         The case's table (its ``None`` fields are silent).
@@ -277,7 +297,7 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     unknown = set(cli) - set(KEYS)
     if unknown:
         raise UsageError(f"unknown solver option {sorted(unknown)[0]!r}; the options are {', '.join(KEYS)}")
-    case = {k: getattr(case_solver, k, None) for k in KEYS[:4]} if case_solver is not None else {}
+    case = {k: getattr(case_solver, k, None) for k in CASE_KEYS} if case_solver is not None else {}
 
     def pick(key):
         if cli.get(key) is not None:
@@ -309,4 +329,6 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     max_sweeps = parse_max_sweeps(max_sweeps) if max_sweeps is not None else DEFAULT_MAX_SWEEPS
     time_limit = cli.get("time_limit")
     time_limit = parse_time_limit(time_limit) if time_limit is not None else None
-    return Options(method, omega, tolerance, max_sweeps, time_limit, note)
+    precision, _ = pick("precision")
+    precision = parse_precision(precision) if precision is not None else DEFAULT_PRECISION
+    return Options(method, omega, tolerance, max_sweeps, time_limit, note, precision)
