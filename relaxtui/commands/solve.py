@@ -211,6 +211,9 @@ def run(args) -> int:
     cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
               time_limit=args.time_limit, initial=initial, radius_cache=cache, precision=precision)
+    if run.precision_request == "single" and run.method_info.kernel is None and not args.quiet:
+        print(f"relaxtui solve: note: single precision applies to the relaxation methods; {run.method} runs in "
+              "double precision (the report's precision says so)", file=sys.stderr)
     for path in outputs.values():
         if path is not None:
             clean_stale_temps(path)
@@ -266,6 +269,8 @@ def _summary(result, written) -> None:
     unit = f" {safe(r['unit'])}" if r["unit"] else ""
     con.print(f"[bold {style}]{r['status']}[/]: {safe(r['message'])}")
     con.print(f"  {r['method']}, omega {r['omega']:.4f} ({safe(r['omega_note'])})")
+    if r.get("precision", "double") != "double" or r.get("precision_note"):
+        con.print(f"  {r['precision']} precision: {safe(r['precision_note'])}")
     con.print(f"  {group(r['sweeps'])} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
               f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:
