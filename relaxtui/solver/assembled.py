@@ -120,7 +120,7 @@ class Operator:
             self.physics.assemble(assemble)
         else:
             self._assemble(assemble)
-        self._scratch = None
+        self._scratch = {}  # the sweep buffer per field type (float64, float32), made by the first sweep that needs it
         self._radius = None
         self._fingerprint = None
         # (norm of the inverse, how it was found): relaxtui.solver.conditioning fills it once per operator
@@ -327,9 +327,9 @@ class Operator:
             if name == "u":
                 args.append(u)
             elif name == "buffer":
-                if (self._scratch is None or self._scratch.dtype != u.dtype) and sweeps > 0:
-                    self._scratch = np.zeros(self.padded_shape, dtype=u.dtype)  # the field's type: one kernel build per type
-                args.append(self._scratch if self._scratch is not None else u)  # unused when sweeps == 0
+                if u.dtype not in self._scratch and sweeps > 0:
+                    self._scratch[u.dtype] = np.zeros(self.padded_shape, dtype=u.dtype)  # the field's type
+                args.append(self._scratch.get(u.dtype, u))  # unused when sweeps == 0
             elif name == "segments":
                 args.extend(self._segments)
             else:
@@ -348,8 +348,8 @@ class Operator:
         return True, max(1, min(threads, self.shape[0]))
 
     def release(self) -> None:
-        """Drop the sweep buffer (it is made again by the next sweep that needs it)."""
-        self._scratch = None
+        """Drop the sweep buffers (made again by the next sweep that needs one)."""
+        self._scratch = {}
 
     # --- measures ------------------------------------------------------------------------------
 
