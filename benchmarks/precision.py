@@ -9,14 +9,12 @@ shared machine; the rows say the thread count, the load is printed beside them.
 
 from __future__ import annotations
 
-import argparse
 import os
 import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import common  # noqa: E402
 import scale  # noqa: E402
 
 
@@ -28,12 +26,7 @@ def run(quick: bool = False) -> list[dict]:
 
 
 def main(argv=None) -> int:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="1024² instead of 4096²")
-    p.add_argument("--json", action="store_true", help="print the rows as JSON")
-    args = p.parse_args(argv)
-    common.print_rows(run(args.quick), args.json)
-    return 0
+    return scale.main(argv, run, __doc__)
 
 
 if __name__ == "__main__":

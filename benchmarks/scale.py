@@ -246,12 +246,13 @@ def run(quick: bool = False) -> list[dict]:
     return rows
 
 
-def main(argv=None) -> int:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def main(argv=None, rows=None, doc=None) -> int:
+    """The command line of this file, or of another whose ``rows(quick)`` and ``doc`` are given."""
+    p = argparse.ArgumentParser(description=(doc or __doc__).splitlines()[0])
     p.add_argument("--quick", action="store_true", help="small sizes (a few minutes)")
     p.add_argument("--json", action="store_true", help="print the rows as JSON")
     args = p.parse_args(argv)
-    common.print_rows(run(args.quick), args.json)
+    common.print_rows((rows or run)(args.quick), args.json)
     return 0
 
 

@@ -98,14 +98,19 @@ def _suggestion(text: str, names) -> str:
     return f" (did you mean '{close[0]}'?)" if close else ""
 
 
+def _one_of(value, names, subject: str, shown: str, kind: str = "a string") -> str:
+    """``value`` if it is one of ``names`` (shown in messages as ``shown``), else :class:`UsageError`."""
+    if not isinstance(value, str):
+        raise UsageError(f"{subject} must be {kind}, not {_type_name(value)} ({_show(value)})")
+    if value not in names:
+        raise UsageError(f"{subject} must be one of {shown}; got {value!r}{_suggestion(value, names)}")
+    return value
+
+
 def check_method(value, subject: str = "method") -> str:
     """A method name, or :class:`UsageError` naming the known ones."""
     names = method_names()
-    if not isinstance(value, str):
-        raise UsageError(f"{subject} must be a string, not {_type_name(value)} ({_show(value)})")
-    if value not in names:
-        raise UsageError(f"{subject} must be one of {', '.join(names)}; got {value!r}{_suggestion(value, names)}")
-    return value
+    return _one_of(value, names, subject, ", ".join(names))
 
 
 def parse_method(text: str, subject: str = "method") -> str:
@@ -226,11 +231,8 @@ def parse_max_sweeps(text: str, subject: str = "max sweeps") -> int:
 
 def check_precision(value, subject: str = "precision") -> str:
     """The working field's storage: ``"double"`` (float64) or ``"single"`` (float32)."""
-    if not isinstance(value, str):
-        raise UsageError(f"{subject} must be one of {', '.join(map(repr, PRECISIONS))}, not {_type_name(value)} ({_show(value)})")
-    if value not in PRECISIONS:
-        raise UsageError(f"{subject} must be one of {', '.join(map(repr, PRECISIONS))}; got {value!r}{_suggestion(value, PRECISIONS)}")
-    return value
+    shown = ", ".join(map(repr, PRECISIONS))
+    return _one_of(value, PRECISIONS, subject, shown, f"one of {shown}")
 
 
 def parse_precision(text: str, subject: str = "precision") -> str:
