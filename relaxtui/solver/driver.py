@@ -58,7 +58,10 @@ class Run:
     the case's operator is cached between processes (see
     :mod:`relaxtui.solver.radius`); ``on_prepare(text)``: called while
     :meth:`prepare` works, with what it is doing and how far (also readable at
-    any time, from any thread, as :attr:`preparing`).
+    any time, from any thread, as :attr:`preparing`). ``precision``: "double" or "single" (over the
+    case's [solver] table): single keeps the working field in float32 for the relaxation methods;
+    :attr:`precision` is what the run uses (multigrid and MPI strips stay in double, and
+    :attr:`precision_note` says why).
     """
 
     def __init__(self, case, *, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
