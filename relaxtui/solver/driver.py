@@ -38,6 +38,7 @@ RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the r
 NEAR_FLOOR_ULPS = 1e4  # single precision: updates below this many float32 roundings of the field's magnitude are
 # near its floor (rounding noise of up to ~130 of them measured with SOR at omega 1.9): the rule's scale is then
 # refreshed from the field, and the observed factor no longer corrects auto omega
+RESCALE_GROWTH = 1.25  # ... refreshed again once the run has done this many times the sweeps of the last refresh
 
 
 def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
@@ -84,6 +85,7 @@ class Run:
         self.precision_request = opts.precision
         self.precision = opts.precision
         self.precision_note = ""
+        self._rescaled_at = 0  # sweeps when the stopping rule's scale was last refreshed from the field (single)
         self.operator = operator
         self._initial = initial
         self._continue = field
@@ -433,7 +435,9 @@ class Run:
             k = self._stepper.sweep(self._u, self.omega, n, self._upd, self._res)
             dt = time.perf_counter() - t0
             first = self.rule.sweeps
-            if self.precision == "single" and k and self._near_floor(float(self._upd[k - 1])):
+            if (self.precision == "single" and k and self._near_floor(float(self._upd[k - 1]))
+                    and first + k >= RESCALE_GROWTH * self._rescaled_at):
+                self._rescaled_at = first + k  # two passes over the field: not after every chunk
                 self.rule.rescale(max(float(self._u.max()), -float(self._u.min())))
             self.rule.add(self._upd[:k])
             self.seconds += dt
