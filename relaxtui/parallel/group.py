@@ -30,9 +30,11 @@ from relaxtui.parallel.comm import quiet_barrier, quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
 from relaxtui.solver.radius import Lanczos, RadiusJob, RitzRule
 
-DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
-SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP = range(1, 12)
-TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL = 31, 32, 33, 34
+DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips (the operator's ``sweep``)
+STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
+(SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
+ MG_RELEASE) = range(1, 15)
+TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 
 
 def refusal(method: str) -> str:
@@ -41,8 +43,8 @@ def refusal(method: str) -> str:
         return (f"{method} does not run across MPI ranks: its lexicographic order makes every row wait for the one "
                 "above; use red-black-sor (the same equations in a parallel order) or jacobi under mpiexec, "
                 f"or run {method} without mpiexec")
-    return (f"{method} does not run across MPI ranks in this version; use red-black-sor or jacobi under mpiexec, "
-            f"or run {method} without mpiexec")
+    return (f"{method} does not run across MPI ranks in this version; use multigrid, red-black-sor or jacobi under "
+            f"mpiexec, or run {method} without mpiexec")
 
 
 class Group:
@@ -79,10 +81,25 @@ def _wait_command(comm) -> np.ndarray:
     return buf
 
 
-def _part(op, case, a: int, b: int) -> tuple[dict, np.ndarray, np.ndarray]:
+def _wide(op, bounds, a: int, b: int) -> np.ndarray:
+    """The class codes of the multigrid set-up band of strip [a, b) (see relaxtui.parallel.multigrid.bands), padded
+    with rows of zeros (the band's own edges are outside it)."""
+    from relaxtui.parallel import multigrid as pm
+
+    rows = op.shape[0]
+    S, T = pm.bands(a, b, rows, pm.split_depth(bounds, op.shape, pm.gather_cells()), pm.MARGIN)
+    wide = op.cls[S : T + 2].copy()
+    wide[0] = 0
+    wide[-1] = 0
+    return wide, S, T
+
+
+def _part(op, case, a: int, b: int, bounds, multigrid: bool) -> tuple[dict, np.ndarray, np.ndarray]:
     rows, cols = op.shape
     meta = {
-        "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str,
+        "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str, "bounds": bounds,
+        "per_cell": bool(getattr(getattr(op, "physics", None), "per_cell", False)),
+        "wide": _wide(op, bounds, a, b)[1:] if multigrid else None,
         "up_codes": case.codes[a - 1].copy() if a > 0 else None,
         "dn_codes": case.codes[b].copy() if b < rows else None,
         "table": op.table, "diag": op.diag, "kind": op.kind, "value": op.value, "conductivity": op.conductivity,
@@ -100,17 +117,23 @@ def _receive_part(comm) -> dict:
     codes = np.empty((n, meta["cols"]), dtype=np.uint8)
     comm.Recv(codes, source=0, tag=TAG_CODES)
     meta["cls"], meta["codes"] = cls, codes
+    if meta["wide"] is not None:
+        S, T = meta["wide"]
+        wide = np.empty((T - S + 2, meta["cols"] + 2), dtype=cls.dtype)
+        comm.Recv(wide, source=0, tag=TAG_WIDE)
+        meta["wide"] = (wide, S, T)
     return meta
 
 
-def _warm_in_turn(comm, strip: Strip) -> None:
-    """Rank 0 loads or compiles the kernels first; the others wait (sleeping) and then load them from the cache."""
+def warm_in_turn(comm, warm) -> None:
+    """Rank 0 loads or compiles the kernels first (``warm()``); the others wait (sleeping) and then load them
+    from the cache."""
     if comm.Get_rank() == 0:
-        strip.warm()
+        warm()
         quiet_barrier(comm)
     else:
         quiet_barrier(comm)
-        strip.warm()
+        warm()
     quiet_barrier(comm)
 
 
@@ -125,7 +148,7 @@ class DistributedOperator:
     strip's rows, not the whole grid.
     """
 
-    def __init__(self, case, group: Group, threads: int):
+    def __init__(self, case, group: Group, threads: int, multigrid: bool = False):
         from relaxtui.solver.assembled import Operator
 
         comm = group.comm
@@ -134,6 +157,13 @@ class DistributedOperator:
         rows, cols = op.shape
         if rows < ranks:
             raise UsageError(f"the grid has {rows} rows, fewer than the {ranks} MPI ranks: start at most {rows} ranks")
+        if multigrid:
+            from relaxtui.solver.multigrid import COARSEST_UNKNOWNS, DIRECT_UNKNOWNS
+
+            if op.unknowns <= min(COARSEST_UNKNOWNS, DIRECT_UNKNOWNS) or rows < 2 * ranks:
+                raise UsageError(f"multigrid across {ranks} MPI ranks needs at least {2 * ranks} rows and more than "
+                                 f"{min(COARSEST_UNKNOWNS, DIRECT_UNKNOWNS)} unknowns (this grid: {rows} rows, "
+                                 f"{op.unknowns} unknowns); run it without mpiexec")
         self.case = case
         self.group = group
         self.shape = op.shape
@@ -158,18 +188,24 @@ class DistributedOperator:
         self.inverse_norm = (exact, "exact") if exact is not None else None
         self.threads = threads
         self.bounds = split_rows(np.count_nonzero(op.cls[1:-1], axis=1), ranks)
+        if multigrid and min(b - a for a, b in self.bounds) < 2:
+            self.bounds = split_rows(np.ones(rows), ranks)  # every strip needs two rows for the transfers' halo
         group.send(SETUP)
         group.busy = True
         for r in range(1, ranks):
-            meta, cls, codes = _part(op, case, *self.bounds[r])
+            meta, cls, codes = _part(op, case, *self.bounds[r], self.bounds, multigrid)
             comm.send(meta, dest=r, tag=TAG_META)
             comm.Send(cls, dest=r, tag=TAG_CLS)
             comm.Send(codes, dest=r, tag=TAG_CODES)
-        meta, cls, codes = _part(op, case, *self.bounds[0])
+            if multigrid:
+                comm.Send(_wide(op, self.bounds, *self.bounds[r])[0], dest=r, tag=TAG_WIDE)
+        meta, cls, codes = _part(op, case, *self.bounds[0], self.bounds, multigrid)
         meta["cls"], meta["codes"] = cls.copy(), codes
+        if multigrid:
+            meta["wide"] = _wide(op, self.bounds, *self.bounds[0])
         del op, cls  # rank 0 keeps its strip only (and the case's picture)
         self.strip = Strip(comm, meta, threads)
-        _warm_in_turn(comm, self.strip)
+        warm_in_turn(comm, self.strip.warm)
         group.busy = False
 
     # --- the working array ----------------------------------------------------------------
@@ -238,6 +274,14 @@ class DistributedOperator:
 
     def release(self) -> None:
         self.strip.tmp = None
+
+    def make_stepper(self, method: str):
+        """The stepper of a method that is not a relaxation sweep (multigrid), None for the others."""
+        if method in STEPPED_METHODS:
+            from relaxtui.parallel.multigrid import DistributedMultigrid
+
+            return DistributedMultigrid(self)
+        return None
 
     # --- measures ------------------------------------------------------------------------------
 
@@ -460,7 +504,7 @@ def follow(comm, threads: int) -> int:
             return int(cmd[1])
         if code == SETUP:
             strip = Strip(comm, _receive_part(comm), threads)
-            _warm_in_turn(comm, strip)
+            warm_in_turn(comm, strip.warm)
         elif code == NEW_FIELD:
             initial = None
             if cmd[1]:
@@ -483,6 +527,12 @@ def follow(comm, threads: int) -> int:
             strip.lanczos_begin()
         elif code == LANCZOS_ADVANCE:
             strip.lanczos_advance()
+        elif code == MG_SETUP:
+            strip.multigrid_setup()
+        elif code == MG_SWEEP:
+            strip.mg.iterate(float(cmd[1]), int(cmd[2]))
+        elif code == MG_RELEASE:
+            strip.mg = None
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 

@@ -127,6 +127,10 @@ class Method:
         return self.factor is not None or self.needs_radius
 
     def make_stepper(self, operator) -> Stepper:
+        own = getattr(operator, "make_stepper", None)  # an operator split across MPI ranks may bring its own
+        stepper = own(self.name) if own is not None else None
+        if stepper is not None:
+            return stepper
         if self.make is not None:
             return self.make(operator)
         return RelaxationStepper(operator, self.name)
