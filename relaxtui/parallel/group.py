@@ -47,6 +47,16 @@ def refusal(method: str) -> str:
             f"mpiexec, or run {method} without mpiexec")
 
 
+def sweep_arguments(omega, sweeps) -> tuple[float, int]:
+    """ω and the sweep count of a sweep command, checked on rank 0 before the command is sent."""
+    omega = float(omega)
+    if not 0.0 < omega < 2.0:
+        raise UsageError(f"omega must lie in (0, 2), got {omega}")
+    if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
+        raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+    return omega, int(sweeps)
+
+
 class Group:
     """Rank 0's end of the command channel."""
 
@@ -258,12 +268,7 @@ class DistributedOperator:
         self._check_field(u)
         if method not in DISTRIBUTED_METHODS:
             raise UsageError(refusal(method))
-        omega = float(omega)
-        if not 0.0 < omega < 2.0:
-            raise UsageError(f"omega must lie in (0, 2), got {omega}")
-        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
-            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
-        sweeps = int(sweeps)
+        omega, sweeps = sweep_arguments(omega, sweeps)
         with self.group.collective(SWEEP, DISTRIBUTED_METHODS.index(method), omega, sweeps):
             upd_bits, res_bits = self.strip.sweep(method, omega, sweeps)
         upd = upd_bits.view(np.float64)

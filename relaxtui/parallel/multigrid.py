@@ -528,22 +528,17 @@ class DistributedMultigrid:
                      "memory_bytes": mg.memory_bytes()}
 
     def sweep(self, u, omega, sweeps, updates, residuals) -> int:
-        from relaxtui.errors import UsageError
-        from relaxtui.parallel.group import MG_SWEEP
+        from relaxtui.parallel.group import MG_SWEEP, sweep_arguments
 
         op = self.operator
         op._check_field(u)
-        omega = float(omega)
-        if not 0.0 < omega < 2.0:
-            raise UsageError(f"omega must lie in (0, 2), got {omega}")
-        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
-            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+        omega, sweeps = sweep_arguments(omega, sweeps)
         if sweeps == 0:  # the kernels were loaded at set-up
             return 0
         if op.strip.mg is None:
             self._build()
-        with op.group.collective(MG_SWEEP, omega, int(sweeps)):
-            upd, res, done = op.strip.mg.iterate(omega, int(sweeps))
+        with op.group.collective(MG_SWEEP, omega, sweeps):
+            upd, res, done = op.strip.mg.iterate(omega, sweeps)
         updates[:done] = upd[:done]
         residuals[:done] = res[:done]
         return done
