@@ -461,7 +461,7 @@ class DistributedRadiusJob(RadiusJob):
         left = max_steps - (lz.steps if lz is not None else 0)
         # a slice of SLICE seconds per chunk of about CHUNK_SECONDS: the estimate gets SLICE / CHUNK_SECONDS
         # of the sweeping time
-        from relaxtui.solver.driver import CHUNK_SECONDS
+        from relaxtui.solver.methods import CHUNK_SECONDS
 
         return left * step <= remaining_seconds * self.SLICE / CHUNK_SECONDS
 

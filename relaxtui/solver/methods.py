@@ -29,6 +29,7 @@ from relaxtui.errors import UsageError
 from relaxtui.solver import young
 
 MAX_CHUNK = 1000  # most sweeps the driver runs in one chunk (a stepper may ask for fewer)
+CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 
 
 @dataclass(frozen=True)
