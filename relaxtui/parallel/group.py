@@ -91,13 +91,17 @@ def _wait_command(comm) -> np.ndarray:
     return buf
 
 
-def _wide(op, bounds, a: int, b: int) -> np.ndarray:
-    """The class codes of the multigrid set-up band of strip [a, b) (see relaxtui.parallel.multigrid.bands), padded
-    with rows of zeros (the band's own edges are outside it)."""
+def _band(op, bounds, a: int, b: int) -> tuple[int, int]:
+    """Rows [S, T) of the multigrid set-up band of strip [a, b) (see relaxtui.parallel.multigrid.bands)."""
     from relaxtui.parallel import multigrid as pm
 
-    rows = op.shape[0]
-    S, T = pm.bands(a, b, rows, pm.split_depth(bounds, op.shape, pm.gather_cells()), pm.MARGIN)
+    return pm.bands(a, b, op.shape[0], pm.split_depth(bounds, op.shape, pm.gather_cells()), pm.MARGIN)
+
+
+def _wide(op, bounds, a: int, b: int) -> tuple[np.ndarray, int, int]:
+    """The class codes of the set-up band of strip [a, b), padded with rows of zeros (the band's own
+    edges are outside it), and the band's rows (S, T)."""
+    S, T = _band(op, bounds, a, b)
     wide = op.cls[S : T + 2].copy()
     wide[0] = 0
     wide[-1] = 0
@@ -105,11 +109,14 @@ def _wide(op, bounds, a: int, b: int) -> np.ndarray:
 
 
 def _part(op, case, a: int, b: int, bounds, multigrid: bool) -> tuple[dict, np.ndarray, np.ndarray]:
+    from relaxtui.parallel import multigrid as pm
+
     rows, cols = op.shape
     meta = {
         "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str, "bounds": bounds,
         "per_cell": bool(getattr(getattr(op, "physics", None), "per_cell", False)),
-        "wide": _wide(op, bounds, a, b)[1:] if multigrid else None,
+        "wide": _band(op, bounds, a, b) if multigrid else None,
+        "gather_cells": pm.gather_cells() if multigrid else None,  # rank 0's, so that all ranks split alike
         "up_codes": case.codes[a - 1].copy() if a > 0 else None,
         "dn_codes": case.codes[b].copy() if b < rows else None,
         "table": op.table, "diag": op.diag, "kind": op.kind, "value": op.value, "conductivity": op.conductivity,
@@ -346,6 +353,13 @@ class DistributedOperator:
             self._radius = DistributedRadiusJob(self)
         return self._radius
 
+    def jacobi_radius(self, **options):
+        """A Lanczos estimate of the Jacobi radius run to its end now (collective), as
+        :func:`relaxtui.solver.radius.jacobi_radius` with the same options; not the run's shared job."""
+        lz = DistributedLanczos(self, **options)
+        lz.advance()
+        return lz.estimate()
+
     def fingerprint(self) -> str:
         """The single-process operator's fingerprint (its radius cache files serve both)."""
         return self._fingerprint
@@ -372,8 +386,8 @@ class DistributedLanczos(RitzRule):
     decides after each step whether the ranks do another.
     """
 
-    def __init__(self, operator: "DistributedOperator", method_sweeps=None):
-        p = _lanczos_defaults()
+    def __init__(self, operator: "DistributedOperator", method_sweeps=None, **options):
+        p = {**_lanczos_defaults(), **options}
         super().__init__(p["min_steps"], p["max_steps"], p["budget"], p["rtol"],
                          method_sweeps if method_sweeps is not None else p["method_sweeps"])
         self.operator = operator

@@ -95,6 +95,7 @@ class Strip:
         self.bounds = part.get("bounds")
         self.per_cell = bool(part.get("per_cell", False))
         self.wide = part.get("wide")  # (class codes of the multigrid set-up band, S, T) or None
+        self.gather_cells = part.get("gather_cells")  # multigrid: levels with fewer cells are gathered on rank 0
         self.mg = None  # the rank's share of a distributed multigrid (relaxtui.parallel.multigrid)
         self._mg_warm = False
         self.segments = assemble.segments(self.cls, MIN_RUN)
@@ -421,7 +422,7 @@ class Strip:
             warm_in_turn(self.comm, lambda: pm.warm(self, self.threads))
             self._mg_warm = True
         self.mg = pm.StripMultigrid(self.comm, self.bounds, (self.rows, self.cols), self.wide, self,
-                                    per_cell=self.per_cell, cells_limit=pm.gather_cells(), coarsest=COARSEST_UNKNOWNS,
+                                    per_cell=self.per_cell, cells_limit=self.gather_cells, coarsest=COARSEST_UNKNOWNS,
                                     nu=KRYLOV_SWEEPS, gamma=GAMMA)
         return self.mg
 
