@@ -166,7 +166,7 @@ class StripMultigrid:
         from relaxtui.solver.mgtables import bulk_table0, level0_tables
         from relaxtui.solver.multigrid import Level
 
-        t0 = time.perf_counter()
+        started = time.perf_counter()
         MPI = mpi()
         self.comm, self.rank, self.size = comm, comm.Get_rank(), comm.Get_size()
         self.up = self.rank - 1 if self.rank > 0 else MPI.PROC_NULL
@@ -268,7 +268,7 @@ class StripMultigrid:
         self.synced = False
         self.k = 0
         self.rz = 0.0
-        self.setup_seconds = time.perf_counter() - t0
+        self.setup_seconds = time.perf_counter() - started
 
     @staticmethod
     def _shape(level: int, shape) -> tuple[int, int]:
