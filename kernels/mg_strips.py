@@ -16,7 +16,7 @@ from relaxtui.kernels.mg_smoother import _smooth_row
 
 
 @kernel(parallel=True)
-def smooth9_rows(e, f, A, Dinv, omega, offset, parity, first_col, r0, r1, nblk):
+def smooth9_rows(e, f, A, omega, offset, parity, first_col, r0, r1, nblk):
     """Four-colour SOR of the padded rows r0..r1-1 whose global row (pi - 1 + offset) has ``parity``.
 
     ``first_col`` is the column parity updated first (0 in a forward sweep,
@@ -29,4 +29,4 @@ def smooth9_rows(e, f, A, Dinv, omega, offset, parity, first_col, r0, r1, nblk):
         for k in range(lo, hi):
             pi = r0 + k
             if ((pi - 1 + offset) & 1) == parity:
-                _smooth_row(e, f, A, Dinv, omega, pi, first_col, t)
+                _smooth_row(e, f, A, omega, pi, first_col, t)

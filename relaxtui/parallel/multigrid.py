@@ -289,10 +289,10 @@ class StripMultigrid:
     def memory_bytes(self) -> int:
         total = self.w0.nbytes + self.cls0.nbytes + self.p.nbytes + sum(x.nbytes for x in self.seg0)
         for L in self.levels[1:]:
-            total += L.A.nbytes + L.Dinv.nbytes + L.e.nbytes + L.f.nbytes + (L.P.nbytes if L.P is not None else 0)
+            total += L.A.nbytes + L.e.nbytes + L.f.nbytes + (L.P.nbytes if L.P is not None else 0)
         if self.coarse is not None:
             for L in self.coarse.levels:
-                total += L.A.nbytes + L.Dinv.nbytes + L.e.nbytes + L.f.nbytes + (L.P.nbytes if L.P is not None else 0)
+                total += L.A.nbytes + L.e.nbytes + L.f.nbytes + (L.P.nbytes if L.P is not None else 0)
             total += self.coarse.L.nbytes + self.coarse.cells.nbytes + self.coarse.index.nbytes
         return int(total)
 
@@ -342,7 +342,7 @@ class StripMultigrid:
         fp = 1 if reverse else 0
         for _ in range(self.nu):
             for parity in ((1, 0) if reverse else (0, 1)):
-                smooth9_rows(L.e, L.f, L.A, L.Dinv, omega, self.rng[l][0], parity, fp, r0, r1, L.nblk)
+                smooth9_rows(L.e, L.f, L.A, omega, self.rng[l][0], parity, fp, r0, r1, L.nblk)
                 self.exchange(L.e, l, 1)
 
     # --- the cycle -------------------------------------------------------------------------------
