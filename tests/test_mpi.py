@@ -341,6 +341,23 @@ def test_multigrid_iterates_as_one_process(ranks, tmp_path):
 
 
 @needs_mpi
+def test_probes_are_read_on_the_ranks_that_hold_them(tmp_path, capsys):
+    # The well-drawdown demo's probes lie in rows of every strip of 3; rank 0 holds only its own
+    # strip, so each chunk's probe values are read on their ranks (this once failed with an
+    # IndexError on rank 0). Red-black SOR gives the single-process field for the same sweeps,
+    # so the probe log matches it number for number (the times differ).
+    case = GRIDS / "well-drawdown.toml"
+    opts = ["--method", "red-black-sor", "--omega", "1.8", "--max-sweeps", "60", "-q"]
+    assert single(["solve", case, *opts, "--out", tmp_path / "one.npy", "--probes", tmp_path / "one.csv"], tmp_path, capsys) == 1
+    code, _, err = mpirun(3, ["solve", case, *opts, "--out", "many.npy", "--probes", "many.csv"], tmp_path)
+    assert code == 1, err
+    one = np.loadtxt(tmp_path / "one.csv", delimiter=",", skiprows=1, ndmin=2)
+    many = np.loadtxt(tmp_path / "many.csv", delimiter=",", skiprows=1, ndmin=2)
+    assert one.shape[1] == many.shape[1] >= 3 and one[-1, 0] == many[-1, 0] == 60
+    assert np.array_equal(one[-1, 2:], many[-1, 2:])
+
+
+@needs_mpi
 def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
     # rank 1 fails while rank 0 waits in a receive that will never be matched: without the
     # guard the job hangs (the MPI notes' trap 4); with it, one line and a non-zero exit
