@@ -107,7 +107,7 @@ def _lead(comm, group, args, threads: int) -> int:
     first = next((p for p in (report_path, out, history_path, args.picture, args.vtk, args.bundle) if p is not None), None)
     cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-              time_limit=args.time_limit, initial=initial, radius_cache=cache)
+              time_limit=args.time_limit, initial=initial, radius_cache=cache, precision=getattr(args, "precision", None))
     if run.method not in DISTRIBUTED_METHODS + STEPPED_METHODS:
         raise UsageError(refusal(run.method))
     interrupted = threading.Event()

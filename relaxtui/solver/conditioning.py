@@ -111,7 +111,7 @@ def inverse_norm(run) -> tuple[float, str]:
     return found
 
 
-def rounding_floor(inv_norm: float, scale: float, cells: int = 1) -> float:
+def rounding_floor(inv_norm: float, scale: float, cells: int = 1, eps: float = _EPS) -> float:
     """The attainable accuracy in field units: ``FLOOR_SAFETY * kappa * eps * max |u| / sqrt(cells)``.
 
     ``kappa * eps * max |u|`` is the worst case, rounding errors of the residual
@@ -122,9 +122,14 @@ def rounding_floor(inv_norm: float, scale: float, cells: int = 1) -> float:
     near-singular case of tests/test_edges.py (32 x 30 cells held by convection
     faces of coefficient 1e-10) measures a true error of 2.5e-4 against this
     estimate's 3.4e-3 (the worst case says 0.05).
+
+    ``eps`` is the field's machine epsilon: float64's by default, float32's for
+    a single-precision run, whose field is rounded to float32 on every store
+    (each cell's residual at the fixed point is then a float32 rounding of its
+    own, of size about ``eps32 * max |u|``: the same random-sign model).
     """
     s = max(abs(float(scale)), np.finfo(float).tiny)
-    return FLOOR_SAFETY * NORM_OF_OPERATOR * inv_norm * _EPS * s / math.sqrt(max(int(cells), 1))
+    return FLOOR_SAFETY * NORM_OF_OPERATOR * inv_norm * float(eps) * s / math.sqrt(max(int(cells), 1))
 
 
 def attach(rule, run) -> None:
