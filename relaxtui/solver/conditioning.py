@@ -97,13 +97,13 @@ def inverse_norm(run) -> tuple[float, str]:
         est = op.radius_job().result() if mu is None else None  # the operator's shared estimate, if finished
         if est is not None:
             mu = est.mu
-        elif mu is None and not hasattr(op, "jacobi_apply"):  # an operator split across MPI ranks
-            est = op.radius_job().run()
-            mu, how = est.mu, f"from a Lanczos estimate of the Jacobi radius ({est.steps} steps)"
         elif mu is None:
-            from relaxtui.solver.radius import jacobi_radius
+            if hasattr(op, "jacobi_apply"):
+                from relaxtui.solver.radius import jacobi_radius
 
-            mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
+                mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
+            else:  # an operator split across MPI ranks: the same estimate, its vectors by strips
+                mu = op.jacobi_radius(min_steps=30, max_steps=LANCZOS_STEPS).mu
             how = f"from a Lanczos estimate of the Jacobi radius ({LANCZOS_STEPS} steps at most)"
         gap = 1.0 - float(mu)
         found = (ESTIMATE_SAFETY / gap if gap > 0.0 else math.inf, how)

@@ -25,10 +25,9 @@ from relaxtui.case import model
 from relaxtui.errors import UsageError
 from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
-from relaxtui.solver.methods import MAX_CHUNK, get_method
+from relaxtui.solver.methods import CHUNK_SECONDS, MAX_CHUNK, get_method  # noqa: F401 - CHUNK_SECONDS re-exported
 from relaxtui.solver.outcome import Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
 
-CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
 QUICK_RADIUS_STEPS = 30  # large grids with auto omega: Lanczos steps (beside the sweeps) before omega is set from them
