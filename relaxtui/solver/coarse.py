@@ -40,7 +40,7 @@ import numpy as np
 
 from relaxtui.solver.young import sor_sweeps as _sor_sweeps
 
-SMOOTHING_SWEEPS = 8  # red-black Gauss-Seidel sweeps on the prolonged Ritz vector (see benchmarks/omega.py)
+SMOOTHING_SWEEPS = 16  # red-black Gauss-Seidel sweeps on the prolonged Ritz vector (tests/test_coarse_radius.py)
 BYTES_PER_CELL = 9  # the peak of stages 1-3 per fine cell: coarse operator 4, two Lanczos vectors 4, Ritz vector 1
 
 
