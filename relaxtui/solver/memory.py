@@ -19,19 +19,29 @@ resident
   after the decode      7               memory the allocators keep once the PNG is
                                         decoded (measured in RSS; tracemalloc does
                                         not see it)
-  Jacobi radius         24              3 Lanczos vectors (padded), methods that use
-                                        the radius; they live until the estimate is
-                                        final (beside the sweeps on large grids, kept
-                                        paused by a run that stops first)
 phases (the largest counts)
-  sweep buffers         8 each          ``Method.buffers`` of the registry (Jacobi:
+  sweeps                                the sweep buffers, and the Jacobi radius
+                                        estimate beside them (methods that use it)
+    sweep buffers       8 each          ``Method.buffers`` of the registry (Jacobi:
                                         old and new iterate), padded; released
                                         when the run ends
-  output copy           8               the exported field built for the report
+    Jacobi radius       9               pictures of more than radius.COARSE_UNKNOWNS
+                                        cells: the two-level estimate
+                                        (relaxtui.solver.coarse: coarse operator 4,
+                                        two coarse Lanczos vectors 4, Ritz vector 1)
+                        24              smaller pictures: three fine Lanczos vectors
+                                        (padded); either is freed once the estimate
+                                        is final, and ``relaxtui solve`` drops an
+                                        unfinished one before its output (a screen
+                                        session keeps it, paused, for its next run)
+  output                8               the exported field built for the report
+                                        (the sweep buffers are released before it)
   method's own          ``Method.bytes_per_cell``: the set-up peak of what
                                         the method builds (multigrid 55: hierarchy
                                         planes, set-up temporaries, CG vectors)
-  decoded picture       6               while the PNG is decoded
+  decoded picture       16              while the PNG is decoded in row strips (RSS,
+                                        Pillow's buffers included); 44 for a picture
+                                        of up to picture.STRIP_PIXELS, decoded whole
 fixed                   200 MiB         interpreter, numba, compiled code, UI,
                                         the decoder's and report's fixed buffers
 ======================  ==============  =========================================
@@ -61,10 +71,12 @@ CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
 REGION_CODE_BYTES_PER_CELL = 1
 DECODE_RETAINED_BYTES_PER_CELL = 7  # resident memory the allocators keep after the PNG decode (RSS, 2900²)
-RADIUS_BYTES_PER_CELL = 24  # Lanczos vectors of the Jacobi-radius estimate (padded cells)
+RADIUS_BYTES_PER_CELL = 24  # fine Lanczos vectors of the Jacobi-radius estimate (padded cells), small pictures
+COARSE_RADIUS_BYTES_PER_CELL = 9  # the two-level estimate (relaxtui.solver.coarse.BYTES_PER_CELL), larger ones
 BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
-PICTURE_BYTES_PER_CELL = 6
+PICTURE_BYTES_PER_CELL = 16  # while a large PNG is decoded in strips (peak RSS 16.2 B/cell at 4097², 18.9 at 2049²)
+WHOLE_PICTURE_BYTES_PER_CELL = 44  # pictures of up to picture.STRIP_PIXELS, decoded whole (tracemalloc 42.6, 770² RGB)
 FIXED_BYTES = 200 * 1024 * 1024
 
 
@@ -104,15 +116,19 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
                 + DECODE_RETAINED_BYTES_PER_CELL * cells)
     from relaxtui.options import DEFAULT_METHOD
     from relaxtui.solver.methods import METHODS
+    from relaxtui.solver.radius import COARSE_UNKNOWNS  # compared with the cells: the unknowns are not known yet
 
     m = METHODS.get(method if isinstance(method, str) else DEFAULT_METHOD)
-    buffers = BUFFER_BYTES_PER_CELL * m.buffers * padded if m is not None else 0
+    sweeps = BUFFER_BYTES_PER_CELL * m.buffers * padded if m is not None else 0
     if m is None or m.uses_radius:
-        # the Lanczos vectors live until the estimate is final: a run that ends first (a limit, a
-        # cancel) keeps them, paused, for the next run on the operator
-        resident += RADIUS_BYTES_PER_CELL * padded
-    phases = [PICTURE_BYTES_PER_CELL * cells + REGION_CODE_BYTES_PER_CELL * cells,
-              resident + max(buffers, OUTPUT_BYTES_PER_CELL * cells)]  # the buffers are released before the report
+        # the estimate runs beside the sweeps; it is freed when final, or dropped before the output of a solve
+        per = COARSE_RADIUS_BYTES_PER_CELL if cells > COARSE_UNKNOWNS else RADIUS_BYTES_PER_CELL
+        sweeps += per * padded
+    from relaxtui.case.picture import STRIP_PIXELS
+
+    decode = WHOLE_PICTURE_BYTES_PER_CELL if cells <= STRIP_PIXELS else PICTURE_BYTES_PER_CELL
+    phases = [decode * cells + REGION_CODE_BYTES_PER_CELL * cells,
+              resident + sweeps, resident + OUTPUT_BYTES_PER_CELL * cells]  # the buffers are released before the output
     if m is not None and m.bytes_per_cell:
         phases.append(resident + m.bytes_per_cell * cells)
     if per_cell:  # case format v1.1 per-cell path: its weight arrays stay resident
