@@ -1,6 +1,6 @@
 """Strong scaling of the strip-decomposed sweeps across MPI ranks, and a model of larger jobs.
 
-    python benchmarks/mpi_scaling.py [--sizes 4096,8191] [--ranks 1,2,4] [--aquifer SWEEPS] [--markdown FILE]
+    python benchmarks/mpi_scaling.py [--sizes 4096,8191] [--ranks 1,2,4] [--aquifer SWEEPS] [--multigrid N] [--markdown FILE]
 
 Needs the mpi extra (``pip install '.[mpi]'``). Sections:
 
@@ -18,6 +18,10 @@ Needs the mpi extra (``pip install '.[mpi]'``). Sections:
 4. ``--aquifer SWEEPS``: ``relaxtui solve grids/large-aquifer.toml --method
    red-black-sor --max-sweeps SWEEPS`` in one process (2 threads) and on 2
    ranks (1 thread each): wall time and the reports' agreement.
+5. ``--multigrid N``: ``relaxtui solve`` with the case's own [solver]
+   (multigrid) on grids/large-aquifer.toml and on an N x N plate, one
+   process (2 threads) against 2 ranks (1 thread each): iterations, the
+   stopping rule's factor, seconds per iteration, field difference.
 
 The machine these numbers come from has 2 cores; with P = 4 the ranks are
 oversubscribed (2 per core) and the table says so. Other work on the machine
@@ -212,41 +216,86 @@ def fmt_t(s: float) -> str:
     return f"{s * 1e3:.3g} ms" if s >= 1e-3 else f"{s * 1e6:.3g} µs"
 
 
-def aquifer(lines: list[str], max_sweeps: int) -> None:
-    exe = Path(sys.executable).with_name("relaxtui")
-    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "relaxtui"]
-    case = ROOT / "grids" / "large-aquifer.toml"
-    out = {}
+def solve_both(case: Path, args: list[str], stem: str) -> tuple[dict, Path]:
+    """``relaxtui solve CASE ARGS`` in one process (2 threads) and on 2 ranks (1 thread each), each in a
+    folder of its own (no run reuses the other's Jacobi-radius cache file); {label: (wall, report, code)}."""
     import tempfile
 
+    exe = Path(sys.executable).with_name("relaxtui")
+    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "relaxtui"]
+    out = {}
     base = Path(tempfile.mkdtemp(prefix="relaxtui-mpi-"))
     for label, pre, threads in (("1 process x 2 threads", [], 2), ("mpiexec -n 2 x 1 thread", [mpiexec(), "-n", "2"], 1)):
-        tmp = base / f"t{threads}"  # a folder each: no run reuses the other's Jacobi-radius cache file
+        tmp = base / f"t{threads}"
         tmp.mkdir()
-        rep = tmp / f"aquifer-{threads}.json"
+        rep = tmp / f"{stem}-{threads}.json"
         t0 = time.perf_counter()
-        proc = subprocess.run(pre + cmd + ["solve", str(case), "--method", "red-black-sor", "--omega", str(AQUIFER_OMEGA),
-                                           "--max-sweeps", str(max_sweeps),
-                                           "-q", "--report", str(rep),
-                                           "--out", str(tmp / f"aquifer-{threads}.npy")],
+        proc = subprocess.run(pre + cmd + ["solve", str(case), *args, "-q", "--report", str(rep),
+                                           "--out", str(tmp / f"{stem}-{threads}.npy")],
                               env=child_env(threads), capture_output=True, text=True, cwd=tmp)
         wall = time.perf_counter() - t0
         r = json.loads(rep.read_text())
         out[label] = (wall, r, proc.returncode)
+    return out, base
+
+
+def field_difference(base: Path, stem: str) -> float:
+    a, b = (np.load(base / f"t{t}" / f"{stem}-{t}.npy") for t in (2, 1))
+    return float(np.nanmax(np.abs(a - b)))
+
+
+def aquifer(lines: list[str], max_sweeps: int) -> None:
+    case = ROOT / "grids" / "large-aquifer.toml"
+    out, base = solve_both(case, ["--method", "red-black-sor", "--omega", str(AQUIFER_OMEGA), "--max-sweeps", str(max_sweeps)],
+                           "aquifer")
     lines += ["", f"## large-aquifer.toml, --method red-black-sor --omega {AQUIFER_OMEGA} --max-sweeps {max_sweeps}", "",
               "| run | ω note |", "|---|---|"] + [f"| {k} | {v[1]['omega_note']} |" for k, v in out.items()] + ["",
-              "Its [solver] says multigrid, which does not run across ranks; red-black SOR does not reach the demo's "
-              "tolerance (README), so both runs stop at the same sweep limit and can be compared cell by cell. ω is given: "
+              "Red-black SOR does not reach the demo's tolerance (README), so both runs stop at the same sweep limit "
+              "and can be compared cell by cell. ω is given: "
               "with auto ω a grid this large starts at a provisional ω that depends on how many Lanczos steps fit "
               "its first seconds, in one process as on several.", "",
               "| run | wall s | solve s | set-up s | sweeps | status | omega | max head | imbalance |", "|---|---|---|---|---|---|---|---|---|"]
     for label, (wall, r, code) in out.items():
         lines.append(f"| {label} | {wall:.1f} | {r['seconds']:.1f} | {r['prepare_seconds']:.1f} | {r['sweeps']} | {r['status']} "
                      f"| {r['omega']:.8f} | {r['max']:.6f} | {r['imbalance']:.3g} |")
-    a, b = (np.load(base / f"t{t}" / f"aquifer-{t}.npy") for t in (2, 1))
     lines.append("")
-    lines.append(f"largest field difference between the two runs: {np.nanmax(np.abs(a - b)):.3g} m "
+    lines.append(f"largest field difference between the two runs: {field_difference(base, 'aquifer'):.3g} m "
                  f"(tolerance {out['1 process x 2 threads'][1]['tolerance']:g} m)")
+
+
+def plate_files(folder: Path, n: int) -> Path:
+    """The plate of :func:`plate_case` as a picture and a case file (multigrid, tolerance 1e-6)."""
+    from PIL import Image
+
+    rgb = np.full((n, n, 3), 255, dtype=np.uint8)
+    rgb[:, 0] = rgb[:, -1] = rgb[-1, :] = (0, 0, 255)
+    rgb[0, :] = (255, 0, 0)
+    Image.fromarray(rgb, "RGB").save(folder / "plate.png")
+    body = ['title = "plate"', 'quantity = "temperature"', 'unit = "K"', 'mask = "plate.png"', "cell_size = 1.0", "snap = false",
+            "", "[solver]", 'method = "multigrid"', "tolerance = 1e-6", ""]
+    for name, colour, rest in (("plate", "#ffffff", 'kind = "interior"\nconductivity = 1.0'),
+                               ("hot", "#ff0000", 'kind = "fixed"\nvalue = 1.0'), ("cold", "#0000ff", 'kind = "fixed"\nvalue = 0.0')):
+        body += ["[[region]]", f'name = "{name}"', f'color = "{colour}"', rest, ""]
+    (folder / "plate.toml").write_text("\n".join(body), encoding="utf-8")
+    return folder / "plate.toml"
+
+
+def multigrid(lines: list[str], n: int) -> None:
+    """Multigrid (the cases' own [solver]) in one process and on 2 ranks: iterations, factor, time per iteration."""
+    import tempfile
+
+    cases = [("large-aquifer.toml", ROOT / "grids" / "large-aquifer.toml"),
+             (f"plate {n}²", plate_files(Path(tempfile.mkdtemp(prefix="relaxtui-plate-")), n))]
+    lines += ["", "## multigrid, one process against 2 ranks", "",
+              "| case | run | wall s | solve s | set-up s | iterations | s / iteration | factor | status | field difference |",
+              "|---|---|---|---|---|---|---|---|---|---|"]
+    for name, case in cases:
+        out, base = solve_both(case, [], "mg")
+        diff = field_difference(base, "mg")
+        for label, (wall, r, code) in out.items():
+            per = r["seconds"] / max(1, r["sweeps"])
+            lines.append(f"| {name} | {label} | {wall:.1f} | {r['seconds']:.2f} | {r['prepare_seconds']:.1f} | {r['sweeps']} "
+                         f"| {per:.3f} | {r['convergence_factor']:.4g} | {r['status']} | {diff:.3g} |")
 
 
 def main() -> None:
@@ -254,6 +303,7 @@ def main() -> None:
     p.add_argument("--sizes", default="4096,8191")
     p.add_argument("--ranks", default="1,2,4")
     p.add_argument("--aquifer", type=int, metavar="SWEEPS", help="also time large-aquifer.toml, red-black SOR, SWEEPS sweeps")
+    p.add_argument("--multigrid", type=int, metavar="N", help="also compare multigrid on the aquifer and an N x N plate")
     p.add_argument("--markdown")
     p.add_argument("--inner", nargs=2, metavar=("N", "METHOD"))
     p.add_argument("--inner-single", nargs=2, metavar=("N", "METHOD"))
@@ -321,6 +371,8 @@ def main() -> None:
                              f"| {fmt_t(m['total'])} | {100 * m['comm_share']:.2g} % |")
     if a.aquifer:
         aquifer(lines, a.aquifer)
+    if a.multigrid:
+        multigrid(lines, a.multigrid)
     text = "\n".join(lines) + "\n"
     print(text)
     if a.markdown:

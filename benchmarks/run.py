@@ -17,6 +17,7 @@ starts one more child per measurement):
 +  scale      benchmarks/scale.py: the rows of the scale issue (multigrid vs pyamg, set-up vs
               cycles, the 16 383² picture, sweep rates vs the copy kernel, peak memory, auto ω share)
    kernels    benchmarks/kernels.py (the kernel developer's checks): only with --only kernels
+   precision  benchmarks/precision.py: single ÷ double sweep rates (also in scale): only with --only precision
 
 Timings are medians of 5 repeats after a warm-up, with min–max; where a single
 run is long the repeats are reduced and the table says n=. ``--quick`` uses
@@ -42,7 +43,7 @@ sys.path.insert(0, str(HERE))
 
 import common  # noqa: E402
 
-SECTIONS = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "kernels", "multigrid", "scale")
+SECTIONS = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "kernels", "multigrid", "scale", "precision")
 MODULES = {"roofline": "roofline", "tolerance": "tolerance", "scaling": "scaling", "threads": "threads",
            "startup": "startup", "memory": "footprint"}
 DEFAULT = ("roofline", "tolerance", "scaling", "threads", "startup", "memory", "multigrid", "scale")

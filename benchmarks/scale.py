@@ -14,6 +14,8 @@ Rows (sizes: full / ``--quick``):
   this benchmark allows itself: see docs/design/scale.md.)
 - sweep rates, uniform 4096² / 1024²: red-black ÷ Jacobi and Jacobi ÷ the copy kernel
   (16 B/cell each), timed in one round-robin in this process.
+- single precision (a float32 field) ÷ double, Jacobi and red-black SOR, 4096² / 1024²
+  (also alone: ``python benchmarks/precision.py``).
 - peak memory of a relaxation solve with report and exports (``--out``, ``--report``,
   ``--history``; 20 sweeps), one material, red-black SOR and Jacobi: 4095² / 1023².
 - automatic ω set-up (prepare seconds of the report) as a share of a red-black SOR run to 1e-4:
@@ -173,6 +175,32 @@ def rate_rows(n: int) -> list[dict]:
             row(f"Jacobi ÷ copy bandwidth {n}²", round(j_c, 2), "ratio", "16 B/cell each", ">= 0.85", j_c >= 0.85)]
 
 
+def precision_rows(n: int) -> list[dict]:
+    """Sweep rate of a float32 field (``--precision single``) over a float64 one, uniform n², Jacobi and
+    red-black SOR, timed in one round-robin (the same operator, the same starting field)."""
+    import numba
+
+    from relaxtui.solver.assembled import Operator
+
+    op = Operator(common.model_case(n))
+    fields = {p: op.new_field(precision=p) for p in ("double", "single")}
+    s = 5
+    upd, res = np.zeros(s), np.zeros(s)
+    fns = {}
+    for method, label in (("jacobi", "Jacobi"), ("red-black-sor", "red-black")):
+        for p, u in fields.items():
+            fns[(label, p)] = (lambda u=u, method=method: op.sweep(u, method, 1.0, s, upd, res))
+    t = common.round_robin({f"{a} {b}": f for (a, b), f in fns.items()}, 7)
+    rate = {x: op.cells_streamed * s / np.median(v) / 1e6 for x, v in t.items()}
+    out = []
+    for label in ("Jacobi", "red-black"):
+        ratio = float(np.median([t[f"{label} double"][i] / t[f"{label} single"][i] for i in range(7)]))
+        out.append(row(f"{label} sweep rate single ÷ double {n}²", round(ratio, 2), "ratio",
+                       f"{numba.get_num_threads()} threads; Mcell/s: double {rate[f'{label} double']:.0f}, single "
+                       f"{rate[f'{label} single']:.0f} (median of per-round ratios)", ">= 1.7", ratio >= 1.7))
+    return out
+
+
 def memory_rows(folder: Path, n: int) -> list[dict]:
     toml = model_picture(folder, n)
     out = []
@@ -207,6 +235,7 @@ def run(quick: bool = False) -> list[dict]:
     with tempfile.TemporaryDirectory(prefix="relaxtui-scale-") as tmp:
         folder = Path(tmp)
         rows += rate_rows(1024 if quick else 4096)
+        rows += precision_rows(1024 if quick else 4096)
         rows += memory_rows(folder, 1021 if quick else 4093)
         rows += multigrid_rows(folder, 511 if quick else 2047)
         rows += setup_rows(folder, 1023 if quick else 8191)
@@ -217,12 +246,13 @@ def run(quick: bool = False) -> list[dict]:
     return rows
 
 
-def main(argv=None) -> int:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def main(argv=None, rows=None, doc=None) -> int:
+    """The command line of this file, or of another whose ``rows(quick)`` and ``doc`` are given."""
+    p = argparse.ArgumentParser(description=(doc or __doc__).splitlines()[0])
     p.add_argument("--quick", action="store_true", help="small sizes (a few minutes)")
     p.add_argument("--json", action="store_true", help="print the rows as JSON")
     args = p.parse_args(argv)
-    common.print_rows(run(args.quick), args.json)
+    common.print_rows((rows or run)(args.quick), args.json)
     return 0
 
 

@@ -8,6 +8,11 @@ than +inf's. So ``max`` over ``abs_bits(x)`` is an integer reduction, which
 vectorises, and ``from_bits`` of the result is the largest |x|, or NaN if any
 x was NaN: a non-finite update cannot hide.
 
+A float32 argument (a single-precision field's difference computed in float32)
+is widened to float64 first, exactly; the sweeps of ``relaxtui.kernels.sweeps``
+compute their updates in float64 whatever the field's type, so their path is the
+float64 one.
+
 With ``NUMBA_DISABLE_JIT=1`` the same functions run as plain Python.
 """
 
@@ -31,7 +36,16 @@ else:
 
     @intrinsic
     def abs_bits(typingctx, x):
-        """|x| as its IEEE-754 bit pattern (int64)."""
+        """|x| as its IEEE-754 bit pattern (int64) of a double; a float32 is widened to double first
+        (exact, order- and NaN-preserving), so maxima of either type come back through from_bits."""
+        if x == types.float32:
+            sig = types.int64(types.float32)
+
+            def codegen(context, builder, signature, args):
+                bits = builder.bitcast(builder.fpext(args[0], ir.DoubleType()), ir.IntType(64))
+                return builder.and_(bits, ir.Constant(ir.IntType(64), 0x7FFFFFFFFFFFFFFF))
+
+            return sig, codegen
         sig = types.int64(types.float64)
 
         def codegen(context, builder, signature, args):

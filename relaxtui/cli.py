@@ -16,9 +16,11 @@ from relaxtui.options import (
     parse_max_sweeps,
     parse_method,
     parse_omega,
+    parse_precision,
     parse_time_limit,
     parse_tolerance,
 )
+from relaxtui.options import PRECISIONS
 from relaxtui.solver.methods import METHOD_NAMES, OMEGA_SCAN_METHODS
 
 SUBCOMMANDS = ("init", "info", "solve", "sweep", "open", "render")
@@ -59,6 +61,12 @@ def _add_limits(p: argparse.ArgumentParser, time_help: str | None = None) -> Non
         p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help=time_help)
 
 
+def _add_precision(p: argparse.ArgumentParser, what: str = "the working field's storage") -> None:
+    p.add_argument("--precision", type=argparse_type(parse_precision), metavar="{" + ",".join(PRECISIONS) + "}",
+                   help=f"{what}: double (float64) or single (float32, relaxation methods; the exported field "
+                        "stays float64). Default: the case's [solver] table, else double")
+
+
 def _add_picture_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--scale", type=_positive_int("scale"), default=1, metavar="K", help="picture pixels per cell (integer, default 1)")
     p.add_argument("--isolines", type=_positive_int("isolines"), metavar="N", help="draw N evenly spaced isolines on the picture")
@@ -82,11 +90,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("case", metavar="CASE.toml")
     p.add_argument("--ranks", type=_positive_int("ranks"), metavar="P",
                    help="also print the memory each of P MPI ranks needs (mpiexec -n P relaxtui solve)")
+    _add_precision(p, "the storage the memory estimate assumes")
 
     p = sub.add_parser("solve", help="solve a case headless and write field, report and history", description="Solve a case to its tolerance without a screen.")
     p.add_argument("case", metavar="CASE.toml")
     _add_solver_options(p)
     p.add_argument("--time-limit", type=argparse_type(parse_time_limit), metavar="S", help="stop after S seconds, set-up included (outputs are still written)")
+    _add_precision(p)
     p.add_argument("--initial", metavar="FIELD.npy", help="start from this field (.npy, or a .npz bundle) instead of the default guess")
     p.add_argument("--out", metavar="FIELD.npy", help="write the field (float64, NaN outside the domain)")
     p.add_argument("--report", metavar="REPORT.json", help="write the report")
@@ -105,6 +115,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help=f"method for the omega range ({' or '.join(OMEGA_SCAN_METHODS)}, default red-black-sor)")
     p.add_argument("--methods", metavar="M1,M2,...", help="methods to compare, each at auto omega")
     _add_limits(p, "time limit per solve, its set-up included")
+    _add_precision(p, "the working field's storage of every solve")
     p.add_argument("--csv", metavar="FILE", help="also write the table as CSV")
     p.add_argument("-q", "--quiet", action="store_true")
 

@@ -32,6 +32,8 @@ DEFAULT_METHOD = "red-black-sor"
 DEFAULT_OMEGA = "auto"
 DEFAULT_TOLERANCE = 1e-3
 DEFAULT_MAX_SWEEPS = 200_000
+DEFAULT_PRECISION = "double"
+PRECISIONS = ("double", "single")  # the working field's storage: float64 or float32 (issue 14, case format v1.1)
 
 _GROUPING = (" ", "\u202f", "\u2009", "\u00a0", "_")  # thousands separators accepted in a typed sweep count
 
@@ -96,14 +98,19 @@ def _suggestion(text: str, names) -> str:
     return f" (did you mean '{close[0]}'?)" if close else ""
 
 
+def _one_of(value, names, subject: str, shown: str, kind: str = "a string") -> str:
+    """``value`` if it is one of ``names`` (shown in messages as ``shown``), else :class:`UsageError`."""
+    if not isinstance(value, str):
+        raise UsageError(f"{subject} must be {kind}, not {_type_name(value)} ({_show(value)})")
+    if value not in names:
+        raise UsageError(f"{subject} must be one of {shown}; got {value!r}{_suggestion(value, names)}")
+    return value
+
+
 def check_method(value, subject: str = "method") -> str:
     """A method name, or :class:`UsageError` naming the known ones."""
     names = method_names()
-    if not isinstance(value, str):
-        raise UsageError(f"{subject} must be a string, not {_type_name(value)} ({_show(value)})")
-    if value not in names:
-        raise UsageError(f"{subject} must be one of {', '.join(names)}; got {value!r}{_suggestion(value, names)}")
-    return value
+    return _one_of(value, names, subject, ", ".join(names))
 
 
 def parse_method(text: str, subject: str = "method") -> str:
@@ -219,6 +226,19 @@ def parse_max_sweeps(text: str, subject: str = "max sweeps") -> int:
     return check_max_sweeps(value, subject)
 
 
+# --- precision -------------------------------------------------------------------------------
+
+
+def check_precision(value, subject: str = "precision") -> str:
+    """The working field's storage: ``"double"`` (float64) or ``"single"`` (float32)."""
+    shown = ", ".join(map(repr, PRECISIONS))
+    return _one_of(value, PRECISIONS, subject, shown, f"one of {shown}")
+
+
+def parse_precision(text: str, subject: str = "precision") -> str:
+    return check_precision(text.strip().lower() if isinstance(text, str) else text, subject)
+
+
 # --- argparse ------------------------------------------------------------------------------------
 
 
@@ -251,9 +271,11 @@ class Options:
     max_sweeps: int
     time_limit: float | None = None
     note: str = ""  # what resolving left aside (a case's ω that does not apply to the method chosen)
+    precision: str = DEFAULT_PRECISION  # "double" or "single": the working field's storage
 
 
-KEYS = ("method", "omega", "tolerance", "max_sweeps", "time_limit")
+KEYS = ("method", "omega", "tolerance", "max_sweeps", "time_limit", "precision")
+CASE_KEYS = ("method", "omega", "tolerance", "max_sweeps", "precision")  # the keys a [solver] table may give
 
 
 def resolve(cli: dict | None = None, case_solver=None) -> Options:
@@ -263,7 +285,7 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     ----------
     cli : dict
         Any of ``method``, ``omega``, ``tolerance``, ``max_sweeps``,
-        ``time_limit``; ``None`` (or a missing key) means "not given". Values
+        ``time_limit``, ``precision``; ``None`` (or a missing key) means "not given". Values
         may be typed or text (text goes through the ``parse_*`` functions).
     case_solver : relaxtui.case.model.SolverDefaults or None
         The case's table (its ``None`` fields are silent).
@@ -277,7 +299,7 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     unknown = set(cli) - set(KEYS)
     if unknown:
         raise UsageError(f"unknown solver option {sorted(unknown)[0]!r}; the options are {', '.join(KEYS)}")
-    case = {k: getattr(case_solver, k, None) for k in KEYS[:4]} if case_solver is not None else {}
+    case = {k: getattr(case_solver, k, None) for k in CASE_KEYS} if case_solver is not None else {}
 
     def pick(key):
         if cli.get(key) is not None:
@@ -309,4 +331,6 @@ def resolve(cli: dict | None = None, case_solver=None) -> Options:
     max_sweeps = parse_max_sweeps(max_sweeps) if max_sweeps is not None else DEFAULT_MAX_SWEEPS
     time_limit = cli.get("time_limit")
     time_limit = parse_time_limit(time_limit) if time_limit is not None else None
-    return Options(method, omega, tolerance, max_sweeps, time_limit, note)
+    precision, _ = pick("precision")
+    precision = parse_precision(precision) if precision is not None else DEFAULT_PRECISION
+    return Options(method, omega, tolerance, max_sweeps, time_limit, note, precision)

@@ -64,24 +64,26 @@ needs_mpi = pytest.mark.skipif(not HAVE_MPI4PY, reason="mpi4py is not installed:
 LAUNCHER_PREFIXES = ("PMI_", "PMIX_", "HYDRA_", "MPIR_", "OMPI_", "I_MPI_", "MPI_LOCAL")
 
 
-def clean_env() -> dict:
+def clean_env(extra: dict | None = None) -> dict:
     env = {k: v for k, v in os.environ.items() if not k.startswith(LAUNCHER_PREFIXES)}
     env["NUMBA_NUM_THREADS"] = "1"
+    env.update(extra or {})
     return env
 
 
-def mpirun(ranks: int, args, cwd: Path, *, term_after: float | None = None, timeout: float = LAUNCH_TIMEOUT):
+def mpirun(ranks: int, args, cwd: Path, *, term_after: float | None = None, timeout: float = LAUNCH_TIMEOUT,
+           env: dict | None = None):
     """Run ``mpiexec -n ranks python -m relaxtui ARGS`` in ``cwd``; returns (code, stdout, stderr)."""
     exe = _mpiexec()
     assert exe is not None, "mpi4py is installed but no mpiexec was found next to the interpreter or on PATH"
     cmd = [exe, "-n", str(ranks), sys.executable, "-m", "relaxtui", *[str(a) for a in args]]
-    return _launch(cmd, cwd, term_after=term_after, timeout=timeout)
+    return _launch(cmd, cwd, term_after=term_after, timeout=timeout, env=env)
 
 
-def _launch(cmd, cwd, *, term_after=None, timeout=LAUNCH_TIMEOUT, ready=None):
+def _launch(cmd, cwd, *, term_after=None, timeout=LAUNCH_TIMEOUT, ready=None, env=None):
     """Run ``cmd`` in its own session; with ``term_after``, send SIGTERM that many seconds after
     stderr first contains ``ready``. Returns (code, stdout, stderr)."""
-    proc = subprocess.Popen(cmd, cwd=cwd, env=clean_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    proc = subprocess.Popen(cmd, cwd=cwd, env=clean_env(env), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
     chunks = {"out": [], "err": []}
     readers = [threading.Thread(target=lambda s=stream, k=key: chunks[k].extend(iter(s.readline, "")), daemon=True)
@@ -296,11 +298,46 @@ def test_refused_method_and_bad_case_end_every_rank_with_one_line(tmp_path):
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 1 and "red-black-sor" in lines[0] and "MPI" in lines[0], err
     assert not (tmp_path / "f.npy").exists()
-    code, _, err = mpirun(2, ["solve", case, "--method", "multigrid", "-q"], tmp_path)
-    assert code == 2 and len([ln for ln in err.splitlines() if ln.strip()]) == 1 and "multigrid" in err, err
+    code, _, err = mpirun(2, ["solve", case, "--method", "symmetric-sor", "-q"], tmp_path)
+    assert code == 2 and len([ln for ln in err.splitlines() if ln.strip()]) == 1 and "symmetric-sor" in err, err
     code, _, err = mpirun(3, ["solve", tmp_path / "missing.toml", "-q"], tmp_path)
     assert code == 2 and "Traceback" not in err
     assert len([ln for ln in err.splitlines() if ln.strip()]) == 1, err
+
+
+@needs_mpi
+@pytest.mark.parametrize("ranks", [2, 3])
+def test_multigrid_iterates_as_one_process(ranks, tmp_path):
+    # The distributed cycle is the single-process cycle (same kernels on the same values, strips
+    # trading halo rows), so CG's iterations agree to rounding: the per-iteration residuals and the
+    # factor of the stopping rule (the issue asks for the factor within 10 %; rounding only is expected),
+    # the level hierarchy, and the field. Reference: the single-process run, one numba thread (its
+    # parallel kernels then run serially: a deterministic reference). On 2 ranks the electrodes demo
+    # keeps levels 0-2 split (gathering below 500 cells; 3 is the coarsest); on 3 ranks the masked case
+    # (uneven strips, holes, every boundary kind) gathers level 1, the coarsest.
+    if ranks == 2:
+        case, env = GRIDS / "electrodes.toml", {"RELAXTUI_MPI_GATHER_CELLS": "500"}
+    else:
+        case, env = masked_case(tmp_path), {}
+    opts = ["solve", str(case), "--method", "multigrid", "--tolerance", "1e-9", "-q"]
+    one = subprocess.run([sys.executable, "-m", "relaxtui", *opts, *outputs("one")], cwd=tmp_path, env=clean_env(),
+                         capture_output=True, text=True, timeout=LAUNCH_TIMEOUT)
+    assert one.returncode == 0, one.stderr
+    code, _, err = mpirun(ranks, [*opts, *outputs("many")], tmp_path, env=env)
+    assert code == 0, err
+    f1, r1, h1 = read(tmp_path, "one")
+    fp, rp, hp = read(tmp_path, "many")
+    assert set(rp) == set(r1) and rp["status"] == r1["status"] == "converged"
+    assert rp["sweeps"] == r1["sweeps"] >= 3
+    assert rp["method_info"]["levels"] == r1["method_info"]["levels"]
+    split = "levels 0-2 split" if ranks == 2 else "levels 0-0 split"
+    assert split in rp["method_info"]["cycle"] and rp["method_info"]["cycle"].startswith(r1["method_info"]["cycle"])
+    assert np.allclose(hp[:, 2], h1[:, 2], rtol=1e-6, atol=0.0)  # residual per iteration
+    # the factor comes from the last, smallest updates (near 1e-9 of the field): rounding shows there first
+    assert rp["convergence_factor"] == pytest.approx(r1["convergence_factor"], rel=1e-2)
+    scale = np.nanmax(np.abs(f1))
+    assert np.nanmax(np.abs(fp - f1)) <= 1e-9 * scale
+    assert np.array_equal(np.isnan(fp), np.isnan(f1))
 
 
 @needs_mpi

@@ -45,6 +45,15 @@ def main() -> int:
                 with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
                     with contextlib.suppress(Exception, SystemExit):
                         cli(argv)
+        # the float32 builds of the relaxation kernels (--precision single, tests/test_precision.py)
+        toml = GRIDS / "electrodes.toml"
+        for method in METHODS[1:] if toml.exists() else ():
+            stem = out / f"single-{method}"
+            argv = ["solve", str(toml), "--method", method, "--precision", "single", "--max-sweeps", "3", "-q",
+                    "--report", f"{stem}.json", "--out", f"{stem}.npy"]
+            with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+                with contextlib.suppress(Exception, SystemExit):
+                    cli(argv)
     return 0
 
 

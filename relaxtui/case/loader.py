@@ -44,7 +44,7 @@ from relaxtui.options import type_name as _type_name
 from relaxtui.solver import memory
 
 TOP_KEYS = ("title", "quantity", "unit", "mask", "cell_size", "depth", "snap", "solver", "region") + physics.TOP_KEYS_V11
-SOLVER_KEYS = ("method", "omega", "tolerance", "max_sweeps")
+SOLVER_KEYS = ("method", "omega", "tolerance", "max_sweeps", "precision")
 COMMON_KEYS = ("name", "color", "kind")
 # Keys each kind takes besides name, color and kind; and which of them are required.
 KIND_KEYS = {
@@ -140,7 +140,8 @@ def _parse_solver(raw, lines: KeyLines, chk: _Checker) -> SolverDefaults:
     who = "[solver]: "
     values = {}
     for key, check in (("method", options.check_method), ("omega", options.check_omega),
-                       ("tolerance", options.check_tolerance), ("max_sweeps", options.check_max_sweeps)):
+                       ("tolerance", options.check_tolerance), ("max_sweeps", options.check_max_sweeps),
+                       ("precision", options.check_precision)):
         if key in raw:
             try:
                 values[key] = check(raw[key], f"key {key!r}")
@@ -153,7 +154,7 @@ def _parse_solver(raw, lines: KeyLines, chk: _Checker) -> SolverDefaults:
         except UsageError as exc:
             chk.fail(lines.table_line("solver", "omega"), f"{who}{exc}")
     tolerance, max_sweeps = values.get("tolerance"), values.get("max_sweeps")
-    return SolverDefaults(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps)
+    return SolverDefaults(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, precision=values.get("precision"))
 
 
 def _parse_region(i: int, raw, lines: KeyLines, chk: _Checker) -> tuple[dict, int | None]:
@@ -329,7 +330,8 @@ def load_case(path: str | Path) -> Case:
     picture.require_regular_file(mask_path, mask_label, "PNG picture")
     header = picture.read_header(mask_path, mask_label)
     per_cell = geometry == "axisymmetric" or any(k in f for f, _ in parsed for k in physics.MAP_KEYS)
-    check_memory(header.height, header.width, solver.method, len(regions), mask_label, per_cell=per_cell)
+    check_memory(header.height, header.width, solver.method, len(regions), mask_label, per_cell=per_cell,
+                 precision=solver.precision)
     decoded = picture.decode(mask_path, mask_label)
     codes, snapped = picture.match(decoded, [f["packed"] for f, _ in parsed], snap=snap, label=mask_label)
     del decoded
@@ -362,9 +364,10 @@ def load_case(path: str | Path) -> Case:
     )
 
 
-def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str, per_cell: bool = False) -> None:
+def check_memory(rows: int, cols: int, method: str | None, materials: int, label: str, per_cell: bool = False,
+                 precision: str | None = None) -> None:
     """Refuse a picture whose solve would need more memory than is available."""
-    need = memory.estimate_solve_bytes(rows, cols, method, materials, per_cell=per_cell)
+    need = memory.estimate_solve_bytes(rows, cols, method, materials, per_cell=per_cell, precision=precision)
     have = memory.available_bytes()
     if have is not None and need > have:
         raise CaseError(

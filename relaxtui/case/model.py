@@ -61,6 +61,7 @@ class SolverDefaults:
     omega: float | str | None = None  # a number in (0, 2) or "auto"
     tolerance: float | None = None
     max_sweeps: int | None = None
+    precision: str | None = None  # "double" or "single" (case format v1.1)
 
 
 @dataclass(eq=False)

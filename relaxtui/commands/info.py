@@ -103,8 +103,9 @@ def _map_params(case: Case, r, text: str) -> str:
     return text
 
 
-def describe(case: Case, console=None, ranks: int | None = None) -> None:
-    """Print the description of a loaded case to a rich console."""
+def describe(case: Case, console=None, ranks: int | None = None, precision: str | None = None) -> None:
+    """Print the description of a loaded case to a rich console (``precision``: over the case's
+    [solver] table, the field storage the memory estimate assumes)."""
     from rich.console import Console
     from rich.table import Table
     from rich.text import Text
@@ -117,7 +118,8 @@ def describe(case: Case, console=None, ranks: int | None = None) -> None:
     faces, border = faces_with_interior(case)
     method = case.solver.method or DEFAULT_METHOD
     per_cell = bool(getattr(case, "maps", ())) or getattr(case, "geometry", "planar") == "axisymmetric"
-    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions), per_cell=per_cell)
+    precision = precision or case.solver.precision or "double"
+    need = memory.estimate_solve_bytes(rows, cols, method, len(case.regions), per_cell=per_cell, precision=precision)
     have = memory.available_bytes()
     h = case.cell_size
     unit = case.unit
@@ -149,6 +151,9 @@ def describe(case: Case, console=None, ranks: int | None = None) -> None:
         solver.append(f"tolerance {s.tolerance:g}{' ' + printable(unit) if unit else ''}")
     if s.max_sweeps is not None:
         solver.append(f"at most {s.max_sweeps:,} sweeps")
+    if precision != "double":
+        solver.append(f"{precision} precision" + ("" if memory.field_bytes_per_cell(method, precision) == 4
+                                                  else f" (not for {method}: float64)"))
     facts.add_row("solver", ", ".join(solver))
     mem = f"a solve needs about {memory.format_bytes(need)}; {memory.format_bytes(have)} available"
     facts.add_row("memory", Text(mem, style="bold red") if have is not None and need > have else mem)
@@ -235,5 +240,5 @@ def run(args) -> int:
     from relaxtui.case import load_case
 
     case = load_case(args.case)
-    describe(case, ranks=getattr(args, "ranks", None))
+    describe(case, ranks=getattr(args, "ranks", None), precision=getattr(args, "precision", None))
     return 0

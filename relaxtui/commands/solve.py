@@ -203,13 +203,17 @@ def run(args) -> int:
     check_output_set(outputs, {"case file": args.case, "picture": case.mask_path, "initial field": args.initial})
     _check_picture_options(args, case)
     # every solver option is validated before anything is loaded or solved
-    resolve_options(case, args.method, args.omega, args.tolerance, args.max_sweeps, args.time_limit)
+    precision = getattr(args, "precision", None)
+    resolve_options(case, args.method, args.omega, args.tolerance, args.max_sweeps, args.time_limit, precision)
     initial = _load_initial(args.initial, case) if args.initial is not None else None
     # the Jacobi radius of the case's operator is cached beside the outputs (a second solve then starts at once)
     first = next((p for p in (report_path, out, history_path, args.picture, args.vtk, args.bundle) if p is not None), None)
     cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-              time_limit=args.time_limit, initial=initial, radius_cache=cache)
+              time_limit=args.time_limit, initial=initial, radius_cache=cache, precision=precision)
+    if run.precision_request == "single" and run.method_info.kernel is None and not args.quiet:
+        print(f"relaxtui solve: note: single precision applies to the relaxation methods; {run.method} runs in "
+              "double precision (the report's precision says so)", file=sys.stderr)
     for path in outputs.values():
         if path is not None:
             clean_stale_temps(path)
@@ -267,6 +271,8 @@ def _summary(result, written) -> None:
     unit = f" {safe(r['unit'])}" if r["unit"] else ""
     con.print(f"[bold {style}]{r['status']}[/]: {safe(r['message'])}")
     con.print(f"  {r['method']}, omega {r['omega']:.4f} ({safe(r['omega_note'])})")
+    if r.get("precision", "double") != "double" or r.get("precision_note"):
+        con.print(f"  {r['precision']} precision: {safe(r['precision_note'])}")
     con.print(f"  {group(r['sweeps'])} sweeps in {r['seconds']:.2f} s (+{r['prepare_seconds']:.2f} s set-up); "
               f"largest residual {_g(r['residual'])}{unit}; factor {_g(r['convergence_factor'], 6)}")
     if r["min"] is not None:

@@ -78,7 +78,8 @@ def run(args) -> int:
     case = load_case(args.case)
     # validate every setting before the first solve
     for method, w in settings:
-        Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit)
+        Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit,
+            precision=getattr(args, "precision", None))
 
     op = Operator(case)  # one operator: its Jacobi radius is estimated once for every solve
     cache = Path(args.csv).resolve().parent if args.csv else None  # on disk beside the table, if one is written
@@ -90,7 +91,7 @@ def run(args) -> int:
                 break
             label = f"relaxtui sweep: [{number}/{len(settings)}] {method} omega {'auto' if w == 'auto' else f'{w:g}'}"
             run = Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-                      time_limit=args.time_limit, operator=op, radius_cache=cache)
+                      time_limit=args.time_limit, operator=op, radius_cache=cache, precision=getattr(args, "precision", None))
             run.prepare()
             last = time.monotonic()
             while not run.done:

@@ -143,6 +143,8 @@ def build_report(run, field: np.ndarray) -> dict:
         "omega": float(run.omega),
         "omega_note": run.omega_note,
         "omega_changes": [{"sweep": s, "omega": w, "note": note} for s, w, note in run.omega_changes],
+        "precision": getattr(run, "precision", "double"),  # the working field's storage used: "double" or "single"
+        "precision_note": getattr(run, "precision_note", ""),
         "tolerance": run.tolerance,
         "status": run.status,
         "message": run.message,

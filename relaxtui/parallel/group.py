@@ -30,9 +30,11 @@ from relaxtui.parallel.comm import quiet_barrier, quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
 from relaxtui.solver.radius import Lanczos, RadiusJob, RitzRule
 
-DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")
-SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP = range(1, 12)
-TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL = 31, 32, 33, 34
+DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips (the operator's ``sweep``)
+STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
+(SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
+ MG_RELEASE) = range(1, 15)
+TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 
 
 def refusal(method: str) -> str:
@@ -41,8 +43,18 @@ def refusal(method: str) -> str:
         return (f"{method} does not run across MPI ranks: its lexicographic order makes every row wait for the one "
                 "above; use red-black-sor (the same equations in a parallel order) or jacobi under mpiexec, "
                 f"or run {method} without mpiexec")
-    return (f"{method} does not run across MPI ranks in this version; use red-black-sor or jacobi under mpiexec, "
-            f"or run {method} without mpiexec")
+    return (f"{method} does not run across MPI ranks in this version; use multigrid, red-black-sor or jacobi under "
+            f"mpiexec, or run {method} without mpiexec")
+
+
+def sweep_arguments(omega, sweeps) -> tuple[float, int]:
+    """ω and the sweep count of a sweep command, checked on rank 0 before the command is sent."""
+    omega = float(omega)
+    if not 0.0 < omega < 2.0:
+        raise UsageError(f"omega must lie in (0, 2), got {omega}")
+    if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
+        raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
+    return omega, int(sweeps)
 
 
 class Group:
@@ -79,10 +91,32 @@ def _wait_command(comm) -> np.ndarray:
     return buf
 
 
-def _part(op, case, a: int, b: int) -> tuple[dict, np.ndarray, np.ndarray]:
+def _band(op, bounds, a: int, b: int) -> tuple[int, int]:
+    """Rows [S, T) of the multigrid set-up band of strip [a, b) (see relaxtui.parallel.multigrid.bands)."""
+    from relaxtui.parallel import multigrid as pm
+
+    return pm.bands(a, b, op.shape[0], pm.split_depth(bounds, op.shape, pm.gather_cells()), pm.MARGIN)
+
+
+def _wide(op, bounds, a: int, b: int) -> tuple[np.ndarray, int, int]:
+    """The class codes of the set-up band of strip [a, b), padded with rows of zeros (the band's own
+    edges are outside it), and the band's rows (S, T)."""
+    S, T = _band(op, bounds, a, b)
+    wide = op.cls[S : T + 2].copy()
+    wide[0] = 0
+    wide[-1] = 0
+    return wide, S, T
+
+
+def _part(op, case, a: int, b: int, bounds, multigrid: bool) -> tuple[dict, np.ndarray, np.ndarray]:
+    from relaxtui.parallel import multigrid as pm
+
     rows, cols = op.shape
     meta = {
-        "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str,
+        "a": a, "b": b, "rows": rows, "cols": cols, "cls_dtype": op.cls.dtype.str, "bounds": bounds,
+        "per_cell": bool(getattr(getattr(op, "physics", None), "per_cell", False)),
+        "wide": _band(op, bounds, a, b) if multigrid else None,
+        "gather_cells": pm.gather_cells() if multigrid else None,  # rank 0's, so that all ranks split alike
         "up_codes": case.codes[a - 1].copy() if a > 0 else None,
         "dn_codes": case.codes[b].copy() if b < rows else None,
         "table": op.table, "diag": op.diag, "kind": op.kind, "value": op.value, "conductivity": op.conductivity,
@@ -100,17 +134,23 @@ def _receive_part(comm) -> dict:
     codes = np.empty((n, meta["cols"]), dtype=np.uint8)
     comm.Recv(codes, source=0, tag=TAG_CODES)
     meta["cls"], meta["codes"] = cls, codes
+    if meta["wide"] is not None:
+        S, T = meta["wide"]
+        wide = np.empty((T - S + 2, meta["cols"] + 2), dtype=cls.dtype)
+        comm.Recv(wide, source=0, tag=TAG_WIDE)
+        meta["wide"] = (wide, S, T)
     return meta
 
 
-def _warm_in_turn(comm, strip: Strip) -> None:
-    """Rank 0 loads or compiles the kernels first; the others wait (sleeping) and then load them from the cache."""
+def warm_in_turn(comm, warm) -> None:
+    """Rank 0 loads or compiles the kernels first (``warm()``); the others wait (sleeping) and then load them
+    from the cache."""
     if comm.Get_rank() == 0:
-        strip.warm()
+        warm()
         quiet_barrier(comm)
     else:
         quiet_barrier(comm)
-        strip.warm()
+        warm()
     quiet_barrier(comm)
 
 
@@ -125,7 +165,7 @@ class DistributedOperator:
     strip's rows, not the whole grid.
     """
 
-    def __init__(self, case, group: Group, threads: int):
+    def __init__(self, case, group: Group, threads: int, multigrid: bool = False):
         from relaxtui.solver.assembled import Operator
 
         comm = group.comm
@@ -134,6 +174,13 @@ class DistributedOperator:
         rows, cols = op.shape
         if rows < ranks:
             raise UsageError(f"the grid has {rows} rows, fewer than the {ranks} MPI ranks: start at most {rows} ranks")
+        if multigrid:
+            from relaxtui.solver.multigrid import COARSEST_UNKNOWNS, DIRECT_UNKNOWNS
+
+            if op.unknowns <= min(COARSEST_UNKNOWNS, DIRECT_UNKNOWNS) or rows < 2 * ranks:
+                raise UsageError(f"multigrid across {ranks} MPI ranks needs at least {2 * ranks} rows and more than "
+                                 f"{min(COARSEST_UNKNOWNS, DIRECT_UNKNOWNS)} unknowns (this grid: {rows} rows, "
+                                 f"{op.unknowns} unknowns); run it without mpiexec")
         self.case = case
         self.group = group
         self.shape = op.shape
@@ -158,18 +205,24 @@ class DistributedOperator:
         self.inverse_norm = (exact, "exact") if exact is not None else None
         self.threads = threads
         self.bounds = split_rows(np.count_nonzero(op.cls[1:-1], axis=1), ranks)
+        if multigrid and min(b - a for a, b in self.bounds) < 2:
+            self.bounds = split_rows(np.ones(rows), ranks)  # every strip needs two rows for the transfers' halo
         group.send(SETUP)
         group.busy = True
         for r in range(1, ranks):
-            meta, cls, codes = _part(op, case, *self.bounds[r])
+            meta, cls, codes = _part(op, case, *self.bounds[r], self.bounds, multigrid)
             comm.send(meta, dest=r, tag=TAG_META)
             comm.Send(cls, dest=r, tag=TAG_CLS)
             comm.Send(codes, dest=r, tag=TAG_CODES)
-        meta, cls, codes = _part(op, case, *self.bounds[0])
+            if multigrid:
+                comm.Send(_wide(op, self.bounds, *self.bounds[r])[0], dest=r, tag=TAG_WIDE)
+        meta, cls, codes = _part(op, case, *self.bounds[0], self.bounds, multigrid)
         meta["cls"], meta["codes"] = cls.copy(), codes
+        if multigrid:
+            meta["wide"] = _wide(op, self.bounds, *self.bounds[0])
         del op, cls  # rank 0 keeps its strip only (and the case's picture)
         self.strip = Strip(comm, meta, threads)
-        _warm_in_turn(comm, self.strip)
+        warm_in_turn(comm, self.strip.warm)
         group.busy = False
 
     # --- the working array ----------------------------------------------------------------
@@ -222,12 +275,7 @@ class DistributedOperator:
         self._check_field(u)
         if method not in DISTRIBUTED_METHODS:
             raise UsageError(refusal(method))
-        omega = float(omega)
-        if not 0.0 < omega < 2.0:
-            raise UsageError(f"omega must lie in (0, 2), got {omega}")
-        if isinstance(sweeps, bool) or not isinstance(sweeps, (int, np.integer)) or sweeps < 0:
-            raise UsageError(f"sweeps must be a whole number >= 0, got {sweeps!r}")
-        sweeps = int(sweeps)
+        omega, sweeps = sweep_arguments(omega, sweeps)
         with self.group.collective(SWEEP, DISTRIBUTED_METHODS.index(method), omega, sweeps):
             upd_bits, res_bits = self.strip.sweep(method, omega, sweeps)
         upd = upd_bits.view(np.float64)
@@ -238,6 +286,14 @@ class DistributedOperator:
 
     def release(self) -> None:
         self.strip.tmp = None
+
+    def make_stepper(self, method: str):
+        """The stepper of a method that is not a relaxation sweep (multigrid), None for the others."""
+        if method in STEPPED_METHODS:
+            from relaxtui.parallel.multigrid import DistributedMultigrid
+
+            return DistributedMultigrid(self)
+        return None
 
     # --- measures ------------------------------------------------------------------------------
 
@@ -297,6 +353,13 @@ class DistributedOperator:
             self._radius = DistributedRadiusJob(self)
         return self._radius
 
+    def jacobi_radius(self, **options):
+        """A Lanczos estimate of the Jacobi radius run to its end now (collective), as
+        :func:`relaxtui.solver.radius.jacobi_radius` with the same options; not the run's shared job."""
+        lz = DistributedLanczos(self, **options)
+        lz.advance()
+        return lz.estimate()
+
     def fingerprint(self) -> str:
         """The single-process operator's fingerprint (its radius cache files serve both)."""
         return self._fingerprint
@@ -323,8 +386,8 @@ class DistributedLanczos(RitzRule):
     decides after each step whether the ranks do another.
     """
 
-    def __init__(self, operator: "DistributedOperator", method_sweeps=None):
-        p = _lanczos_defaults()
+    def __init__(self, operator: "DistributedOperator", method_sweeps=None, **options):
+        p = {**_lanczos_defaults(), **options}
         super().__init__(p["min_steps"], p["max_steps"], p["budget"], p["rtol"],
                          method_sweeps if method_sweeps is not None else p["method_sweeps"])
         self.operator = operator
@@ -412,7 +475,7 @@ class DistributedRadiusJob(RadiusJob):
         left = max_steps - (lz.steps if lz is not None else 0)
         # a slice of SLICE seconds per chunk of about CHUNK_SECONDS: the estimate gets SLICE / CHUNK_SECONDS
         # of the sweeping time
-        from relaxtui.solver.driver import CHUNK_SECONDS
+        from relaxtui.solver.methods import CHUNK_SECONDS
 
         return left * step <= remaining_seconds * self.SLICE / CHUNK_SECONDS
 
@@ -460,7 +523,7 @@ def follow(comm, threads: int) -> int:
             return int(cmd[1])
         if code == SETUP:
             strip = Strip(comm, _receive_part(comm), threads)
-            _warm_in_turn(comm, strip)
+            warm_in_turn(comm, strip.warm)
         elif code == NEW_FIELD:
             initial = None
             if cmd[1]:
@@ -483,6 +546,12 @@ def follow(comm, threads: int) -> int:
             strip.lanczos_begin()
         elif code == LANCZOS_ADVANCE:
             strip.lanczos_advance()
+        elif code == MG_SETUP:
+            strip.multigrid_setup()
+        elif code == MG_SWEEP:
+            strip.mg.iterate(float(cmd[1]), int(cmd[2]))
+        elif code == MG_RELEASE:
+            strip.mg = None
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 

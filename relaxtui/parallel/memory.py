@@ -9,7 +9,10 @@ Lanczos vectors of the strip while the radius is estimated, before the
 second buffer and the export exist; the larger of the two phases counts.
 Strips are balanced by unknown count, so a strip of a masked picture can
 hold more rows than rows / P; the largest strip of an even split by rows is
-counted here.
+counted here. Multigrid (no radius) builds its coarse levels on a band wider
+than the strip by (MARGIN + GHOST) * 2**K rows on each side
+(:mod:`relaxtui.parallel.multigrid`): its set-up peak is counted on that band;
+rank 0's gathered coarse levels (fewer than 65 536 cells) are not counted.
 
 Rank 0 also decodes the picture (transient, 4 B/cell), keeps the region
 picture of the whole grid (1 B/cell, for the report and pictures),
@@ -30,6 +33,12 @@ def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: 
     """(rank 0's bytes, every other rank's bytes) for a ``rows`` x ``cols`` picture on ``ranks`` ranks."""
     rows, cols, ranks = int(rows), int(cols), max(1, int(ranks))
     n = -(-rows // ranks)  # the largest strip of an even split
+    if method == "multigrid" and ranks > 1:
+        from relaxtui.parallel import multigrid as pm
+
+        bounds = [(rows * r // ranks, rows * (r + 1) // ranks) for r in range(ranks)]
+        depth = pm.split_depth(bounds, (rows, cols), pm.gather_cells())
+        n = min(rows, n + 2 * (pm.MARGIN + pm.GHOST) * (1 << depth))
     code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
     # a strip with its two halo rows costs what a single-process solve of that many rows costs
     # (the same phases: radius estimate, sweeps, outputs), less the picture it never decodes

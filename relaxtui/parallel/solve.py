@@ -7,8 +7,9 @@ writes every output once (atomically, the same files); the other ranks hold
 their strips and follow (:mod:`relaxtui.parallel.group`).
 
 Methods: Jacobi and red-black SOR (the same fields as one process for the
-same sweeps). Lexicographic Gauss-Seidel and SOR and multigrid are refused
-with a one-line message and exit code 2.
+same sweeps) and multigrid (the same iterations to rounding, see
+:mod:`relaxtui.parallel.multigrid`). Lexicographic Gauss-Seidel, SOR and
+symmetric SOR are refused with a one-line message and exit code 2.
 
 Signals: SIGINT (Ctrl-C; mpiexec forwards it to every rank) and SIGTERM
 (also forwarded) end the run on rank 0 like the first Ctrl-C of a
@@ -91,7 +92,7 @@ def _lead(comm, group, args, threads: int) -> int:
     from relaxtui.case import load_case
     from relaxtui.commands.solve import (EXIT_CONVERGED, EXIT_INTERRUPTED, EXIT_NOT_CONVERGED, _default_outputs,
                                          _Display, _summary, _write_all)
-    from relaxtui.parallel.group import DISTRIBUTED_METHODS, DistributedOperator, refusal
+    from relaxtui.parallel.group import DISTRIBUTED_METHODS, STEPPED_METHODS, DistributedOperator, refusal
     from relaxtui.solver.driver import Run, check_outputs
 
     case = load_case(args.case)
@@ -106,15 +107,15 @@ def _lead(comm, group, args, threads: int) -> int:
     first = next((p for p in (report_path, out, history_path, args.picture, args.vtk, args.bundle) if p is not None), None)
     cache = Path(first).resolve().parent if first is not None else None
     run = Run(case, method=args.method, omega=args.omega, tolerance=args.tolerance, max_sweeps=args.max_sweeps,
-              time_limit=args.time_limit, initial=initial, radius_cache=cache)
-    if run.method not in DISTRIBUTED_METHODS:
+              time_limit=args.time_limit, initial=initial, radius_cache=cache, precision=getattr(args, "precision", None))
+    if run.method not in DISTRIBUTED_METHODS + STEPPED_METHODS:
         raise UsageError(refusal(run.method))
     interrupted = threading.Event()
     with _signals_to(interrupted):
         if not args.quiet:
             print(f"relaxtui: {comm.Get_size()} MPI ranks x {threads} numba thread{'s' if threads != 1 else ''}",
                   file=sys.stderr, flush=True)
-        run.operator = DistributedOperator(case, group, threads)
+        run.operator = DistributedOperator(case, group, threads, multigrid=run.method in STEPPED_METHODS)
         display = _Display(run, quiet=args.quiet)
         display.start("preparing")
         run.on_prepare = display.stage

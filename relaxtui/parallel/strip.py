@@ -92,6 +92,12 @@ class Strip:
             setattr(self, key, part[key])
         self.cell_size = float(part["cell_size"])
         self.regions = part["regions"]
+        self.bounds = part.get("bounds")
+        self.per_cell = bool(part.get("per_cell", False))
+        self.wide = part.get("wide")  # (class codes of the multigrid set-up band, S, T) or None
+        self.gather_cells = part.get("gather_cells")  # multigrid: levels with fewer cells are gathered on rank 0
+        self.mg = None  # the rank's share of a distributed multigrid (relaxtui.parallel.multigrid)
+        self._mg_warm = False
         self.segments = assemble.segments(self.cls, MIN_RUN)
         self.up = self.rank - 1 if self.rank > 0 else MPI.PROC_NULL
         self.dn = self.rank + 1 if self.rank < self.size - 1 else MPI.PROC_NULL
@@ -403,6 +409,22 @@ class Strip:
             spectral.scale_into(w[1:-1], 1.0 / beta_new, state["v"][1:-1])
             if not go_on:
                 return
+
+    # --- multigrid ---------------------------------------------------------------------------
+
+    def multigrid_setup(self):
+        """Build this rank's share of the distributed multigrid (collective; kernels loaded rank 0 first)."""
+        from relaxtui.parallel import multigrid as pm
+        from relaxtui.parallel.group import warm_in_turn
+        from relaxtui.solver.multigrid import COARSEST_UNKNOWNS, GAMMA, KRYLOV_SWEEPS
+
+        if not self._mg_warm:
+            warm_in_turn(self.comm, lambda: pm.warm(self, self.threads))
+            self._mg_warm = True
+        self.mg = pm.StripMultigrid(self.comm, self.bounds, (self.rows, self.cols), self.wide, self,
+                                    per_cell=self.per_cell, cells_limit=self.gather_cells, coarsest=COARSEST_UNKNOWNS,
+                                    nu=KRYLOV_SWEEPS, gamma=GAMMA)
+        return self.mg
 
     # --- compile once --------------------------------------------------------------------------
 

@@ -54,6 +54,7 @@ from relaxtui.solver.methods import METHODS
 SWEEP_METHODS = tuple(name for name, m in METHODS.items() if m.kernel is not None)
 MIN_RUN = 16  # shortest run of one class swept with constant weights
 PARALLEL_CELLS = 1 << 16  # below this many cells a sweep runs on one thread (no parallel start-up)
+FIELD_DTYPES = {"double": np.float64, "single": np.float32}  # the working array's storage by precision
 FLOW_BLOCKS = 64  # row blocks of the flows kernel: fixed, so sums do not depend on the thread count
 
 
@@ -119,7 +120,7 @@ class Operator:
             self.physics.assemble(assemble)
         else:
             self._assemble(assemble)
-        self._scratch = None
+        self._scratch = {}  # the sweep buffer per field type (float64, float32), made by the first sweep that needs it
         self._radius = None
         self._fingerprint = None
         # (norm of the inverse, how it was found): relaxtui.solver.conditioning fills it once per operator
@@ -228,7 +229,9 @@ class Operator:
         total = weights.sum()
         return float((weights * values).sum() / total) if total > 0 else 0.0
 
-    def new_field(self, initial: np.ndarray | None = None) -> np.ndarray:
+    single_precision = True  # new_field(precision="single"): the relaxation sweeps take a float32 field
+
+    def new_field(self, initial: np.ndarray | None = None, precision: str = "double") -> np.ndarray:
         """A new working array: fixed cells at their value, interior cells at ``initial`` or the default guess.
 
         Parameters
@@ -236,15 +239,22 @@ class Operator:
         initial : ndarray (rows, cols), optional
             Real numbers; must be finite on interior cells (anything, NaN
             included, elsewhere).
+        precision : "double" (float64, the default) or "single" (float32)
+            The storage of the working array. Every method of this operator
+            takes either: the kernels compute each update in float64 (the class
+            table is float64) and round it to the field's type on store;
+            residuals, flows and the exported field are float64.
 
         Returns
         -------
-        ndarray (rows + 2, cols + 2) float64, C-contiguous: the field padded
-        by one cell; :meth:`view` gives the (rows, cols) part.
+        ndarray (rows + 2, cols + 2) float64 (or float32), C-contiguous: the
+        field padded by one cell; :meth:`view` gives the (rows, cols) part.
         """
         from relaxtui.kernels import measure
 
-        u = np.zeros(self.padded_shape)
+        if precision not in FIELD_DTYPES:
+            raise UsageError(f"precision must be one of {', '.join(map(repr, FIELD_DTYPES))}, not {precision!r}")
+        u = np.zeros(self.padded_shape, dtype=FIELD_DTYPES[precision])
         if initial is None:
             measure.init_field(self.codes, self.kind, self.value, np.zeros((1, 1)), False, self.default_guess(), u)
             return u
@@ -259,7 +269,8 @@ class Operator:
         return u[1:-1, 1:-1]
 
     def _check_field(self, u, name: str = "field") -> None:
-        if not isinstance(u, np.ndarray) or u.shape != self.padded_shape or u.dtype != np.float64 or not u.flags.c_contiguous:
+        if (not isinstance(u, np.ndarray) or u.shape != self.padded_shape or u.dtype not in (np.float64, np.float32)
+                or not u.flags.c_contiguous):
             raise UsageError(f"the {name} must be a working array of this operator (from new_field)")
 
     # --- sweeps ------------------------------------------------------------------------------
@@ -316,9 +327,9 @@ class Operator:
             if name == "u":
                 args.append(u)
             elif name == "buffer":
-                if self._scratch is None and sweeps > 0:
-                    self._scratch = np.zeros(self.padded_shape)
-                args.append(self._scratch if self._scratch is not None else u)  # unused when sweeps == 0
+                if u.dtype not in self._scratch and sweeps > 0:
+                    self._scratch[u.dtype] = np.zeros(self.padded_shape, dtype=u.dtype)  # the field's type
+                args.append(self._scratch.get(u.dtype, u))  # unused when sweeps == 0
             elif name == "segments":
                 args.extend(self._segments)
             else:
@@ -337,8 +348,8 @@ class Operator:
         return True, max(1, min(threads, self.shape[0]))
 
     def release(self) -> None:
-        """Drop the sweep buffer (it is made again by the next sweep that needs it)."""
-        self._scratch = None
+        """Drop the sweep buffers (made again by the next sweep that needs one)."""
+        self._scratch = {}
 
     # --- measures ------------------------------------------------------------------------------
 
@@ -384,6 +395,9 @@ class Operator:
 
         out = np.empty(self.shape)
         measure.export_field(self.codes, self.kind, u, out)
+        if u.dtype != np.float64:  # fixed cells at their exact value, not its float32 rounding
+            fixed = self.kind[self.codes] == FIXED
+            out[fixed] = self.value[self.codes[fixed]]
         return out
 
     def jacobi_apply(self, x, out) -> None:
@@ -427,10 +441,11 @@ class Operator:
             self._fingerprint = h.hexdigest()
         return self._fingerprint
 
-    def memory_bytes(self, method: str) -> int:
+    def memory_bytes(self, method: str, precision: str = "double") -> int:
         """Bytes this operator and a solve with ``method`` hold: the operator's arrays, the working
         field, the method's sweep buffers (``Method.buffers``: Jacobi one) and the exported copy made by
-        :meth:`finish`.
+        :meth:`finish`. ``precision="single"``: a relaxation method's field and buffers are float32
+        (4 B per cell); the exported copy stays float64.
 
         Not counted: the case's own code array (owned by the case), and any
         hierarchy a multigrid solve builds on top of this operator.
@@ -438,7 +453,9 @@ class Operator:
         m = METHODS.get(method) if isinstance(method, str) else None
         if m is None:
             raise UsageError(f"unknown method {method!r}")
-        field = 8 * self.padded_shape[0] * self.padded_shape[1]
+        from relaxtui.solver.memory import field_bytes_per_cell
+
+        field = field_bytes_per_cell(method, precision) * self.padded_shape[0] * self.padded_shape[1]
         held = self.cls.nbytes + self.table.nbytes + self.diag.nbytes + sum(a.nbytes for a in self._segments)
         held += self.class_keys.nbytes + self.class_cells.nbytes
         total = held + field + 8 * self.shape[0] * self.shape[1]

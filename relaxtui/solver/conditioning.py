@@ -97,13 +97,13 @@ def inverse_norm(run) -> tuple[float, str]:
         est = op.radius_job().result() if mu is None else None  # the operator's shared estimate, if finished
         if est is not None:
             mu = est.mu
-        elif mu is None and not hasattr(op, "jacobi_apply"):  # an operator split across MPI ranks
-            est = op.radius_job().run()
-            mu, how = est.mu, f"from a Lanczos estimate of the Jacobi radius ({est.steps} steps)"
         elif mu is None:
-            from relaxtui.solver.radius import jacobi_radius
+            if hasattr(op, "jacobi_apply"):
+                from relaxtui.solver.radius import jacobi_radius
 
-            mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
+                mu = jacobi_radius(op.jacobi_apply, op.cls, op.diag, min_steps=30, max_steps=LANCZOS_STEPS).mu
+            else:  # an operator split across MPI ranks: the same estimate, its vectors by strips
+                mu = op.jacobi_radius(min_steps=30, max_steps=LANCZOS_STEPS).mu
             how = f"from a Lanczos estimate of the Jacobi radius ({LANCZOS_STEPS} steps at most)"
         gap = 1.0 - float(mu)
         found = (ESTIMATE_SAFETY / gap if gap > 0.0 else math.inf, how)
@@ -111,7 +111,7 @@ def inverse_norm(run) -> tuple[float, str]:
     return found
 
 
-def rounding_floor(inv_norm: float, scale: float, cells: int = 1) -> float:
+def rounding_floor(inv_norm: float, scale: float, cells: int = 1, eps: float = _EPS) -> float:
     """The attainable accuracy in field units: ``FLOOR_SAFETY * kappa * eps * max |u| / sqrt(cells)``.
 
     ``kappa * eps * max |u|`` is the worst case, rounding errors of the residual
@@ -122,9 +122,14 @@ def rounding_floor(inv_norm: float, scale: float, cells: int = 1) -> float:
     near-singular case of tests/test_edges.py (32 x 30 cells held by convection
     faces of coefficient 1e-10) measures a true error of 2.5e-4 against this
     estimate's 3.4e-3 (the worst case says 0.05).
+
+    ``eps`` is the field's machine epsilon: float64's by default, float32's for
+    a single-precision run, whose field is rounded to float32 on every store
+    (each cell's residual at the fixed point is then a float32 rounding of its
+    own, of size about ``eps32 * max |u|``: the same random-sign model).
     """
     s = max(abs(float(scale)), np.finfo(float).tiny)
-    return FLOOR_SAFETY * NORM_OF_OPERATOR * inv_norm * _EPS * s / math.sqrt(max(int(cells), 1))
+    return FLOOR_SAFETY * NORM_OF_OPERATOR * inv_norm * float(eps) * s / math.sqrt(max(int(cells), 1))
 
 
 def attach(rule, run) -> None:

@@ -25,25 +25,29 @@ from relaxtui.case import model
 from relaxtui.errors import UsageError
 from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
-from relaxtui.solver.methods import MAX_CHUNK, get_method
+from relaxtui.solver.methods import CHUNK_SECONDS, MAX_CHUNK, get_method  # noqa: F401 - CHUNK_SECONDS re-exported
 from relaxtui.solver.outcome import Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
 
-CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
 QUICK_RADIUS_STEPS = 30  # large grids with auto omega: Lanczos steps (beside the sweeps) before omega is set from them
 BACKGROUND_DELAY_SECONDS = 1.0  # given omega on a large grid: seconds of sweeping before the estimate starts beside them
 BACKGROUND_MIN_SECONDS = 5.0  # ... and only when the run may still go on this long (else it is not worth a core)
 RADIUS_SHARE_OF_TIME_LIMIT = 0.25  # with a time limit, the estimate holds the run back for at most this share of it
+NEAR_FLOOR_ULPS = 1e4  # single precision: updates below this many float32 roundings of the field's magnitude are
+# near its floor (rounding noise of up to ~130 of them measured with SOR at omega 1.9): the rule's scale is then
+# refreshed from the field, and the observed factor no longer corrects auto omega
+RESCALE_GROWTH = 1.25  # ... refreshed again once the run has done this many times the sweeps of the last refresh
 
 
-def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None):
+def resolve_options(case: model.Case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
+                    precision=None):
     """The call's options over the case's [solver] defaults, checked (see :func:`relaxtui.options.resolve`);
     returns (Method, ω or "auto", tolerance, max sweeps, time limit)."""
     from relaxtui.options import resolve
 
-    opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit),
-                   case.solver)
+    opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit,
+                        precision=precision), case.solver)
     return get_method(opts.method), opts.omega, opts.tolerance, opts.max_sweeps, opts.time_limit
 
 
@@ -54,11 +58,14 @@ class Run:
     the case's operator is cached between processes (see
     :mod:`relaxtui.solver.radius`); ``on_prepare(text)``: called while
     :meth:`prepare` works, with what it is doing and how far (also readable at
-    any time, from any thread, as :attr:`preparing`).
+    any time, from any thread, as :attr:`preparing`). ``precision``: "double" or "single" (over the
+    case's [solver] table): single keeps the working field in float32 for the relaxation methods;
+    :attr:`precision` is what the run uses (multigrid and MPI strips stay in double, and
+    :attr:`precision_note` says why).
     """
 
     def __init__(self, case, *, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
-                 initial=None, operator=None, field=None, radius_cache=None, on_prepare=None):
+                 initial=None, operator=None, field=None, radius_cache=None, on_prepare=None, precision=None):
         if not isinstance(case, model.Case):
             from relaxtui.case import load_case
 
@@ -66,12 +73,18 @@ class Run:
         self.case = case
         from relaxtui.options import resolve
 
-        opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit),
-                       case.solver)
+        opts = resolve(dict(method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps, time_limit=time_limit,
+                            precision=precision), case.solver)
         self.options = opts
         self.method_info = get_method(opts.method)
         self._omega_request, self.tolerance, self.max_sweeps, self.time_limit = opts.omega, opts.tolerance, opts.max_sweeps, opts.time_limit
         self.method = self.method_info.name
+        # the working field's storage: "single" (float32) for the relaxation sweeps of an assembled operator;
+        # set again by prepare() (a method or operator without a float32 path runs in double, with a note)
+        self.precision_request = opts.precision
+        self.precision = opts.precision
+        self.precision_note = ""
+        self._rescaled_at = 0  # sweeps when the stopping rule's scale was last refreshed from the field (single)
         self.operator = operator
         self._initial = initial
         self._continue = field
@@ -125,12 +138,13 @@ class Run:
 
             self.operator = Operator(self.case)
         op = self.operator
+        dtype = self._field_dtype(op)
         if self._continue is not None:
-            self._u = np.array(self._continue, dtype=np.float64, copy=True)
+            self._u = np.array(self._continue, dtype=dtype, copy=True)
             if self._u.shape != tuple(op.padded_shape):
                 raise UsageError("the field to continue from belongs to another case")
         else:
-            self._u = op.new_field(self._initial)
+            self._u = op.new_field(self._initial) if dtype == np.float64 else op.new_field(self._initial, precision="single")
         self._stage(f"loading the {self.method} kernels")
         self._stepper = self.method_info.make_stepper(op)
         self._upd = np.empty(MAX_CHUNK)
@@ -139,14 +153,33 @@ class Run:
         self._stepper.sweep(self._u, self.omega if self._omega_request != "auto" else 1.0, 0, self._upd, self._res)
         # a stepper may ask for its own rate window and envelope (multigrid: see relaxtui.solver.multigrid)
         self.rule = stopping.StoppingRule(self.tolerance, self.max_sweeps, self.time_limit, scale=self._scale(),
-                                          **self._stepper.rule_options)
-        conditioning.attach(self.rule, self)  # residual certificate and float64's attainable accuracy
+                                          dtype=self._u.dtype, **self._stepper.rule_options)
+        conditioning.attach(self.rule, self)  # residual certificate and the field's attainable accuracy (float64 or float32)
         self._choose_omega(self._omega_request)
         self._prepared = True
         self.prepare_seconds = time.perf_counter() - t0
         self.preparing = ""
         self.message = "running"
         self.progress = self._progress()
+
+    def _field_dtype(self, op):
+        """float32 for a single-precision run of a relaxation sweep on an assembled operator, else float64
+        (setting :attr:`precision` and :attr:`precision_note` to what the run really uses)."""
+        if self.precision_request != "single":
+            return np.float64
+        if self.method_info.kernel is None:
+            self.precision = "double"
+            self.precision_note = (f"single precision applies to the relaxation methods; {self.method} keeps its "
+                                   "field and levels in float64")
+            return np.float64
+        if not getattr(op, "single_precision", False):
+            self.precision = "double"
+            self.precision_note = "single precision is not available on this operator (MPI strips): the field is float64"
+            return np.float64
+        self.precision = "single"
+        self.precision_note = ("field stored in float32; sweeps compute in float64 and round on store; residuals, "
+                               "flows and the report accumulate in float64")
+        return np.float32
 
     def _scale(self) -> float:
         """Largest |value| of the starting field's interior and fixed cells and of the boundary values."""
@@ -401,6 +434,10 @@ class Run:
             k = self._stepper.sweep(self._u, self.omega, n, self._upd, self._res)
             dt = time.perf_counter() - t0
             first = self.rule.sweeps
+            if (self.precision == "single" and k and self._near_floor(float(self._upd[k - 1]))
+                    and first + k >= RESCALE_GROWTH * self._rescaled_at):
+                self._rescaled_at = first + k  # two passes over the field: not after every chunk
+                self.rule.rescale(max(float(self._u.max()), -float(self._u.min())))
             self.rule.add(self._upd[:k])
             self.seconds += dt
             done_sweeps += k
@@ -442,12 +479,18 @@ class Run:
         # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
         return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
 
+    def _near_floor(self, update: float) -> bool:
+        """Whether an update is within NEAR_FLOOR_ULPS roundings of the field (its type's epsilon) of nothing."""
+        return update <= NEAR_FLOOR_ULPS * self.rule.eps * self.rule.scale
+
     def _maybe_correct_omega(self) -> None:
         """Auto ω: if SOR converges clearly slower than Young predicts, the radius was low."""
         m = self.method_info
         if (self._omega_request != "auto" or self.mu is None or self._corrections >= MAX_OMEGA_CORRECTIONS
                 or m.invert is None or m.factor is None):
             return
+        if self.precision == "single" and len(self.rule.updates) and self._near_floor(float(self.rule.updates[-1])):
+            return  # float32's rounding noise slows the measured decay: it says nothing about the radius
         est = self.rule.last_estimate
         predicted = m.factor(self.mu, self.omega)
         meas = est.measured
@@ -500,7 +543,7 @@ class Run:
             if self.rule.reason:
                 return f"stalled after {n} sweeps: {self.rule.reason}"
             if self.rule.at_floor():
-                return (f"stalled after {n} sweeps: the updates are at float64's rounding floor while the "
+                return (f"stalled after {n} sweeps: the updates are at {self.rule.float_name}'s rounding floor while the "
                         f"estimated error {err} > {tol} (the tolerance is below what this grid resolves)")
             return f"stalled after {n} sweeps: no progress over a long window, estimated error {err} > {tol}"
         if status == stopping.DIVERGED:
@@ -563,7 +606,7 @@ def _group(n: int) -> str:
 
 
 def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_limit=None,
-          initial=None, on_progress=None, cancel_event=None) -> SolveResult:
+          initial=None, on_progress=None, cancel_event=None, precision=None) -> SolveResult:
     """Solve a case to its tolerance.
 
     Parameters
@@ -579,6 +622,10 @@ def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_l
     cancel_event : threading.Event, optional
         Set it from another thread to stop; the result then has status
         ``cancelled`` and the field reached so far.
+    precision : "double" or "single", optional
+        The working field's storage (over the case's ``[solver]`` table;
+        default double). Single stores the field in float32 for the
+        relaxation methods; the exported field is float64 either way.
 
     Returns
     -------
@@ -587,7 +634,7 @@ def solve(case, method=None, omega=None, tolerance=None, max_sweeps=None, time_l
         (the contract's keys), ``history``.
     """
     run = Run(case, method=method, omega=omega, tolerance=tolerance, max_sweeps=max_sweeps,
-              time_limit=time_limit, initial=initial)
+              time_limit=time_limit, initial=initial, precision=precision)
     run.prepare()
     while not run.done:
         if cancel_event is not None and cancel_event.is_set():

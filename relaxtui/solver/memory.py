@@ -13,7 +13,8 @@ largest transient of any one phase.
 array                   bytes per cell  note
 ======================  ==============  =========================================
 resident
-  working field         8               float64, padded by one cell all round
+  working field         8               float64, padded by one cell all round (4: float32,
+                                        ``precision = "single"``, relaxation methods)
   class codes           1 or 2          uint8 up to 256 classes, else uint16
   region codes          1               the case's own uint8 picture codes
   after the decode      7               memory the allocators keep once the PNG is
@@ -24,7 +25,7 @@ phases (the largest counts)
                                         estimate beside them (methods that use it)
     sweep buffers       8 each          ``Method.buffers`` of the registry (Jacobi:
                                         old and new iterate), padded; released
-                                        when the run ends
+                                        when the run ends (4 each in single)
     Jacobi radius       9               pictures of more than radius.COARSE_UNKNOWNS
                                         cells: the two-level estimate
                                         (relaxtui.solver.coarse: coarse operator 4,
@@ -87,7 +88,21 @@ FIXED_BYTES = 200 * 1024 * 1024
 PER_CELL_PATH_BYTES_PER_CELL = 3 + 40 + 8 + 16 + 128
 
 
-def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False) -> int:
+SINGLE_FIELD_BYTES_PER_CELL = 4  # float32: the field and sweep buffers of a single-precision relaxation run
+
+
+def field_bytes_per_cell(method: str | None, precision: str | None = "double") -> int:
+    """Bytes per cell of the working field and of each sweep buffer: 8 (float64), or 4 for a
+    single-precision run of a relaxation method (multigrid keeps float64: see relaxtui.solver.driver)."""
+    from relaxtui.solver.methods import METHODS
+
+    m = METHODS.get(method) if isinstance(method, str) else None
+    relaxation = m is None or m.kernel is not None  # None: the default red-black SOR
+    return SINGLE_FIELD_BYTES_PER_CELL if precision == "single" and relaxation else FIELD_BYTES_PER_CELL
+
+
+def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False,
+                         precision: str | None = "double") -> int:
     """Bytes a solve of a ``rows`` x ``cols`` picture is expected to need.
 
     Parameters
@@ -101,6 +116,9 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
     per_cell : bool
         The case takes the v1.1 per-cell path (coefficient maps or axisymmetric geometry).
+    precision : "double" or "single"
+        The working field's storage: single halves the field and the sweep buffers
+        of the relaxation methods (:func:`field_bytes_per_cell`).
 
     Returns
     -------
@@ -112,14 +130,15 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     cells = rows * cols
     padded = (rows + 2) * (cols + 2)
     code_bytes = CLASS_CODE_BYTES_SMALL if int(materials) <= CLASS_CODE_SMALL_LIMIT else CLASS_CODE_BYTES_LARGE
-    resident = (FIELD_BYTES_PER_CELL * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
+    field = field_bytes_per_cell(method, precision)
+    resident = (field * padded + code_bytes * padded + REGION_CODE_BYTES_PER_CELL * cells
                 + DECODE_RETAINED_BYTES_PER_CELL * cells)
     from relaxtui.options import DEFAULT_METHOD
     from relaxtui.solver.methods import METHODS
     from relaxtui.solver.radius import COARSE_UNKNOWNS  # compared with the cells: the unknowns are not known yet
 
     m = METHODS.get(method if isinstance(method, str) else DEFAULT_METHOD)
-    sweeps = BUFFER_BYTES_PER_CELL * m.buffers * padded if m is not None else 0
+    sweeps = field * m.buffers * padded if m is not None else 0  # BUFFER_BYTES_PER_CELL each in double
     if m is None or m.uses_radius:
         # the estimate runs beside the sweeps; it is freed when final, or dropped before the output of a solve
         per = COARSE_RADIUS_BYTES_PER_CELL if cells > COARSE_UNKNOWNS else RADIUS_BYTES_PER_CELL

@@ -29,6 +29,7 @@ from relaxtui.errors import UsageError
 from relaxtui.solver import young
 
 MAX_CHUNK = 1000  # most sweeps the driver runs in one chunk (a stepper may ask for fewer)
+CHUNK_SECONDS = 0.1  # target duration of one chunk of sweeps (checks cost ~0.5 ms a chunk)
 
 
 @dataclass(frozen=True)
@@ -127,6 +128,10 @@ class Method:
         return self.factor is not None or self.needs_radius
 
     def make_stepper(self, operator) -> Stepper:
+        own = getattr(operator, "make_stepper", None)  # an operator split across MPI ranks may bring its own
+        stepper = own(self.name) if own is not None else None
+        if stepper is not None:
+            return stepper
         if self.make is not None:
             return self.make(operator)
         return RelaxationStepper(operator, self.name)

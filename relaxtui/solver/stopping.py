@@ -67,6 +67,10 @@ ENVELOPE = 8  # running maximum of the updates over this many sweeps
 RATE_SAFETY = 1.5  # (1 - rho) is divided by this before use
 ERROR_SAFETY = 2.0  # the geometric tail is multiplied by this
 FLOOR_ULPS = 64.0  # updates below FLOOR_ULPS * eps * scale are rounding noise
+# float32 fields (single precision): the updates' rounding noise measured at the fixed point is 0.3 to 6
+# roundings of max |u| (Jacobi to SOR at omega 1.9, tests/cases.py's feature and model cases); float64's
+# wide margin would stop slow methods far above what float32 resolves
+FLOOR_ULPS_SINGLE = 16.0
 STALL_MIN_WINDOW = 500  # sweeps without a new smallest update before "stalled"
 GROWTH_LIMIT = 1e6  # sustained growth by this factor over the best update is divergence
 _EPS = float(np.finfo(float).eps)
@@ -211,10 +215,14 @@ class StoppingRule:
     min_window, envelope : int
         Shortest rate window and running-maximum length of the estimate (see
         :func:`estimates`); a stepper may ask for its own (``rule_options``).
+    dtype : numpy float type
+        The working field's storage (float64, or float32 for a single-precision
+        run): its machine epsilon sets the rounding floor of the updates and of
+        the attainable accuracy, and the messages name it.
     """
 
     def __init__(self, tolerance: float, max_sweeps: int, time_limit: float | None = None, scale: float = 1.0,
-                 min_window: int = MIN_WINDOW, envelope: int = ENVELOPE):
+                 min_window: int = MIN_WINDOW, envelope: int = ENVELOPE, dtype=np.float64):
         if not tolerance > 0.0:
             raise ValueError("tolerance must be > 0")
         if int(min_window) < 1 or int(envelope) < 1:
@@ -225,6 +233,9 @@ class StoppingRule:
         self.max_sweeps = int(max_sweeps)
         self.time_limit = time_limit
         self.scale = max(abs(float(scale)), np.finfo(float).tiny)
+        self.eps = float(np.finfo(dtype).eps)  # the field's unit roundoff (x 2)
+        self.float_name = np.dtype(dtype).name  # "float64" or "float32", for the messages
+        self.floor_ulps = FLOOR_ULPS if self.eps <= _EPS else FLOOR_ULPS_SINGLE
         self.prior_factor: float | None = None
         self.prior_gap: float | None = None
         self._settled_factor: float | None = None  # last factor measured while the rate had settled
@@ -250,6 +261,12 @@ class StoppingRule:
         # for Sparse Linear Systems, 2003, ch. 4, from memory): growing updates are then a transient
         # (non-normal SOR near omega = 2), not divergence; only non-finite or huge values are.
         self.convergent_by_theory = False
+
+    def rescale(self, scale: float) -> None:
+        """Raise the field's magnitude (sources can lift the field above its boundary values); the
+        rounding floors follow. A single-precision run calls it as its updates near float32's floor."""
+        if math.isfinite(scale):
+            self.scale = max(self.scale, abs(float(scale)))
 
     # -- feeding ---------------------------------------------------------------
     def add(self, updates) -> None:
@@ -317,7 +334,7 @@ class StoppingRule:
         if not math.isfinite(est.error) and frozen:
             # the field no longer changes at all before the rate is estimable (a direct solve repeated):
             # a fixed point of the iteration if its residual says so (see _certify)
-            est = self.last_estimate = Estimate(FLOOR_ULPS * _EPS * self.scale, est.factor, est.measured, True)
+            est = self.last_estimate = Estimate(self.floor_ulps * self.eps * self.scale, est.factor, est.measured, True)
         if est.mature and est.factor is not None:
             self._settled_factor = est.factor
         elif self.at_floor() and self._settled_factor is not None:
@@ -347,7 +364,7 @@ class StoppingRule:
         inv, how = self.inverse_norm()
         from relaxtui.solver.conditioning import rounding_floor
 
-        floor = self.floor = rounding_floor(inv, self.scale, self.floor_cells)
+        floor = self.floor = rounding_floor(inv, self.scale, self.floor_cells, self.eps)
         updates_silent = frozen or est.error == 0.0 or (status == STALLED and self.at_floor())
         if updates_silent and self.field_residual is not None:
             r = float(self.field_residual())
@@ -356,17 +373,17 @@ class StoppingRule:
                 return CONVERGED, Estimate(bound, est.factor, est.measured, True)
             if floor > self.tolerance:
                 self.reason = self._floor_reason(inv, how, floor)
-            elif r <= FLOOR_ULPS * _EPS * self.scale:
+            elif r <= self.floor_ulps * self.eps * self.scale:
                 kappa = f"{2.0 * inv:.3g}" if math.isfinite(inv) else "infinite"
-                self.reason = (f"the residual {r:.3g} is at float64's rounding floor, but with the system's condition "
+                self.reason = (f"the residual {r:.3g} is at {self.float_name}'s rounding floor, but with the system's condition "
                                f"number about {kappa} (norm of the inverse {how}) that certifies only an error "
                                f"below {bound:.3g} > {self.tolerance:.3g}")
             elif frozen or est.error == 0.0:
-                self.reason = (f"the updates vanished (every change of the field rounds to nothing in float64: "
+                self.reason = (f"the updates vanished (every change of the field rounds to nothing in {self.float_name}: "
                                f"omega or a conductivity is too small) while the largest residual is {r:.3g}, "
                                f"so the error may be up to {bound:.3g}")
             else:
-                self.reason = (f"the updates are at float64's rounding floor while the residual bound "
+                self.reason = (f"the updates are at {self.float_name}'s rounding floor while the residual bound "
                                f"{bound:.3g} > {self.tolerance:.3g} (the tolerance is below what this grid resolves)")
             return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
         if status == CONVERGED:
@@ -379,9 +396,10 @@ class StoppingRule:
 
     def _floor_reason(self, inv: float, how: str, floor: float) -> str:
         kappa = f"{2.0 * inv:.3g}" if math.isfinite(inv) else "infinite (singular to float64)"
-        return (f"float64 cannot certify the tolerance {self.tolerance:.3g} here: the system's condition number is "
+        return (f"{self.float_name} cannot certify the tolerance {self.tolerance:.3g} here: the system's condition number is "
                 f"about {kappa} (norm of the inverse {how}), so rounding alone may leave an error of about "
-                f"{floor:.3g} (near-singular: the field is held only weakly by its fixed or convection faces)")
+                f"{floor:.3g} " + ("(near-singular: the field is held only weakly by its fixed or convection faces)"
+                                   if self.eps <= _EPS else "(a float32 field keeps about 7 digits: use double precision)"))
 
     def _status(self, est: Estimate, seconds: float, cancelled: bool) -> str | None:
         n = self._n
@@ -422,10 +440,10 @@ class StoppingRule:
         return e_now > e_mid > e_old and e_now > 1e3 * self._best
 
     def at_floor(self) -> bool:
-        """Whether the last updates are at the float64 rounding floor of the field."""
+        """Whether the last updates are at the rounding floor of the field (float64, or float32 in single precision)."""
         if self._n - self._segment < self.min_window:
             return False
-        floor = FLOOR_ULPS * _EPS * self.scale
+        floor = self.floor_ulps * self.eps * self.scale
         return float(self._updates[self._n - self.min_window : self._n].max()) <= floor
 
     def _stalled(self, seg: np.ndarray, est: Estimate) -> bool:
