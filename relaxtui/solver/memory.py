@@ -76,8 +76,9 @@ RADIUS_BYTES_PER_CELL = 24  # fine Lanczos vectors of the Jacobi-radius estimate
 COARSE_RADIUS_BYTES_PER_CELL = 9  # the two-level estimate (relaxtui.solver.coarse.BYTES_PER_CELL), larger ones
 BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
-PICTURE_BYTES_PER_CELL = 16  # while a large PNG is decoded in strips (peak RSS 16.2 B/cell at 4097², 18.9 at 2049²)
-WHOLE_PICTURE_BYTES_PER_CELL = 44  # pictures of up to picture.STRIP_PIXELS, decoded whole (tracemalloc 42.6, 770² RGB)
+PICTURE_BYTES_PER_CELL = 6  # the decoded picture's own arrays (relaxtui.parallel.memory: rank 0's share)
+DECODE_BYTES_PER_CELL = 16  # the decode's peak for a large PNG, in strips (RSS, Pillow's buffers: 16.2 at 4097², 18.9 at 2049²)
+WHOLE_DECODE_BYTES_PER_CELL = 44  # pictures of up to picture.STRIP_PIXELS, decoded whole (tracemalloc 42.6, 770² RGB)
 FIXED_BYTES = 200 * 1024 * 1024
 
 
@@ -102,7 +103,7 @@ def field_bytes_per_cell(method: str | None, precision: str | None = "double") -
 
 
 def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False,
-                         precision: str | None = "double") -> int:
+                         precision: str | None = "double", fine_radius: bool = False) -> int:
     """Bytes a solve of a ``rows`` x ``cols`` picture is expected to need.
 
     Parameters
@@ -116,6 +117,9 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
     per_cell : bool
         The case takes the v1.1 per-cell path (coefficient maps or axisymmetric geometry).
+    fine_radius : bool
+        The radius estimate keeps fine Lanczos vectors whatever the size (the distributed estimate
+        of :mod:`relaxtui.parallel`), not the two-level one of large pictures.
     precision : "double" or "single"
         The working field's storage: single halves the field and the sweep buffers
         of the relaxation methods (:func:`field_bytes_per_cell`).
@@ -141,11 +145,11 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
     sweeps = field * m.buffers * padded if m is not None else 0  # BUFFER_BYTES_PER_CELL each in double
     if m is None or m.uses_radius:
         # the estimate runs beside the sweeps; it is freed when final, or dropped before the output of a solve
-        per = COARSE_RADIUS_BYTES_PER_CELL if cells > COARSE_UNKNOWNS else RADIUS_BYTES_PER_CELL
+        per = COARSE_RADIUS_BYTES_PER_CELL if cells > COARSE_UNKNOWNS and not fine_radius else RADIUS_BYTES_PER_CELL
         sweeps += per * padded
     from relaxtui.case.picture import STRIP_PIXELS
 
-    decode = WHOLE_PICTURE_BYTES_PER_CELL if cells <= STRIP_PIXELS else PICTURE_BYTES_PER_CELL
+    decode = WHOLE_DECODE_BYTES_PER_CELL if cells <= STRIP_PIXELS else DECODE_BYTES_PER_CELL
     phases = [decode * cells + REGION_CODE_BYTES_PER_CELL * cells,
               resident + sweeps, resident + OUTPUT_BYTES_PER_CELL * cells]  # the buffers are released before the output
     if m is not None and m.bytes_per_cell:
