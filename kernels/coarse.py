@@ -36,6 +36,17 @@ def block_mass(cls, diag, sq):
             sq[ci, cj] = math.sqrt(s)
 
 
+@kernel(inline=True)
+def _split(d, w_back, w_fwd, first, last):
+    """A cell's couplings along one axis: (inside its block, across to the next block). The backward
+    neighbour is inside unless the cell is the block's first along the axis; the forward one unless it
+    is its last (then it belongs to the next block)."""
+    inside = 0.0 if first else d * w_back
+    if last:
+        return inside, d * w_fwd
+    return inside + d * w_fwd, 0.0
+
+
 @kernel(parallel=True)
 def block_couplings(cls, table, diag, sq, cb, eb, sb):
     """Fill the symmetric coarse operator (``cb``, ``eb``, ``sb``) from the fine one; ``sq`` from :func:`block_mass`."""
@@ -53,19 +64,12 @@ def block_couplings(cls, table, diag, sq, cb, eb, sb):
                     if c == 0:
                         continue
                     d = diag[c]
-                    # north and west neighbours inside the block, south and east ones inside or across
-                    if i > 2 * ci - 1:
-                        inside += d * table[c, 0]
-                    if i < i_last:
-                        inside += d * table[c, 1]
-                    else:
-                        south += d * table[c, 1]
-                    if j > 2 * cj - 1:
-                        inside += d * table[c, 2]
-                    if j < j_last:
-                        inside += d * table[c, 3]
-                    else:
-                        east += d * table[c, 3]
+                    a, across = _split(d, table[c, 0], table[c, 1], i == 2 * ci - 1, i == i_last)  # north, south
+                    inside += a
+                    south += across
+                    a, across = _split(d, table[c, 2], table[c, 3], j == 2 * cj - 1, j == j_last)  # west, east
+                    inside += a
+                    east += across
             m = float(sq[ci, cj])
             if m > 0.0:
                 cb[ci, cj] = inside / (m * m)
@@ -116,45 +120,6 @@ def subtract_scaled(w, alpha, v):
             w[i, j] = x
             s += x * x
     return math.sqrt(s)
-
-
-@kernel(parallel=True)
-def apply(z, out, cb, eb, sb):
-    """out = B z on the coarse interior (the padding of ``out`` is left as it is: zero)."""
-    for i in prange(1, z.shape[0] - 1):
-        for j in range(1, z.shape[1] - 1):
-            out[i, j] = (cb[i, j] * z[i, j] + (eb[i, j] * z[i, j + 1] + eb[i, j - 1] * z[i, j - 1])
-                         + (sb[i, j] * z[i + 1, j] + sb[i - 1, j] * z[i - 1, j]))
-
-
-@kernel(parallel=True)
-def dot(w, v):
-    """sum w v."""
-    s = 0.0
-    for i in prange(w.shape[0]):
-        for j in range(w.shape[1]):
-            s += w[i, j] * v[i, j]
-    return s
-
-
-@kernel(parallel=True)
-def orthogonalise(w, v, alpha, v_prev, beta):
-    """w -= alpha v + beta v_prev; returns the 2-norm of the result."""
-    s = 0.0
-    for i in prange(w.shape[0]):
-        for j in range(w.shape[1]):
-            x = w[i, j] - alpha * v[i, j] - beta * v_prev[i, j]
-            w[i, j] = x
-            s += x * x
-    return math.sqrt(s)
-
-
-@kernel(parallel=True)
-def scale_into(w, factor, out):
-    """out = w * factor."""
-    for i in prange(w.shape[0]):
-        for j in range(w.shape[1]):
-            out[i, j] = w[i, j] * factor
 
 
 @kernel(parallel=True)

@@ -69,10 +69,11 @@ class CoarseLanczos:
     def __init__(self, cls: np.ndarray, table: np.ndarray, diag: np.ndarray, *, min_steps: int = 100,
                  max_steps: int = 600, budget: float = 2.4, rtol: float = 0.01, method_sweeps=_sor_sweeps,
                  smoothing: int = SMOOTHING_SWEEPS):
-        from relaxtui.kernels import coarse
+        from relaxtui.kernels import coarse, spectral
         from relaxtui.solver.radius import RitzRule
 
         self._k = coarse
+        self._scale = spectral.scale_into
         self.cls, self.table, self.diag = cls, table, diag
         self.smoothing = int(smoothing)
         self.rule = RitzRule(min_steps, max_steps, budget, rtol, method_sweeps)
@@ -95,7 +96,7 @@ class CoarseLanczos:
             self.stage = "done"
             self._release()
             return
-        coarse.scale_into(self.v, 1.0 / self._norm, self.v)
+        self._scale(self.v, 1.0 / self._norm, self.v)
         self.w = np.zeros(shape)  # the previous Lanczos vector, then the next one
         self.beta = 0.0
         self._replay = 0  # steps regenerated in the "vector" stage
@@ -138,22 +139,21 @@ class CoarseLanczos:
 
     def _shift(self, beta_new: float) -> None:
         self.beta = beta_new
-        self._k.scale_into(self.w, 1.0 / beta_new, self.w)
+        self._scale(self.w, 1.0 / beta_new, self.w)
         self.v, self.w = self.w, self.v
 
     def _begin_replay(self) -> None:
         k = self._k
+        from scipy.linalg import eigh_tridiagonal  # LAPACK on the tridiagonal itself: no threaded BLAS
+
         n = self.rule.steps
-        t = np.diag(self.rule.alphas[:n])
-        if n > 1:
-            off = self.rule.betas[: n - 1]
-            t += np.diag(off, 1) + np.diag(off, -1)
-        values, vectors = np.linalg.eigh(t)
+        values, vectors = eigh_tridiagonal(self.rule.alphas[:n], self.rule.betas[: n - 1], select="i",
+                                           select_range=(n - 1, n - 1))
         self.coarse_mu = float(values[-1])
-        self._ritz = vectors[:, -1].copy()
+        self._ritz = np.ascontiguousarray(vectors[:, -1])
         self.w.fill(0.0)
         k.start_vector(self.sq, self.v)
-        k.scale_into(self.v, 1.0 / self._norm, self.v)
+        self._scale(self.v, 1.0 / self._norm, self.v)
         self.beta = 0.0
         self.y = np.zeros(self.v.shape, dtype=np.float32)  # rounding it is harmless (see the module docstring)
         self._replay = 0
