@@ -51,15 +51,20 @@ The per-method numbers live in the method registry (``relaxtui.solver.methods``)
 the rest are named below.
 
 Measured peaks (tracemalloc, which sees numpy's allocations) over a whole
-``relaxtui solve`` of a 1024 x 1024 picture, beyond the warmed-up
-interpreter: red-black SOR and Jacobi stopped by a sweep limit (the Lanczos
-vectors still held) 45.2 B/cell, multigrid 71.6 B/cell (its set-up), of which
-about 3 MiB is the report's strip buffers (the fixed part covers those);
-tests/test_memory.py keeps the estimate an upper bound within 20 % of them.
-Peak RSS of the same solves at 2900 x 2900 (arrays large enough to be mapped
-and unmapped whole): red-black SOR and Jacobi 48.1 B/cell (estimate 49),
-multigrid 57.3 B/cell (estimate 72: its set-up allocates zeroed arrays whose
-pages are never all touched, which tracemalloc counts and RSS does not).
+``relaxtui solve`` of a 770 x 770 picture, beyond the warmed-up interpreter
+(tests/test_memory.py, which keeps the estimate an upper bound within 20 %):
+red-black SOR and Jacobi 42.5 B/cell (estimate 45), reached while the RGB
+picture is decoded whole; multigrid 79.0 (estimate 72 plus the test's 4 MiB
+allowance for the report's strip buffers).
+Peak RSS (benchmarks/footprint.py, model problem 4097 x 4097 cells, one
+material, auto omega, 1000 sweeps with the two-level radius estimate beside
+them, report and field written; (peak - 200 MiB) / cells, load 1-2.5):
+red-black SOR 21.3 B/cell (estimate 26), Jacobi 24.9 B/cell (estimate 34).
+With the fine Lanczos estimate (24 B/cell) before it: 43 B/cell red-black
+(20 sweeps, its vectors held by the paused estimate).
+Earlier, at 2900 x 2900: multigrid 57.3 B/cell (estimate 72: its set-up
+allocates zeroed arrays whose pages are never all touched, which tracemalloc
+counts and RSS does not).
 """
 
 from __future__ import annotations
