@@ -254,6 +254,22 @@ def test_jacobi_is_bit_for_bit_the_single_process_field(ranks, tmp_path, capsys)
 
 
 @needs_mpi
+def test_single_precision_across_ranks_runs_in_double_and_says_so(tmp_path):
+    # the strips keep float64 (relaxtui.solver.driver.Run._field_dtype): the same field as a plain
+    # double run across the ranks, and the report's precision says what was used
+    case = masked_case(tmp_path)
+    opts = ["--method", "jacobi", "--tolerance", "1e-12", "--max-sweeps", "60", "-q"]
+    code, _, err = mpirun(2, ["solve", case, *opts, "--precision", "single", *outputs("single")], tmp_path)
+    assert code == 1, err
+    code, _, err = mpirun(2, ["solve", case, *opts, *outputs("double")], tmp_path)
+    assert code == 1, err
+    fs, rs, _ = read(tmp_path, "single")
+    fd, rd, _ = read(tmp_path, "double")
+    assert rs["precision"] == rd["precision"] == "double" and "MPI" in rs["precision_note"]
+    assert np.array_equal(fs, fd, equal_nan=True)
+
+
+@needs_mpi
 def test_red_black_equals_the_single_process_field_to_rounding(tmp_path, capsys):
     case = masked_case(tmp_path)
     opts = ["--method", "red-black-sor", "--omega", "1.7", "--tolerance", "1e-14", "--max-sweeps", "120", "-q"]
@@ -338,6 +354,23 @@ def test_multigrid_iterates_as_one_process(ranks, tmp_path):
     scale = np.nanmax(np.abs(f1))
     assert np.nanmax(np.abs(fp - f1)) <= 1e-9 * scale
     assert np.array_equal(np.isnan(fp), np.isnan(f1))
+
+
+@needs_mpi
+def test_probes_are_read_on_the_ranks_that_hold_them(tmp_path, capsys):
+    # The well-drawdown demo's probes lie in rows of every strip of 3; rank 0 holds only its own
+    # strip, so each chunk's probe values are read on their ranks (this once failed with an
+    # IndexError on rank 0). Red-black SOR gives the single-process field for the same sweeps,
+    # so the probe log matches it number for number (the times differ).
+    case = GRIDS / "well-drawdown.toml"
+    opts = ["--method", "red-black-sor", "--omega", "1.8", "--max-sweeps", "60", "-q"]
+    assert single(["solve", case, *opts, "--out", tmp_path / "one.npy", "--probes", tmp_path / "one.csv"], tmp_path, capsys) == 1
+    code, _, err = mpirun(3, ["solve", case, *opts, "--out", "many.npy", "--probes", "many.csv"], tmp_path)
+    assert code == 1, err
+    one = np.loadtxt(tmp_path / "one.csv", delimiter=",", skiprows=1, ndmin=2)
+    many = np.loadtxt(tmp_path / "many.csv", delimiter=",", skiprows=1, ndmin=2)
+    assert one.shape[1] == many.shape[1] >= 3 and one[-1, 0] == many[-1, 0] == 60
+    assert np.array_equal(one[-1, 2:], many[-1, 2:])
 
 
 @needs_mpi

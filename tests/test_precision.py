@@ -246,3 +246,21 @@ def test_sweep_takes_the_precision(tmp_path, capsys):
     with pytest.raises(SystemExit) as exc:
         main(["sweep", str(toml), "--methods", "jacobi", "--precision", "quad"])
     assert exc.value.code == 2 and "'double', 'single'" in capsys.readouterr().err
+
+
+def test_the_ui_worker_runs_a_single_precision_run(tmp_path):
+    # the terminal UI's solve loop (no Textual) with a float32 field: snapshots, history and result
+    from relaxtui.tui import worker as w
+    from relaxtui.tui.session import Session
+    from test_tui import HOT, centre_mean, make_plate
+    from test_tui_session import drive, load, start
+
+    loaded = load(tmp_path)
+    session = Session()
+    rec, run = start(session, loaded, precision="single", tolerance=0.05)
+    events = []
+    w.solve_loop(rec.id, run, session.control, loaded.layout, events.append)
+    drive(session, events)
+    assert run.field.dtype == np.float32 and rec.status == "converged"
+    assert rec.result.report["precision"] == "single" and rec.result.field.dtype == np.float64
+    assert abs(centre_mean(rec.result.field) - HOT / 4) <= 2e-3 + 0.05  # test_tui_session's check, at this tolerance

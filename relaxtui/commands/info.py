@@ -158,9 +158,10 @@ def describe(case: Case, console=None, ranks: int | None = None, precision: str 
     mem = f"a solve needs about {memory.format_bytes(need)}; {memory.format_bytes(have)} available"
     facts.add_row("memory", Text(mem, style="bold red") if have is not None and need > have else mem)
     if ranks:
+        from relaxtui.parallel.group import DISTRIBUTED_METHODS, STEPPED_METHODS
         from relaxtui.parallel.memory import rank_bytes
 
-        ranked = method if method in ("jacobi", "red-black-sor") else "red-black-sor"
+        ranked = method if method in DISTRIBUTED_METHODS + STEPPED_METHODS else "red-black-sor"
         first, other = rank_bytes(rows, cols, ranked, len(case.regions), ranks)
         note = "" if ranked == method else f" ({method} does not run across ranks: figures for {ranked})"
         facts.add_row("per rank", f"on {ranks} MPI ranks, {ranked}: about {memory.format_bytes(other)} per rank, "

@@ -59,12 +59,15 @@ class ProbeSet:
     def __len__(self) -> int:
         return len(self.names)
 
-    def values(self, field: np.ndarray, padded: bool = False) -> np.ndarray:
-        """The probes' values (float64, one per probe) from a (rows, cols) field, or a padded working field."""
+    def values(self, field: np.ndarray, padded: bool = False, lookup=None) -> np.ndarray:
+        """The probes' values (float64, one per probe) from a (rows, cols) field, or a padded working field.
+
+        ``lookup(rows, cols)``, if given, reads the padded working field's cells at (rows + 1, cols + 1)
+        instead (an operator split across MPI ranks, whose rank 0 holds only its strip)."""
         off = 1 if padded else 0
         if not self.names:
             return np.zeros(0)
-        vals = field[self.rows + off, self.cols + off]
+        vals = lookup(self.rows, self.cols) if lookup is not None else field[self.rows + off, self.cols + off]
         return np.where(self.weights > 0.0, vals * self.weights, 0.0).sum(axis=1)
 
     def as_dict(self, field: np.ndarray, padded: bool = False) -> dict[str, float]:
@@ -80,11 +83,12 @@ class ProbeLog:
         self.seconds: list[float] = []
         self.rows: list[np.ndarray] = []
 
-    def record(self, sweep: int, seconds: float, u: np.ndarray) -> None:
-        """Record the values of the padded working field ``u`` after ``sweep`` sweeps."""
+    def record(self, sweep: int, seconds: float, u: np.ndarray, lookup=None) -> None:
+        """Record the values of the padded working field ``u`` after ``sweep`` sweeps (``lookup``: see
+        :meth:`ProbeSet.values`)."""
         self.sweep.append(int(sweep))
         self.seconds.append(float(seconds))
-        self.rows.append(self.probes.values(u, padded=True))
+        self.rows.append(self.probes.values(u, padded=True, lookup=lookup))
 
     def latest(self) -> dict[str, float]:
         """The last recorded values by name (empty before the first chunk)."""

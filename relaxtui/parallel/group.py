@@ -33,7 +33,7 @@ from relaxtui.solver.radius import Lanczos, RadiusJob, RitzRule
 DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips (the operator's ``sweep``)
 STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
- MG_RELEASE) = range(1, 15)
+ MG_RELEASE, CELLS) = range(1, 16)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 
 
@@ -325,6 +325,12 @@ class DistributedOperator:
             self.strip.export(out, self.bounds)
         return out
 
+    def cells_at(self, u, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """The working field at the grid cells (rows, cols) (unpadded indices, any shape), read on their ranks."""
+        self._check_field(u)
+        with self.group.collective(CELLS):
+            return self.strip.cells_at(np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64))
+
     def field_summary(self, u) -> tuple[dict, dict]:
         """The report's extremes and peak flux, computed by strips (see :meth:`Strip.summary`):
         ``({"min", "max", "min_at", "max_at"}, flux_max)`` with the keys of
@@ -546,6 +552,8 @@ def follow(comm, threads: int) -> int:
             strip.lanczos_begin()
         elif code == LANCZOS_ADVANCE:
             strip.lanczos_advance()
+        elif code == CELLS:
+            strip.cells_at(None, None)
         elif code == MG_SETUP:
             strip.multigrid_setup()
         elif code == MG_SWEEP:

@@ -275,6 +275,15 @@ class Strip:
                             self.value, self.flux, self.coefficient, self.ambient, self.cell_size, nblk)
         return self.reduce_sum(np.ascontiguousarray(acc.sum(axis=0)))
 
+    def cells_at(self, rows: np.ndarray | None, cols: np.ndarray | None) -> np.ndarray | None:
+        """The field at grid cells (rows, cols) given on rank 0 (broadcast), each read by the rank owning
+        its row and summed on rank 0 (the others add 0.0: the owner's value exactly); None elsewhere."""
+        rows, cols = self.comm.bcast((rows, cols), root=0)
+        mine = (rows >= self.a) & (rows < self.b)
+        vals = np.zeros(rows.shape)
+        vals[mine] = self.u[rows[mine] - self.a + 1, cols[mine] + 1]
+        return self.reduce_sum(vals)
+
     def summary(self, regions, cell_size: float, block: int = 256):
         """Extremes and peak flux of the exported field, by strips; on rank 0 the whole exported field too.
 

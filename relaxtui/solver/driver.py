@@ -449,7 +449,10 @@ class Run:
                 errs = self.rule.recent_errors(k)
                 self.history.extend(sweeps, secs, self._res[:k], errs, np.full(k, self.omega))
                 if self.probe_log is not None:
-                    self.probe_log.record(self.rule.sweeps, self.seconds, self._u)
+                    # an operator split across MPI ranks reads the probe cells on their ranks
+                    cells = getattr(self.operator, "cells_at", None)
+                    self.probe_log.record(self.rule.sweeps, self.seconds, self._u,
+                                          None if cells is None else (lambda r, c: cells(self._u, r, c)))
             # the time limit covers the whole run, set-up included
             decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
