@@ -11,7 +11,8 @@ starts one more child per measurement):
 3. scaling    sweeps/s and time to tolerance as N doubles, fitted exponent
 4. threads    Mcell/s at 1 and 2 numba threads
 5. startup    `relaxtui solve` on a tiny case (cold and warm numba cache), `relaxtui --help`
-6. memory     peak resident memory per cell of `relaxtui solve` on the large demo
+6. memory     peak resident memory per cell of `relaxtui solve` on the large demo, and of a
+              relaxation solve (red-black SOR, Jacobi) on the 4095² model problem, one material
 +  multigrid  benchmarks/multigrid.py, when that file exists
 +  scale      benchmarks/scale.py: the rows of the scale issue (multigrid vs pyamg, set-up vs
               cycles, the 16 383² picture, sweep rates vs the copy kernel, peak memory, auto ω share)

@@ -630,17 +630,30 @@ def test_build_case_refuses(codes, regions, kwargs, fragment):
 
 def test_memory_model_constants():
     # The documented byte model (relaxtui/solver/memory.py): resident padded field 8 B, class codes 1 B
-    # (2 B above 256 classes), region codes 1 B, 7 B the allocators keep after the decode and, for methods that use the Jacobi radius, its Lanczos
-    # vectors 24 B padded; on top the largest phase: sweep buffers (Jacobi 8 B padded) or the output
-    # copy 8 B, or multigrid's levels and CG vectors 41 B; 200 MiB fixed. (tests/test_memory.py checks it against
-    # measured peaks.)
+    # (2 B above 256 classes), region codes 1 B, 7 B the allocators keep after the decode; on top the
+    # largest phase: the decode (45 B per cell for a picture decoded whole, 17 in strips), the sweeps
+    # (sweep buffers, Jacobi 8 B padded, and for methods that use the Jacobi radius its estimate:
+    # fine Lanczos vectors 24 B padded on small pictures, the two-level estimate 9 B padded above
+    # radius.COARSE_UNKNOWNS cells), the output copy 8 B, or multigrid's levels and CG vectors 41 B; 200 MiB fixed.
+    # (tests/test_memory.py checks it against measured peaks.)
+    from relaxtui.solver.radius import COARSE_UNKNOWNS
+
+    fixed = 200 * 1024 * 1024
     rows, cols = 10, 20
     padded, cells = 12 * 22, 200
-    fixed = 200 * 1024 * 1024
-    assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + 33 * padded + 8 * cells + 8 * cells
-    assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + 33 * padded + 8 * cells + 8 * padded
-    assert memory.estimate_solve_bytes(rows, cols, "sor", 300) == fixed + 34 * padded + 8 * cells + 8 * cells
-    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + 9 * padded + 8 * cells + 41 * cells
+    resident = 9 * padded + 8 * cells
+    assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + max(45 * cells, resident + 24 * padded)
+    assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + resident + 32 * padded
+    assert memory.estimate_solve_bytes(rows, cols, "sor", 300) == fixed + resident + padded + 24 * padded
+    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 41 * cells
+    rows, cols = 3000, 2000  # an estimate only: nothing is allocated
+    padded, cells = 3002 * 2002, 6_000_000
+    assert cells > COARSE_UNKNOWNS
+    resident = 9 * padded + 8 * cells
+    assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + resident + 9 * padded
+    assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + resident + 17 * padded
+    assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3, fine_radius=True) == fixed + resident + 32 * padded
+    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 41 * cells
 
 
 def test_available_bytes_is_sane(monkeypatch):

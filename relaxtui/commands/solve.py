@@ -233,6 +233,8 @@ def run(args) -> int:
                 pause_for_tests("solving" if steps == 1 else "solving:2")
         signals.writing = True  # from here on a signal never aborts: the set is finished first
         display.stop()
+        if run.operator is not None:  # nothing runs on this operator again: an unfinished estimate frees its vectors
+            run.operator.radius_job().discard()
         result = run.result()
         if signals.first is not None and result.report.get("status") == "cancelled":
             result.report["message"] += f" (stopped by {signals.name})"

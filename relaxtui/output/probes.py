@@ -36,8 +36,7 @@ class ProbeSet:
     def __init__(self, case):
         self.names = [p.name for p in case.probes]
         rows, cols = case.shape
-        kinds = case.kind_codes()[case.codes]
-        domain = (kinds == INTERIOR) | (kinds == FIXED)
+        kinds = case.kind_codes()  # per region; looked up at the probes' cells only (no picture-sized temporary)
         self.rows = np.zeros((len(self.names), 4), dtype=np.int64)
         self.cols = np.zeros((len(self.names), 4), dtype=np.int64)
         self.weights = np.zeros((len(self.names), 4))
@@ -51,7 +50,7 @@ class ProbeSet:
                     inside = 0 <= i < rows and 0 <= j < cols
                     self.rows[n, k] = min(max(i, 0), rows - 1)
                     self.cols[n, k] = min(max(j, 0), cols - 1)
-                    self.weights[n, k] = wy * wx if inside and domain[i, j] else 0.0
+                    self.weights[n, k] = wy * wx if inside and kinds[case.codes[i, j]] in (INTERIOR, FIXED) else 0.0
                     k += 1
             total = self.weights[n].sum()
             if total > 0:

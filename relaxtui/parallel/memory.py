@@ -42,7 +42,7 @@ def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: 
     code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
     # a strip with its two halo rows costs what a single-process solve of that many rows costs
     # (the same phases: radius estimate, sweeps, outputs), less the picture it never decodes
-    other = memory.estimate_solve_bytes(n + 2, cols, method, materials)
+    other = memory.estimate_solve_bytes(n + 2, cols, method, materials, fine_radius=True)  # DistributedLanczos: fine vectors
     whole = rows * cols
     # the region picture all along, plus the largest of: the decoded picture (loading), the
     # whole class array (assembly), the gathered exported field (outputs): one at a time

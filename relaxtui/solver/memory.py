@@ -20,19 +20,29 @@ resident
   after the decode      7               memory the allocators keep once the PNG is
                                         decoded (measured in RSS; tracemalloc does
                                         not see it)
-  Jacobi radius         24              3 Lanczos vectors (padded), methods that use
-                                        the radius; they live until the estimate is
-                                        final (beside the sweeps on large grids, kept
-                                        paused by a run that stops first)
 phases (the largest counts)
-  sweep buffers         8 each          ``Method.buffers`` of the registry (Jacobi:
+  sweeps                                the sweep buffers, and the Jacobi radius
+                                        estimate beside them (methods that use it)
+    sweep buffers       8 each          ``Method.buffers`` of the registry (Jacobi:
                                         old and new iterate), padded; released
                                         when the run ends (4 each in single)
-  output copy           8               the exported field built for the report
+    Jacobi radius       9               pictures of more than radius.COARSE_UNKNOWNS
+                                        cells: the two-level estimate
+                                        (relaxtui.solver.coarse: coarse operator 4,
+                                        two coarse Lanczos vectors 4, Ritz vector 1)
+                        24              smaller pictures: three fine Lanczos vectors
+                                        (padded); either is freed once the estimate
+                                        is final, and ``relaxtui solve`` drops an
+                                        unfinished one before its output (a screen
+                                        session keeps it, paused, for its next run)
+  output                8               the exported field built for the report
+                                        (the sweep buffers are released before it)
   method's own          ``Method.bytes_per_cell``: the peak of what the
                                         method builds (multigrid 41: coarse levels
                                         and CG vectors, held through the iterations)
-  decoded picture       6               while the PNG is decoded
+  decoded picture       16              while the PNG is decoded in row strips (RSS,
+                                        Pillow's buffers included); 44 for a picture
+                                        of up to picture.STRIP_PIXELS, decoded whole
 fixed                   200 MiB         interpreter, numba, compiled code, UI,
                                         the decoder's and report's fixed buffers
 ======================  ==============  =========================================
@@ -41,16 +51,24 @@ The per-method numbers live in the method registry (``relaxtui.solver.methods``)
 the rest are named below.
 
 Measured peaks (tracemalloc, which sees numpy's allocations) over a whole
-``relaxtui solve`` of a 1024 x 1024 picture, beyond the warmed-up
-interpreter: red-black SOR and Jacobi stopped by a sweep limit (the Lanczos
-vectors still held) 45.2 B/cell, multigrid 51.3 B/cell (its iterations; 71.6 before
-its certificate's norm of the inverse came from its own hierarchy), of which
-about 3 MiB is the report's strip buffers (the fixed part covers those);
-tests/test_memory.py keeps the estimate an upper bound within 20 % of them.
-Peak RSS of the same solves at 2900 x 2900 (arrays large enough to be mapped
-and unmapped whole): red-black SOR and Jacobi 48.1 B/cell (estimate 49),
-multigrid 57.3 B/cell (estimate 72: its set-up allocates zeroed arrays whose
-pages are never all touched, which tracemalloc counts and RSS does not).
+``relaxtui solve`` of a 770 x 770 picture, beyond the warmed-up interpreter
+(tests/test_memory.py, which keeps the estimate an upper bound within 20 %):
+red-black SOR and Jacobi 42.5 B/cell (estimate 45), reached while the RGB
+picture is decoded whole; multigrid 51.3 (estimate 58; 79.0 before its
+certificate's norm of the inverse came from its own hierarchy instead of a
+Lanczos estimate, and before its coarse levels dropped their planes of
+inverses). Peak RSS of a multigrid solve to 1e-4 of the model problem
+(benchmarks/scale.py, load 1.6-2.3): 49.1 B/cell at 4097 x 4097, 50.0 at
+16 385 x 16 385 (estimate 58).
+Peak RSS (benchmarks/footprint.py, model problem 4097 x 4097 cells, one
+material, auto omega, 1000 sweeps with the two-level radius estimate beside
+them, report and field written; (peak - 200 MiB) / cells, load 1-2.5):
+red-black SOR 21.3 B/cell (estimate 26), Jacobi 24.9 B/cell (estimate 34).
+With the fine Lanczos estimate (24 B/cell) before it: 43 B/cell red-black
+(20 sweeps, its vectors held by the paused estimate).
+Earlier, at 2900 x 2900: multigrid 57.3 B/cell (estimate 72: its set-up
+allocates zeroed arrays whose pages are never all touched, which tracemalloc
+counts and RSS does not).
 """
 
 from __future__ import annotations
@@ -63,10 +81,13 @@ CLASS_CODE_BYTES_LARGE = 2
 CLASS_CODE_SMALL_LIMIT = 256
 REGION_CODE_BYTES_PER_CELL = 1
 DECODE_RETAINED_BYTES_PER_CELL = 7  # resident memory the allocators keep after the PNG decode (RSS, 2900²)
-RADIUS_BYTES_PER_CELL = 24  # Lanczos vectors of the Jacobi-radius estimate (padded cells)
+RADIUS_BYTES_PER_CELL = 24  # fine Lanczos vectors of the Jacobi-radius estimate (padded cells), small pictures
+COARSE_RADIUS_BYTES_PER_CELL = 9  # the two-level estimate (relaxtui.solver.coarse.BYTES_PER_CELL), larger ones
 BUFFER_BYTES_PER_CELL = 8  # one float64 sweep buffer, padded
 OUTPUT_BYTES_PER_CELL = 8
-PICTURE_BYTES_PER_CELL = 6
+PICTURE_BYTES_PER_CELL = 6  # the decoded picture's own arrays (relaxtui.parallel.memory: rank 0's share)
+DECODE_BYTES_PER_CELL = 16  # the decode's peak for a large PNG, in strips (RSS, Pillow's buffers: 16.2 at 4097², 18.9 at 2049²)
+WHOLE_DECODE_BYTES_PER_CELL = 44  # pictures of up to picture.STRIP_PIXELS, decoded whole (tracemalloc 42.6, 770² RGB)
 FIXED_BYTES = 200 * 1024 * 1024
 
 
@@ -91,7 +112,7 @@ def field_bytes_per_cell(method: str | None, precision: str | None = "double") -
 
 
 def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materials: int = 1, per_cell: bool = False,
-                         precision: str | None = "double") -> int:
+                         precision: str | None = "double", fine_radius: bool = False) -> int:
     """Bytes a solve of a ``rows`` x ``cols`` picture is expected to need.
 
     Parameters
@@ -105,6 +126,9 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
         Number of distinct cell classes (regions); more than 256 need 2-byte codes.
     per_cell : bool
         The case takes the v1.1 per-cell path (coefficient maps or axisymmetric geometry).
+    fine_radius : bool
+        The radius estimate keeps fine Lanczos vectors whatever the size (the distributed estimate
+        of :mod:`relaxtui.parallel`), not the two-level one of large pictures.
     precision : "double" or "single"
         The working field's storage: single halves the field and the sweep buffers
         of the relaxation methods (:func:`field_bytes_per_cell`).
@@ -124,15 +148,19 @@ def estimate_solve_bytes(rows: int, cols: int, method: str | None = None, materi
                 + DECODE_RETAINED_BYTES_PER_CELL * cells)
     from relaxtui.options import DEFAULT_METHOD
     from relaxtui.solver.methods import METHODS
+    from relaxtui.solver.radius import COARSE_UNKNOWNS  # compared with the cells: the unknowns are not known yet
 
     m = METHODS.get(method if isinstance(method, str) else DEFAULT_METHOD)
-    buffers = field * m.buffers * padded if m is not None else 0  # BUFFER_BYTES_PER_CELL each in double
+    sweeps = field * m.buffers * padded if m is not None else 0  # BUFFER_BYTES_PER_CELL each in double
     if m is None or m.uses_radius:
-        # the Lanczos vectors live until the estimate is final: a run that ends first (a limit, a
-        # cancel) keeps them, paused, for the next run on the operator
-        resident += RADIUS_BYTES_PER_CELL * padded
-    phases = [PICTURE_BYTES_PER_CELL * cells + REGION_CODE_BYTES_PER_CELL * cells,
-              resident + max(buffers, OUTPUT_BYTES_PER_CELL * cells)]  # the buffers are released before the report
+        # the estimate runs beside the sweeps; it is freed when final, or dropped before the output of a solve
+        per = COARSE_RADIUS_BYTES_PER_CELL if cells > COARSE_UNKNOWNS and not fine_radius else RADIUS_BYTES_PER_CELL
+        sweeps += per * padded
+    from relaxtui.case.picture import STRIP_PIXELS
+
+    decode = WHOLE_DECODE_BYTES_PER_CELL if cells <= STRIP_PIXELS else DECODE_BYTES_PER_CELL
+    phases = [decode * cells + REGION_CODE_BYTES_PER_CELL * cells,
+              resident + sweeps, resident + OUTPUT_BYTES_PER_CELL * cells]  # the buffers are released before the output
     if m is not None and m.bytes_per_cell:
         phases.append(resident + m.bytes_per_cell * cells)
     if per_cell:  # case format v1.1 per-cell path: its weight arrays stay resident

@@ -164,6 +164,9 @@ def _stop_background_jobs() -> None:
 
 
 BACKGROUND_UNKNOWNS = 300_000  # above this many unknowns the estimate runs beside the sweeps, not before them
+# above this many unknowns the estimate is the two-level one (relaxtui.solver.coarse: about half the memory of
+# the fine Lanczos vectors and a fraction of its time); at or below, the fine Lanczos estimate
+COARSE_UNKNOWNS = BACKGROUND_UNKNOWNS
 CACHE_VERSION = 1
 
 
@@ -246,7 +249,12 @@ class RadiusJob:
             self._lanczos = None
         if self._lanczos is None:
             op = self.operator
-            self._lanczos = Lanczos(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
+            if op.unknowns > COARSE_UNKNOWNS:
+                from relaxtui.solver.coarse import CoarseLanczos
+
+                self._lanczos = CoarseLanczos(op.cls, op.table, op.diag, method_sweeps=method_sweeps)
+            else:
+                self._lanczos = Lanczos(op.jacobi_apply, op.cls, op.diag, method_sweeps=method_sweeps)
         return True
 
     def _finish_if_done(self) -> None:
@@ -254,7 +262,7 @@ class RadiusJob:
         if lz is not None and lz.done and self._final is None:
             self._final = lz.estimate()
             self._source = "lanczos"
-            self._lanczos = None  # its three field-sized vectors (24 B/cell) are not needed any more
+            self._lanczos = None  # its vectors (fine: 24 B/cell, two-level: 12) are not needed any more
 
     def run(self, method_sweeps=_sor_sweeps, *, redo_unsettled: bool = False, max_seconds: float | None = None,
             on_step=None) -> RadiusEstimate | None:
@@ -320,6 +328,14 @@ class RadiusJob:
             self._stop.set()
             thread.join()
             self._thread = None
+
+    def discard(self) -> None:
+        """Stop the background thread and drop an unfinished estimate's state (its vectors are freed; a
+        later run starts the estimate again). For a process that will not run on this operator again."""
+        self.pause()
+        with self._lock:
+            if self._final is None:
+                self._lanczos = None
 
     def wait(self, timeout: float | None = None) -> RadiusEstimate | None:
         """Wait for the background thread to finish (without stopping it); the final estimate or None."""
