@@ -23,6 +23,7 @@ import types
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 from numba import njit  # noqa: E402
+from numba.core.cpu import ParallelOptions  # noqa: E402
 
 JIT_OPTIONS = dict(cache=True, nogil=True, fastmath=False)
 
@@ -31,8 +32,10 @@ JIT_OPTIONS = dict(cache=True, nogil=True, fastmath=False)
 # rows at block edges only once every block has done its interior (red-black SOR, the coarse
 # multigrid smoother). Fused, block b's edge rows ran while block b + 1 was still at its interior,
 # and the four-colour smoother gave different fields for 1 and 3 row blocks (measured: 0.04 on a
-# 150 x 200 level from a field of order 1). Fusion is off for every kernel.
-PARALLEL_OPTIONS = {"fusion": False}
+# 150 x 200 level from a field of order 1). Fusion is off for every kernel. An options object, not a
+# dict: numba pops the keys of a dict it is given, so a shared dict (or a per-kernel one, at the
+# kernel's second compile, for another type) would turn fusion back on.
+PARALLEL_OPTIONS = ParallelOptions({"fusion": False})
 
 
 def kernel(fn=None, *, parallel=False, inline=False):

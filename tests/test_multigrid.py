@@ -432,3 +432,49 @@ def test_zero_sweeps_leave_the_field_alone():
         before = u.copy()
         assert st.sweep(u, DEFAULT_OMEGA, 0, np.zeros(1), np.zeros(1)) == 0
         assert np.array_equal(u, before)
+
+
+def _four_colour_reference(e, f, A, omega, reverse):
+    """One four-colour Gauss-Seidel/SOR sweep of the 9-point planes in plain numpy, colour by colour
+    (a colour's cells are not coupled to each other, so each colour is one vectorised update).
+    Plane layout as documented in kernels/mg_smoother.py: A[0] centre; east/west A[1] (own / west
+    neighbour's), south/north A[2], south-east/north-west A[3], south-west/north-east A[4]."""
+    e = e.copy()
+    R, C = e.shape[0] - 2, e.shape[1] - 2
+    fp = 1 if reverse else 0
+    colours = [(fp, fp), (fp, 1 - fp), (1 - fp, fp), (1 - fp, 1 - fp)]
+    I, J = np.meshgrid(np.arange(1, R + 1), np.arange(1, C + 1), indexing="ij")
+    for rp, cp in colours:
+        sel = (((I - 1) & 1) == rp) & (((J - 1) & 1) == cp) & (A[0, I, J] > 0)
+        i, j = I[sel], J[sel]
+        t = (((A[1, i, j] * e[i, j + 1] + A[1, i, j - 1] * e[i, j - 1]) + (A[2, i, j] * e[i + 1, j] + A[2, i - 1, j] * e[i - 1, j]))
+             + ((A[3, i, j] * e[i + 1, j + 1] + A[3, i - 1, j - 1] * e[i - 1, j - 1]) + (A[4, i, j] * e[i + 1, j - 1] + A[4, i - 1, j + 1] * e[i - 1, j + 1])))
+        x = e[i, j]
+        e[i, j] = x + omega * ((f[i, j] - t) / A[0, i, j] - x)
+    return e
+
+
+@pytest.mark.parametrize("nblk", [1, 2, 3, 5])
+@pytest.mark.parametrize("reverse", [False, True])
+def test_coarse_smoother_is_the_plain_four_colour_order_for_any_row_blocks(nblk, reverse):
+    """The coarse-level smoother's row blocks must not change its result: each block's edge rows
+    wait for every block's interior (a second parallel loop; numba's loop fusion, which merged the
+    two, is off in kernels/_jit.py). Reference: the plain colour-by-colour update above (four-colour
+    ordering of a 9-point stencil, common practice)."""
+    from relaxtui.kernels.mg_smoother import smooth9
+
+    rng = np.random.default_rng(7)
+    R, C = 61, 47
+    A = np.zeros((5, R + 2, C + 2))
+    A[0, 1:-1, 1:-1] = 8.0 + rng.random((R, C))
+    A[0, 1:-1, 1:-1][rng.random((R, C)) < 0.1] = 0.0  # some cells are not unknowns
+    for p in range(1, 5):
+        A[p, 1:-1, 1:-1] = -rng.random((R, C))
+    f = np.zeros((R + 2, C + 2))
+    f[1:-1, 1:-1] = rng.random((R, C))
+    e0 = np.zeros((R + 2, C + 2))
+    e0[1:-1, 1:-1] = rng.random((R, C))
+    want = _four_colour_reference(e0, f, A, 1.3, reverse)
+    got = e0.copy()
+    smooth9(got, f, A, 1.3, 1, reverse, nblk)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
