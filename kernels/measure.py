@@ -160,13 +160,15 @@ def flows(codes, up_codes, dn_codes, has_up, has_dn, u, cls, row_ptr, seg_start,
 
 
 @kernel(parallel=True)
-def export_field(codes, kind, u, out):
-    """out (rows, cols) = the padded field's interior and fixed cells, NaN elsewhere."""
+def export_field(codes, kind, value, u, out):
+    """out (rows, cols) = the padded field's interior cells, fixed cells at their exact value
+    (``value`` per code: a float32 field holds only its rounding), NaN elsewhere."""
     rows, cols = codes.shape
     for i in prange(rows):
         for j in range(cols):
-            k = kind[codes[i, j]]
-            out[i, j] = u[i + 1, j + 1] if (k == INTERIOR or k == FIXED) else np.nan
+            r = codes[i, j]
+            k = kind[r]
+            out[i, j] = u[i + 1, j + 1] if k == INTERIOR else (value[r] if k == FIXED else np.nan)
 
 
 @kernel(parallel=True)

@@ -309,7 +309,7 @@ class Strip:
 
         n, cols = self.n, self.cols
         ext = np.empty((n + 2, cols))
-        measure.export_field(self.codes, self.kind, self.u, ext[1 : n + 1])
+        measure.export_field(self.codes, self.kind, self.value, self.u, ext[1 : n + 1])
         self.exchange(ext)
         first = 0 if self.has_up else 1
         bottom = n + 2 if self.has_dn else n + 1
@@ -352,13 +352,13 @@ class Strip:
         from relaxtui.kernels import measure
 
         if self.rank == 0:
-            measure.export_field(self.codes, self.kind, self.u, out[self.a : self.b])
+            measure.export_field(self.codes, self.kind, self.value, self.u, out[self.a : self.b])
             for r in range(1, self.size):
                 a, b = bounds[r]
                 self.comm.Recv(out[a:b], source=r, tag=21)
         else:
             mine = np.empty((self.n, self.cols))
-            measure.export_field(self.codes, self.kind, self.u, mine)
+            measure.export_field(self.codes, self.kind, self.value, self.u, mine)
             self.comm.Send(mine, dest=0, tag=21)
 
     # --- the Jacobi radius -----------------------------------------------------------------
@@ -452,7 +452,7 @@ class Strip:
                       self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux, self.coefficient,
                       self.ambient, self.cell_size, 1)
         measure.residual(u[:2], cls[:2], self.table, *segs, np.zeros((1, 1)), False, 1)
-        measure.export_field(self.codes[:0], self.kind, u, np.empty((0, self.cols)))
+        measure.export_field(self.codes[:0], self.kind, self.value, u, np.empty((0, self.cols)))
         measure.init_field(self.codes[:0], self.kind, self.value, np.zeros((1, 1)), False, 0.0, u)
         measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
         spectral.start_vector(cls[:0], self.diag, u[:0])

@@ -394,10 +394,7 @@ class Operator:
         from relaxtui.kernels import measure
 
         out = np.empty(self.shape)
-        measure.export_field(self.codes, self.kind, u, out)
-        if u.dtype != np.float64:  # fixed cells at their exact value, not its float32 rounding
-            fixed = self.kind[self.codes] == FIXED
-            out[fixed] = self.value[self.codes[fixed]]
+        measure.export_field(self.codes, self.kind, self.value, u, out)
         return out
 
     def jacobi_apply(self, x, out) -> None:
