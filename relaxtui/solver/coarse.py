@@ -144,11 +144,14 @@ class CoarseLanczos:
 
     def _begin_replay(self) -> None:
         k = self._k
-        from scipy.linalg import eigh_tridiagonal  # LAPACK on the tridiagonal itself: no threaded BLAS
-
+        # numpy's eigh on the dense tridiagonal (at most max_steps = 600 square: tens of ms, once); scipy is
+        # not a dependency of the package, only of its tests
         n = self.rule.steps
-        values, vectors = eigh_tridiagonal(self.rule.alphas[:n], self.rule.betas[: n - 1], select="i",
-                                           select_range=(n - 1, n - 1))
+        t = np.diag(self.rule.alphas[:n])
+        if n > 1:
+            off = self.rule.betas[: n - 1]
+            t += np.diag(off, 1) + np.diag(off, -1)
+        values, vectors = np.linalg.eigh(t)
         self.coarse_mu = float(values[-1])
         self._ritz = np.ascontiguousarray(vectors[:, -1])
         self.w.fill(0.0)
