@@ -23,7 +23,7 @@ from __future__ import annotations
 from rich.text import Text
 from textual import events
 from textual.app import ComposeResult
-from textual.binding import Binding
+from textual.binding import Binding, NoBinding
 from textual.containers import Horizontal, Vertical
 from textual.message import Message
 from textual.reactive import reactive
@@ -113,7 +113,12 @@ class ParamField(Input):
             event.prevent_default()
             self.app.post_message(events.Key(event.key, event.character))
             return
-        bindings = self._bindings.get_bindings_for_key(event.key) if not event.is_printable else []
+        bindings = []
+        if not event.is_printable:
+            try:
+                bindings = self._bindings.get_bindings_for_key(event.key)
+            except NoBinding:  # Tab and other keys this field does not bind: Textual's own handling
+                bindings = []
         if bindings:
             event.stop()
             event.prevent_default()
