@@ -6,6 +6,8 @@ prints the message on one line and exits with status 2; nothing else is
 written.
 """
 
+import unicodedata
+
 
 def printable(text) -> str:
     """``text`` with every control character escaped (``\\x1b``, ``\\n``, ...), safe to print on a terminal.
@@ -18,7 +20,9 @@ def printable(text) -> str:
         return text
     out = []
     for ch in text:
-        if ch.isprintable() or ch == " ":
+        # str.isprintable() also refuses the spaces of category Zs (no-break, narrow no-break, thin),
+        # which print as spaces and which relaxtui uses as thousands separators: keep those
+        if ch.isprintable() or unicodedata.category(ch) == "Zs":
             out.append(ch)
         else:
             out.append(ch.encode("unicode_escape").decode("ascii"))

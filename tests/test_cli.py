@@ -103,7 +103,18 @@ def test_solve_converges_and_writes_the_contract(plate, tmp_path, capsys):
     assert int(rows[-1][0]) == report["sweeps"]
     assert set(report["flows"]) == {"hot", "cold", "air"}
     assert "equilibrium reached" in stdout
+    assert "\\u" not in stdout and "\\x" not in stdout  # no escape text in the summary
     assert not list(tmp_path.glob("*.part"))
+
+
+def test_printable_keeps_spaces_and_escapes_controls():
+    from relaxtui.errors import printable
+    # U+202F (narrow no-break space) is relaxtui's thousands separator: it prints as a space
+    assert printable("1\u202f464 sweeps") == "1\u202f464 sweeps"
+    assert printable("a\u00a0b\u2009c") == "a\u00a0b\u2009c"
+    # terminal controls and line separators are shown as escape text, never sent to the terminal
+    assert printable("x\x1b[2Jy") == "x\\x1b[2Jy"
+    assert printable("p\u2028q\nr") == "p\\u2028q\\nr"
 
 
 def test_default_outputs_go_to_the_current_folder(plate, tmp_path, capsys, monkeypatch):

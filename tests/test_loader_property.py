@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 import math
 import tempfile
+import unicodedata
 from pathlib import Path
 
 import numpy as np
@@ -178,7 +179,8 @@ def test_random_cases_load_or_raise_case_error(spec):
             case = load_case(path)
         except CaseError as exc:
             msg = str(exc)
-            assert msg.isprintable(), msg  # one line, no control characters
+            # one line, no control characters (spaces of category Zs such as U+202F are fine)
+            assert all(ch.isprintable() or unicodedata.category(ch) == "Zs" for ch in msg), msg
             assert msg.startswith(str(path)), msg
             event("CaseError")
             return
