@@ -264,3 +264,36 @@ def test_the_ui_worker_runs_a_single_precision_run(tmp_path):
     assert run.field.dtype == np.float32 and rec.status == "converged"
     assert rec.result.report["precision"] == "single" and rec.result.field.dtype == np.float64
     assert abs(centre_mean(rec.result.field) - HOT / 4) <= 2e-3 + 0.05  # test_tui_session's check, at this tolerance
+
+
+
+def test_the_memory_check_follows_the_command_line(tmp_path, capsys, monkeypatch):
+    # the loader's check before decoding is made for the precision and method the run will use (the
+    # command line over the case's [solver] table), not for the case's own settings
+    toml = write_plate(tmp_path)
+    toml.write_text(toml.read_text().replace('method = "red-black-sor"', 'method = "jacobi"\nprecision = "double"'))
+    seen = []
+    real = memory.estimate_solve_bytes
+
+    def spy(rows, cols, method=None, materials=1, per_cell=False, precision="double", fine_radius=False):
+        seen.append((method, precision))
+        return real(rows, cols, method, materials, per_cell=per_cell, precision=precision, fine_radius=fine_radius)
+
+    monkeypatch.setattr(memory, "estimate_solve_bytes", spy)
+    rep = tmp_path / "r.json"
+    assert main(["solve", str(toml), "--method", "red-black-sor", "--precision", "single", "-q",
+                 "--tolerance", "0.05", "--report", str(rep)]) == 0
+    assert seen[0] == ("red-black-sor", "single")
+    seen.clear()
+    assert main(["solve", str(toml), "-q", "--tolerance", "0.05", "--report", str(rep)]) in (0, 1)
+    assert seen[0] == ("jacobi", "double")  # the case's own settings
+    seen.clear()
+    assert main(["info", str(toml), "--precision", "single"]) == 0
+    assert seen[0] == ("jacobi", "single")
+    capsys.readouterr()
+    # and a refusal names the memory: a multigrid run needs more than the case's Jacobi
+    need = real(30, 40, "multigrid", 5)
+    assert need > real(30, 40, "jacobi", 5)
+    monkeypatch.setattr(memory, "available_bytes", lambda: need - 1)
+    assert main(["solve", str(toml), "--method", "multigrid", "-q"]) == 2
+    assert "memory is available" in capsys.readouterr().err

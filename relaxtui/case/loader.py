@@ -257,13 +257,17 @@ def _name_regions(parsed: list[tuple[dict, int | None]], lines: KeyLines, label:
     return regions
 
 
-def load_case(path: str | Path) -> Case:
+def load_case(path: str | Path, *, method: str | None = None, precision: str | None = None) -> Case:
     """Read a case TOML file and its PNG picture into a validated :class:`Case`.
 
     Parameters
     ----------
     path : str or Path
         The case file. Its ``mask`` is resolved relative to the file's folder.
+    method, precision : str, optional
+        The method and storage precision the run will use when the command line overrides the
+        case's ``[solver]`` table; the memory check before decoding is made for them. ``None``
+        (the default) checks for the case's own settings.
 
     Raises
     ------
@@ -330,8 +334,8 @@ def load_case(path: str | Path) -> Case:
     picture.require_regular_file(mask_path, mask_label, "PNG picture")
     header = picture.read_header(mask_path, mask_label)
     per_cell = geometry == "axisymmetric" or any(k in f for f, _ in parsed for k in physics.MAP_KEYS)
-    check_memory(header.height, header.width, solver.method, len(regions), mask_label, per_cell=per_cell,
-                 precision=solver.precision)
+    check_memory(header.height, header.width, method or solver.method, len(regions), mask_label, per_cell=per_cell,
+                 precision=precision or solver.precision)
     decoded = picture.decode(mask_path, mask_label)
     codes, snapped = picture.match(decoded, [f["packed"] for f, _ in parsed], snap=snap, label=mask_label)
     del decoded

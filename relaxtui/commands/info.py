@@ -240,6 +240,6 @@ def run(args) -> int:
     """Handle ``relaxtui info``; returns the exit code."""
     from relaxtui.case import load_case
 
-    case = load_case(args.case)
+    case = load_case(args.case, precision=getattr(args, "precision", None))
     describe(case, ranks=getattr(args, "ranks", None), precision=getattr(args, "precision", None))
     return 0

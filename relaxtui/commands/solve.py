@@ -191,7 +191,7 @@ def run(args) -> int:
     from relaxtui.output.atomic import clean_stale_temps, pause_for_tests
     from relaxtui.solver.driver import Run, resolve_options
 
-    case = load_case(args.case)
+    case = load_case(args.case, method=args.method, precision=getattr(args, "precision", None))
     out, report_path, history_path = _default_outputs(args, case)
     probes_path = getattr(args, "probes", None)
     if probes_path is not None and not case.probes:

@@ -75,7 +75,9 @@ def run(args) -> int:
         names = [parse_method(name, "--methods: method") for name in names]
         settings = [(name, "auto") for name in names]
         rank_by = "seconds"
-    case = load_case(args.case)
+    # the memory check for the most demanding method of the table (multigrid needs the most per cell)
+    heaviest = "multigrid" if any(m == "multigrid" for m, _ in settings) else settings[0][0]
+    case = load_case(args.case, method=heaviest, precision=getattr(args, "precision", None))
     # validate every setting before the first solve
     for method, w in settings:
         Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit,
