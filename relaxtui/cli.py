@@ -122,6 +122,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("open", help="open a case in the terminal UI", description="Watch and tune a solve in the terminal UI.")
     p.add_argument("case", metavar="CASE.toml")
     _add_solver_options(p)
+    _add_precision(p, "the working field's storage of the first run (p in the UI changes it)")
     p.add_argument("--run", action="store_true", help="start solving at once")
 
     p = sub.add_parser("render", help="draw a saved field as a PNG picture", description="Draw a field (.npy) of a case as a colour picture with a colour bar.")

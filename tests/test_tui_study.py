@@ -120,6 +120,26 @@ def test_enter_hands_the_focus_back_so_footer_keys_work(tmp_path):
     pilot_test(make_plate(tmp_path), body)
 
 
+def test_precision_follows_the_case_and_p_changes_it(tmp_path):
+    # the case's [solver] precision is shown in the Next run panel; p, right, Enter turns it, and the
+    # next run stores its field in that precision (float32 for "single", case-format v1.1 [solver])
+    async def body(pilot, app):
+        choice = app.query_one("#param-precision")
+        assert choice.value == "single"
+        assert choice.region.bottom <= app.query_one("#status").region.y  # shown at 80 x 24
+        await pilot.press("s")
+        await finished(pilot, app, 1)
+        assert app.records[0].result.report["precision"] == "single"
+        await pilot.press("p", "right", "enter", "s")
+        assert choice.value == "double"
+        await finished(pilot, app, 2)
+        assert app.records[1].result.report["precision"] == "double"
+
+    path = make_plate(tmp_path, tolerance=0.05)
+    path.write_text(path.read_text().replace("[solver]\n", '[solver]\nprecision = "single"\n'), encoding="utf-8")
+    pilot_test(path, body)
+
+
 def test_escape_is_shown_in_the_footer_inside_a_field(tmp_path):
     async def body(pilot, app):
         await pilot.press("t")
@@ -255,9 +275,9 @@ def test_method_change_resets_omega_unless_set_for_that_method(tmp_path):
         await type_into(pilot, app, "o", "1.5")
         # weighted Jacobi's factor max|1 - w(1 ± mu)| exceeds 1 for w > 2/(1+mu) (Young 1971)
         assert "Jacobi weight 1.5 > 1" in params.warning()
-        assert "weight 1.5 > 1" in str(app.query_one("#param-warning").render())
-        status = app.query_one("#status")
-        assert app.query_one("#param-warning").region.bottom <= status.region.y  # shown, above the strip
+        assert "weight 1.5 > 1" in str(params.border_title)  # the title line: shown at every size
+        await type_into(pilot, app, "o", "0.9")
+        assert params.border_title == "Next run"
 
     pilot_test(make_plate(tmp_path, method="sor"), body)
 

@@ -8,7 +8,7 @@ from relaxtui.errors import CaseError
 
 
 def run(args) -> int:
-    """``relaxtui open CASE.toml [--method ...] [--omega ...] [--tolerance ...] [--run]``."""
+    """``relaxtui open CASE.toml [--method ...] [--omega ...] [--tolerance ...] [--precision ...] [--run]``."""
     path = Path(args.case)
     from relaxtui.case.picture import require_regular_file
 
@@ -23,6 +23,7 @@ def run(args) -> int:
         omega=getattr(args, "omega", None),
         tolerance=getattr(args, "tolerance", None),
         max_sweeps=getattr(args, "max_sweeps", None),
+        precision=getattr(args, "precision", None),
         run=getattr(args, "run", False),
     )
     app.run()

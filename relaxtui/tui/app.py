@@ -41,6 +41,7 @@ PANELS = ("field", "history", "runs", "omega")
 # Keys that move the focus into a field: run when read (not after the keys queued behind them),
 # so that "m→→" typed in one burst turns the method instead of moving the probe.
 FOCUS_KEYS = {"m": "focus_param('method')", "o": "focus_param('omega')", "t": "focus_param('tolerance')",
+              "p": "focus_param('precision')",
               "r": "focus_study('scan')", "l": "focus_study('csv')"}
 
 
@@ -66,13 +67,16 @@ class RelaxApp(Controls, Refresher, App):
         ("3", "panel('runs')", "Runs"), ("4", "panel('omega')", "ω study"), ("h", "toggle_held", "Held values"),
         ("a", "toggle_span", "All runs"), ("m", "focus_param('method')", "Method"),
         ("o", "focus_param('omega')", "Omega"), ("t", "focus_param('tolerance')", "Tolerance"),
+        ("p", "focus_param('precision')", "Precision"),
         ("r", "focus_study('scan')", "ω scan range"), ("l", "focus_study('csv')", "Load a sweep CSV"),
     )
 
-    def __init__(self, case_path, *, method=None, omega=None, tolerance=None, max_sweeps=None, run=False) -> None:
+    def __init__(self, case_path, *, method=None, omega=None, tolerance=None, max_sweeps=None, precision=None,
+                 run=False) -> None:
         super().__init__()
         self.case_path = Path(case_path)
-        self.cli = {"method": method, "omega": omega, "tolerance": tolerance, "max_sweeps": max_sweeps}
+        self.cli = {"method": method, "omega": omega, "tolerance": tolerance, "max_sweeps": max_sweeps,
+                    "precision": precision}
         self.autostart = bool(run)
         self.case = self.operator = self.layout = self.initial_field = None
         self.session = Session()
@@ -124,6 +128,7 @@ class RelaxApp(Controls, Refresher, App):
                     omega="auto" if omega in (None, "auto") else f"{omega:g}",
                     tolerance=f"{self.cli['tolerance'] or model.DEFAULT_TOLERANCE:g}",
                     max_sweeps=str(self.cli["max_sweeps"] or model.DEFAULT_MAX_SWEEPS),
+                    precision=self.cli["precision"] or "double",
                     id="params",
                 )
         yield StatusStrip(id="status")
@@ -132,7 +137,7 @@ class RelaxApp(Controls, Refresher, App):
     def on_mount(self) -> None:
         self.main = self.screen  # widgets are looked up on the main screen, also under a dialog
         titles = {"#field": "Field", "#history": "Residual history", "#runs": "Runs", "#omega": "ω study",
-                  "#timing": "Timing", "#params": "Next run"}
+                  "#timing": "Timing"}  # the Next run panel titles itself (a warning can take the title)
         for sel, title in titles.items():
             self.main.query_one(sel).border_title = title
         self.main.query_one(FieldView).mono = self.no_color
@@ -196,6 +201,7 @@ class RelaxApp(Controls, Refresher, App):
             omega=s.omega if cli["omega"] is None and s.omega is not None else None,
             tolerance=s.tolerance if cli["tolerance"] is None else None,
             max_sweeps=s.max_sweeps if cli["max_sweeps"] is None else None,
+            precision=s.precision if cli["precision"] is None and s.precision else None,
         )
         params.set_unit(ev.case.unit)
         self.main.query_one(TimingPanel).unit = ev.case.unit

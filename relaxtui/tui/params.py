@@ -28,11 +28,14 @@ from textual.containers import Horizontal, Vertical
 from textual.message import Message
 from textual.reactive import reactive
 from textual.widget import Widget
-from textual.widgets import Input, Label, Static
+from textual.widgets import Input, Label
 
 from relaxtui import options
 from relaxtui.errors import UsageError
 from relaxtui.tui.messages import PanelMessage
+
+PRECISIONS = options.PRECISIONS
+TITLE = "Next run"
 
 FIELD_LABEL = {"omega": "ω", "tolerance": "tolerance", "max-sweeps": "sweep limit"}
 
@@ -128,7 +131,8 @@ class ParamField(Input):
 
 
 class MethodChoice(Widget, can_focus=True):
-    """The method: left/right (or up/down) choose, Enter confirms and gives the focus back."""
+    """A choice among names (the method, the precision): left/right (or up/down) choose, Enter confirms
+    and gives the focus back."""
 
     BINDINGS = [
         Binding("left,up", "turn(-1)", "Previous", show=False),
@@ -187,10 +191,11 @@ class ParamsPanel(Vertical):
             self.text = text
 
     def __init__(self, methods, *, method: str, omega: str, tolerance: str, max_sweeps: str, unit: str = "",
-                 id: str | None = None, classes: str | None = None) -> None:
+                 precision: str = "double", id: str | None = None, classes: str | None = None) -> None:
         super().__init__(id=id, classes=classes)
         self.methods = tuple(methods)
         self._initial = (method, omega, tolerance, max_sweeps)
+        self._initial_precision = precision
         self.unit = unit
         self.omega_by_method: dict[str, str] = {}  # ω text the user set, per method
         self.mu: float | None = None  # the latest measured Jacobi radius (for the Jacobi warning)
@@ -211,7 +216,12 @@ class ParamsPanel(Vertical):
         with Horizontal(classes="param-row"):
             yield Label("max sweeps", classes="param-label")
             yield ParamField(max_sweeps, compact=True, id="param-max-sweeps")
-        yield Static("", id="param-warning")
+        with Horizontal(classes="param-row"):
+            yield Label("precision", classes="param-label")
+            yield MethodChoice(PRECISIONS, self._initial_precision, id="param-precision")
+
+    def on_mount(self) -> None:
+        self.border_title = TITLE
 
     # -- the app's interface ---------------------------------------------------------
     def field(self, which: str):
@@ -220,8 +230,11 @@ class ParamsPanel(Vertical):
     def focus_field(self, which: str) -> None:
         self.screen.set_focus(self.field(which))  # at once: keys typed right after land in the field
 
-    def set_defaults(self, method=None, omega=None, tolerance=None, max_sweeps=None) -> None:
+    def set_defaults(self, method=None, omega=None, tolerance=None, max_sweeps=None, precision=None) -> None:
         """Show the case's defaults (None leaves a field as it is)."""
+        if precision is not None:
+            self.field("precision").set_reactive(MethodChoice.value, precision)
+            self.field("precision").refresh()
         if method is not None:
             self.field("method").set_reactive(MethodChoice.value, method)
             self.field("method").refresh()
@@ -260,6 +273,7 @@ class ParamsPanel(Vertical):
             "omega": parse_omega(self.field("omega").value),
             "tolerance": parse_tolerance(self.field("tolerance").value),
             "max_sweeps": parse_max_sweeps(self.field("max-sweeps").value),
+            "precision": self.field("precision").value,
         }
 
     def omega_text(self) -> str:
@@ -274,19 +288,21 @@ class ParamsPanel(Vertical):
 
     # -- events ------------------------------------------------------------------------
     def _warn(self) -> None:
-        """One line under the fields (the whole sentence is the toast at start)."""
+        """The short warning in the panel's title, in place of "Next run" (the whole sentence is the
+        toast at start): the title line is there at every terminal size, a row under the fields is not."""
         text = self.warning()
         short = ""
         if text:
             w = float(parse_omega(self.omega_text()))
             verdict = "may diverge" if self.mu is None else ("diverges" if w > 2.0 / (1.0 + self.mu) else "is slower")
             short = f"⚠ weight {w:g} > 1 {verdict}"
-        line = Text(short, style="bold yellow", no_wrap=True, overflow="ellipsis")
-        self.query_one("#param-warning", Static).update(line if short else "")
+        self.border_title = short or TITLE
         self.set_class(bool(text), "-warning")
 
     def on_method_choice_changed(self, event: MethodChoice.Changed) -> None:
         event.stop()
+        if event.choice.id != "param-method":  # the precision choice: nothing else follows it
+            return
         current = self.field("omega").value.strip()
         if current.lower() not in ("", "auto"):
             self.omega_by_method[event.old] = current
