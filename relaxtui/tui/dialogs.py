@@ -24,8 +24,8 @@ HELP_SECTIONS = (
         ("e", "export the chosen run: field .npy, report .json, history .csv"),
     )),
     ("Parameters", (
-        ("m / o / t", "go to the method, ω or tolerance field"),
-        ("← → in method", "choose the method; enter or escape goes back"),
+        ("m / o / t / p", "go to the method, ω, tolerance or precision field"),
+        ("← → in method", "choose the method (or the precision); enter or escape goes back"),
         ("enter in a field", "check the value (refused with a message if bad) and go back to the panels"),
         ("enter in ω", "while a run is going: change its ω now (recorded in its history)"),
         ("escape", "leave a field, back to the panels"),
