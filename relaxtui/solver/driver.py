@@ -110,6 +110,7 @@ class Run:
         self._radius_start = (0.0, False)  # (seconds of sweeping before it starts, redo an unsettled one)
         self._provisional = False  # auto ω waits for the first steps of a background estimate
         self._corrections = 0
+        self._radius_failure = ""  # why the background estimate died, for the omega note
         self.seconds = 0.0
         self.prepare_seconds = 0.0
         self.status: str | None = None
@@ -283,6 +284,18 @@ class Run:
         """Between chunks: take a background estimate that has just finished."""
         job = self.operator.radius_job()
         est = job.result()
+        if est is None and job.state().stage == "failed":
+            # the estimate died (it is not restarted): ω and the rule go on from the factor the sweeps show,
+            # starting at the trivial bound radius 0 (ω = 1) that the observed factor then raises
+            self._radius_pending = self._provisional = self._radius_settled = False
+            self._radius_failure = job.state().describe()
+            self._radius_note = f"{self._radius_failure}; the observed factor sets omega"
+            if self.mu is None:
+                self.mu = 0.0
+            if self._omega_request == "auto" and self.method_info.needs_radius:
+                self.omega_note = ""
+                self._choose_omega("auto")
+            return
         if est is None:
             delay, redo = self._radius_start
             left = self._remaining_seconds()
@@ -514,6 +527,8 @@ class Run:
         self.operator.radius_job().raise_to(mu_new)
         self.omega_note = (f"auto: Jacobi radius raised {old:.6f} -> {mu_new:.6f} from the observed SOR factor "
                            f"{meas:.6f} (Young's relation), omega = 2/(1+sqrt(1-radius^2))")
+        if self._radius_failure:
+            self.omega_note += f" ({self._radius_failure})"
         self._choose_omega("auto")
 
     def _finish(self, status: str) -> None:

@@ -174,7 +174,7 @@ CACHE_VERSION = 1
 class RadiusState:
     """What the estimate is doing, for a progress line (safe to hand to another thread)."""
 
-    stage: str  # "not started", "running", "paused", "done"
+    stage: str  # "not started", "running", "paused", "done", "failed"
     steps: int
     max_steps: int
     mu: float | None  # the estimate so far (None before the first step)
@@ -190,6 +190,8 @@ class RadiusState:
             return f"Jacobi radius {self.mu:.6f} from {self.steps} Lanczos steps ({self.seconds:.2f} s, {how})"
         if self.stage == "not started":
             return "Jacobi radius not estimated yet (it starts beside the sweeps)"
+        if self.stage == "failed":
+            return f"the Jacobi radius estimate failed ({self.source}); it is not tried again in this process"
         so_far = "" if self.mu is None else f", {self.mu:.6f} so far"
         return f"estimating the Jacobi radius: {self.steps}/{self.max_steps} Lanczos steps{so_far}"
 
@@ -218,6 +220,7 @@ class RadiusJob:
         self._stop = threading.Event()
         self._seconds = 0.0
         self._budget_key = None
+        self._failure: str | None = None  # why the background estimate died (it is not started again)
 
     # -- state ------------------------------------------------------------------------------
     def result(self) -> RadiusEstimate | None:
@@ -233,6 +236,8 @@ class RadiusJob:
         final = self._final
         if final is not None:
             return RadiusState("done", final.steps, final.steps, final.mu, final.settled, self._seconds, self._source)
+        if self._failure is not None:
+            return RadiusState("failed", 0, 0, None, False, self._seconds, self._failure)
         if lz is None:
             return RadiusState("not started", 0, 0, None, False, 0.0, "lanczos")
         return RadiusState("running" if self.running else "paused", lz.steps, lz.max_steps,
@@ -289,7 +294,7 @@ class RadiusJob:
         """Advance in a background thread (``threads`` numba threads for its kernels) until done or paused."""
         import threading
 
-        if self.running or self._final is not None and (self._final.settled or not redo_unsettled):
+        if self.running or self._failure is not None or self._final is not None and (self._final.settled or not redo_unsettled):
             return
         self._stop.clear()
 
@@ -304,6 +309,11 @@ class RadiusJob:
                 try:
                     if self._ensure(method_sweeps, redo_unsettled):  # the start vector too is made here
                         self._lanczos.advance(stop=self._stop)
+                except Exception as exc:  # noqa: BLE001 - a failed estimate must not end (or flood) the run
+                    # the run goes on with the observed factor; the report's omega_note names the failure,
+                    # and the job is not restarted chunk after chunk (each start would fail the same way)
+                    self._failure = f"{type(exc).__name__}: {exc}"
+                    self._lanczos = None
                 finally:
                     self._seconds += time.perf_counter() - t0
                 self._finish_if_done()
