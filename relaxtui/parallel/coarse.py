@@ -41,13 +41,12 @@ from relaxtui.solver.radius import RadiusEstimate, RitzRule
 TAG_C_UP, TAG_C_DOWN = 51, 52  # coarse rows travelling to the rank above / below
 TAG_Y, TAG_SQ = 53, 54  # the coarse row above a strip that starts at an odd grid row (the fine stage)
 
-# What is left of an estimate, in coarse steps, for DistributedRadiusJob.affordable: a coarse Lanczos step
-# streams about 40 B per coarse cell (three float32 operator arrays, two float64 vectors, once or twice), a
-# red-black sweep 9-17 B per fine cell, four fine cells per coarse one: about one sweep a step. The fine stage
-# is `smoothing` red-black sweeps of a float32 vector and a Rayleigh pass.
-STEP_SWEEPS = 1.0
-FINE_STEPS_PER_SMOOTHING = 1.0
-
+# What is left of an estimate, in coarse steps, for DistributedRadiusJob.affordable before a step is timed.
+# Measured at 4096^2 on 2 ranks (the aquifer demo, load average 2): 600 coarse steps, their 600 replays and
+# the fine stage took 11.8 s against 25 ms a red-black sweep, about 0.4 sweeps a step (0.5 is used); a
+# smoothing sweep of the fine stage is one red-black sweep of a float32 vector, about 2.5 coarse steps.
+STEP_SWEEPS = 0.5
+FINE_STEPS_PER_SMOOTHING = 2.5
 
 @functools.cache
 def coarse_defaults() -> dict:
