@@ -370,6 +370,16 @@ class DistributedCoarseLanczos:
         self.coarse_mu = float(values[-1])
         return np.ascontiguousarray(vectors[:, -1])
 
+    def release(self) -> None:
+        """Free an unfinished estimate's arrays on every rank (collective; it cannot go on afterwards)."""
+        from relaxtui.parallel.group import COARSE_RELEASE
+
+        if self.done:
+            return  # freed when it finished
+        with self.operator.group.collective(COARSE_RELEASE):
+            self.state.release()
+        self.state.stage = "done"  # nothing is left to advance
+
     def advance(self, max_new_steps: int | None = None, stop=None, on_step=None) -> bool:
         """As :meth:`relaxtui.solver.coarse.CoarseLanczos.advance`, on every rank."""
         from relaxtui.parallel.group import COARSE_ADVANCE

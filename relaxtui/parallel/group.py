@@ -35,7 +35,7 @@ STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across r
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
  MG_RELEASE, CELLS) = range(1, 16)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
-COARSE_BEGIN, COARSE_ADVANCE = 41, 42  # the two-level radius estimate (relaxtui.parallel.coarse)
+COARSE_BEGIN, COARSE_ADVANCE, COARSE_RELEASE = 41, 42, 43  # the two-level radius estimate (relaxtui.parallel.coarse)
 
 
 def refusal(method: str) -> str:
@@ -524,6 +524,14 @@ class DistributedRadiusJob(RadiusJob):
         self._pending = False
         return super().run(*args, **kwargs)
 
+    def discard(self) -> None:
+        """As :meth:`RadiusJob.discard`; an unfinished two-level estimate frees its arrays on every rank
+        (collective: called between commands, as the single-process solve does before its output)."""
+        lz = self._lanczos
+        super().discard()
+        if lz is not None and self._lanczos is None and hasattr(lz, "release"):
+            lz.release()
+
     def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
         with self._lock:
             args = () if method_sweeps is None else (method_sweeps,)
@@ -585,6 +593,9 @@ def follow(comm, threads: int) -> int:
             begin(strip, int(cmd[1]))
         elif code == COARSE_ADVANCE:
             strip.coarse_radius.advance()
+        elif code == COARSE_RELEASE:
+            if strip.coarse_radius is not None:
+                strip.coarse_radius.release()
         elif code == MG_SETUP:
             strip.multigrid_setup()
         elif code == MG_SWEEP:

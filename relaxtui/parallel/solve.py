@@ -126,6 +126,7 @@ def _lead(comm, group, args, threads: int) -> int:
                 run.cancel()
             display.update(run.step(0.25))
         display.stop()
+        run.operator.radius_job().discard()  # as in one process: an unfinished estimate frees its arrays first
         result = run.result()
         written = _write_all(result, args, out, report_path, history_path)
     if interrupted.is_set():
