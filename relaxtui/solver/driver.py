@@ -482,8 +482,9 @@ class Run:
         return self.progress
 
     def _chunk_size(self) -> int:
+        multiple = getattr(self._stepper, "chunk_multiple", 1)
         if self._sweep_seconds is None:
-            n = 1
+            n = multiple  # the first chunk times a sweep: as short as it can be
         else:
             n = int(CHUNK_SECONDS / max(self._sweep_seconds, 1e-9))
         d = self.rule.last
@@ -493,7 +494,8 @@ class Run:
             cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
         remaining = self.max_sweeps - self.rule.sweeps
         # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
-        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
+        n = max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
+        return n - n % multiple if n >= multiple else n
 
     def _near_floor(self, update: float) -> bool:
         """Whether an update is within NEAR_FLOOR_ULPS roundings of the field (its type's epsilon) of nothing."""
