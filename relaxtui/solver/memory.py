@@ -38,7 +38,7 @@ phases (the largest counts)
   output                8               the exported field built for the report
                                         (the sweep buffers are released before it)
   method's own          ``Method.bytes_per_cell``: the peak of what the
-                                        method builds (multigrid 41: coarse levels
+                                        method builds (multigrid 38: coarse levels
                                         and CG vectors, held through the iterations)
   decoded picture       16              while the PNG is decoded in row strips (RSS,
                                         Pillow's buffers included); 44 for a picture
