@@ -35,8 +35,10 @@ phases (the largest counts)
                                         is final, and ``relaxtui solve`` drops an
                                         unfinished one before its output (a screen
                                         session keeps it, paused, for its next run)
-  output                8               the exported field built for the report
-                                        (the sweep buffers are released before it)
+  output                8               the exported field, when a picture, VTK file or
+                                        bundle needs it whole (the report and the .npy
+                                        read the working array in strips and need
+                                        none; the sweep buffers are released first)
   method's own          ``Method.bytes_per_cell``: the peak of what the
                                         method builds (multigrid 38: coarse levels
                                         and CG vectors, held through the iterations)
