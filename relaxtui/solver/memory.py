@@ -59,9 +59,10 @@ red-black SOR and Jacobi 42.5 B/cell (estimate 45), reached while the RGB
 picture is decoded whole; multigrid 51.3 (estimate 58; 79.0 before its
 certificate's norm of the inverse came from its own hierarchy instead of a
 Lanczos estimate, and before its coarse levels dropped their planes of
-inverses). Peak RSS of a multigrid solve to 1e-4 of the model problem
-(benchmarks/scale.py, load 1.6-2.3): 49.1 B/cell at 4097 x 4097, 50.0 at
-16 385 x 16 385 (estimate 58).
+inverses). Peak RSS of a multigrid solve to 1e-4 of the model problem, report and .npy
+written (benchmarks/scale.py, load 1.9-2.4): 46.4 B/cell at 4097 x 4097, 47.1
+at 8193 x 8193, 47.3 at 16 385 x 16 385 (estimate 55; 49.1 / 50.0 before the
+float32 interpolation weights).
 Peak RSS (benchmarks/footprint.py, model problem 4097 x 4097 cells, one
 material, auto omega, 1000 sweeps with the two-level radius estimate beside
 them, report and field written; (peak - 200 MiB) / cells, load 1-2.5):
