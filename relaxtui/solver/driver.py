@@ -26,7 +26,7 @@ from relaxtui.errors import UsageError
 from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
 from relaxtui.solver.methods import CHUNK_SECONDS, MAX_CHUNK, get_method  # noqa: F401 - CHUNK_SECONDS re-exported
-from relaxtui.solver.outcome import Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
+from relaxtui.solver.outcome import FieldExport, Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
 
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
@@ -614,7 +614,14 @@ class Run:
             self.progress = self._progress()
         from relaxtui.output.report import build_report
 
-        field = self.operator.finish(self._u)
+        if hasattr(self.operator, "export_rows"):
+            # the exported field is made only if a caller asks for it: the report reads the working
+            # array, the .npy is written from it in strips (no second full-size array)
+            export = FieldExport(self.operator, self._u)
+            report = build_report(self, export)
+            return SolveResult(report=report, history=self.history.copy(), case=self.case, probes=self.probe_log,
+                               export=export)
+        field = self.operator.finish(self._u)  # an operator split across MPI ranks gathers it
         report = build_report(self, field)
         return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case, probes=self.probe_log)
 

@@ -199,7 +199,7 @@ METHODS: dict[str, Method] = {
         factor=None,  # no Jacobi-radius estimate: the stopping rule measures the cycle's own factor
         parallel=True,
         make=lambda operator: _multigrid().MultigridStepper(operator),
-        bytes_per_cell=41,  # held through the iterations: coarse levels 24, CG work field and direction 16 (tracemalloc peak of a 770² solve 51.3 B/cell with the resident arrays, tests/test_memory.py)
+        bytes_per_cell=38,  # held through the iterations: coarse levels 21.3 (stencils 13.3, corrections and right-hand sides 5.3, float32 weights 2.7), CG work field and direction 16 (tests/test_memory.py keeps it an upper bound)
     ),
     "symmetric-sor": Method(
         "symmetric-sor", "ssor",
