@@ -35,6 +35,7 @@ STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across r
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
  MG_RELEASE, CELLS) = range(1, 16)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
+COARSE_BEGIN, COARSE_ADVANCE = 41, 42  # the two-level radius estimate (relaxtui.parallel.coarse)
 
 
 def refusal(method: str) -> str:
@@ -471,14 +472,25 @@ class DistributedRadiusJob(RadiusJob):
         lz = self._lanczos
         if lz is not None and lz.done:
             return True
+        coarse = lz is not None and hasattr(lz, "work_left") or lz is None and self._coarse()
         if self._slice_steps > 0:
             step = self._seconds / self._slice_steps
         elif sweep_seconds is not None:
-            step = self.STEP_SWEEPS * sweep_seconds
+            if coarse:
+                from relaxtui.parallel.coarse import STEP_SWEEPS
+            else:
+                STEP_SWEEPS = self.STEP_SWEEPS
+            step = STEP_SWEEPS * sweep_seconds
         else:
             return True  # nothing timed yet: the driver's own delay decides
-        max_steps = lz.max_steps if lz is not None else _lanczos_defaults()["max_steps"]
-        left = max_steps - (lz.steps if lz is not None else 0)
+        if coarse:  # the two-level estimate: its coarse steps, their replay and the fine stage
+            from relaxtui.parallel.coarse import FINE_STEPS_PER_SMOOTHING, coarse_defaults
+
+            d = coarse_defaults()
+            left = lz.work_left() if lz is not None else 2 * d["max_steps"] + FINE_STEPS_PER_SMOOTHING * d["smoothing"]
+        else:
+            max_steps = lz.max_steps if lz is not None else _lanczos_defaults()["max_steps"]
+            left = max_steps - (lz.steps if lz is not None else 0)
         # a slice of SLICE seconds per chunk of about CHUNK_SECONDS: the estimate gets SLICE / CHUNK_SECONDS
         # of the sweeping time
         from relaxtui.solver.methods import CHUNK_SECONDS
@@ -492,8 +504,21 @@ class DistributedRadiusJob(RadiusJob):
             self._final = None  # an unsettled estimate made for SOR is redone for the slow methods
             self._lanczos = None
         if self._lanczos is None:
-            self._lanczos = DistributedLanczos(self.operator, method_sweeps)
+            self._lanczos = self._new_lanczos(method_sweeps)
         return True
+
+    def _coarse(self) -> bool:
+        """Whether this operator's estimate is the two-level one (as in one process, by its unknowns)."""
+        from relaxtui.solver.radius import coarse_unknowns
+
+        return self.operator is not None and self.operator.unknowns > coarse_unknowns()
+
+    def _new_lanczos(self, method_sweeps):
+        if self._coarse():
+            from relaxtui.parallel.coarse import DistributedCoarseLanczos
+
+            return DistributedCoarseLanczos(self.operator, method_sweeps)
+        return DistributedLanczos(self.operator, method_sweeps)
 
     def run(self, *args, **kwargs):
         self._pending = False
@@ -554,6 +579,12 @@ def follow(comm, threads: int) -> int:
             strip.lanczos_advance()
         elif code == CELLS:
             strip.cells_at(None, None)
+        elif code == COARSE_BEGIN:
+            from relaxtui.parallel.coarse import begin
+
+            begin(strip, int(cmd[1]))
+        elif code == COARSE_ADVANCE:
+            strip.coarse_radius.advance()
         elif code == MG_SETUP:
             strip.multigrid_setup()
         elif code == MG_SWEEP:

@@ -42,7 +42,12 @@ def rank_bytes(rows: int, cols: int, method: str | None, materials: int, ranks: 
     code_bytes = memory.CLASS_CODE_BYTES_SMALL if int(materials) <= memory.CLASS_CODE_SMALL_LIMIT else memory.CLASS_CODE_BYTES_LARGE
     # a strip with its two halo rows costs what a single-process solve of that many rows costs
     # (the same phases: radius estimate, sweeps, outputs), less the picture it never decodes
-    other = memory.estimate_solve_bytes(n + 2, cols, method, materials, fine_radius=True)  # DistributedLanczos: fine vectors
+    # the radius estimate is counted at the fine Lanczos vectors' 24 B/cell, though above COARSE_UNKNOWNS
+    # the ranks run the two-level one (relaxtui.parallel.coarse, 9 B/cell, as in one process): the strip's
+    # other phases need more than this model counts (measured at 4096^2 on 2 ranks, red-black SOR, 50
+    # sweeps: rank 1 peaked at 415 MB with a given omega, the model less its estimate 353 MB; 484 MB with the two-level
+    # estimate, model 554 MB this way, 428 MB at 9 B/cell)
+    other = memory.estimate_solve_bytes(n + 2, cols, method, materials, fine_radius=True)
     whole = rows * cols
     # the region picture all along, plus the largest of: the decoded picture (loading), the
     # whole class array (assembly), the gathered exported field (outputs): one at a time
