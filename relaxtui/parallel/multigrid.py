@@ -44,6 +44,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
+from relaxtui.output.atomic import pause_for_tests
 from relaxtui.parallel.comm import mpi, quiet_wait
 
 GATHER_CELLS = 1 << 16  # a level with fewer cells is gathered onto rank 0
@@ -192,7 +193,12 @@ class StripMultigrid:
         setup = [(A, tag, None)]  # level l at [l - 1]: (A, tag, P to the next level)
         self.unknowns = [int(comm.allreduce(int(np.count_nonzero(strip.cls[1:-1])), op=MPI.SUM))]
         K = 1
+        from relaxtui.parallel import stop
+
         while True:
+            if check:  # (not in the kernels' warm-up on a tiny grid)
+                pause_for_tests("multigrid-levels")
+            stop.agree(comm, raise_stopped=True)  # between levels: a stop signal ends the set-up on every rank
             A, tag, _ = setup[-1]
             lo, hi = own[K]
             mine = int(np.count_nonzero(A[0, lo - band[K][0] + 1 : hi - band[K][0] + 1, 1:-1] > 0.0))
@@ -514,9 +520,18 @@ class DistributedMultigrid:
         from relaxtui.parallel.group import MG_SETUP
         from relaxtui.solver.multigrid import GAMMA, KRYLOV_SWEEPS, MultigridStepper
 
+        from relaxtui.parallel import stop
+
         op = self.operator
-        with op.group.collective(MG_SETUP):
-            mg = op.strip.multigrid_setup()
+        if stop.agreed():
+            return  # the ranks have agreed to stop: the run is cancelled before its first iteration
+        try:
+            with op.group.collective(MG_SETUP):
+                mg = op.strip.multigrid_setup()
+        except stop.Stopped:  # on every rank at once: no hierarchy (the report has no method_info)
+            op.group.busy = False
+            op.strip.mg = None
+            return
         levels = [{"shape": list(s), "unknowns": int(u)} for s, u in zip(mg.shapes, mg.unknowns)]
         shim = SimpleNamespace(operator=SimpleNamespace(unknowns=op.unknowns), direct=False, gamma=GAMMA, krylov=True,
                                krylov_sweeps=KRYLOV_SWEEPS,
