@@ -34,6 +34,7 @@ DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips
 STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
  MG_RELEASE, CELLS) = range(1, 16)
+MG_NORM = 40  # multigrid's norm of the inverse (numbered apart from the list above)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 
 
@@ -560,6 +561,8 @@ def follow(comm, threads: int) -> int:
             strip.mg.iterate(float(cmd[1]), int(cmd[2]))
         elif code == MG_RELEASE:
             strip.mg = None
+        elif code == MG_NORM:
+            strip.mg.inverse_norm(float(cmd[1]))
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 
