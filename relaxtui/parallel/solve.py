@@ -95,7 +95,7 @@ def _lead(comm, group, args, threads: int) -> int:
     from relaxtui.parallel.group import DISTRIBUTED_METHODS, STEPPED_METHODS, DistributedOperator, refusal
     from relaxtui.solver.driver import Run, check_outputs
 
-    case = load_case(args.case)
+    case = load_case(args.case, method=args.method, precision=getattr(args, "precision", None))
     out, report_path, history_path = _default_outputs(args, case)
     check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
     initial = None
