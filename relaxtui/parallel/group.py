@@ -520,9 +520,19 @@ class DistributedRadiusJob(RadiusJob):
         return self._final
 
 
+def _start_numba() -> None:
+    """Run one tiny kernel whose argument types no case changes (numba's first kernel in a process
+    imports and sets up its compiler and thread layer, about 1 s): the ranks 1..P-1 do it while
+    rank 0 reads the picture, instead of in their turn of :func:`warm_in_turn`, where rank 0 waits."""
+    from relaxtui.kernels import blocks
+
+    blocks.zero_fill(np.zeros((1, 1)), 1)
+
+
 def follow(comm, threads: int) -> int:
     """The loop of ranks 1..P-1: do what rank 0 commands until it says stop; returns the exit code."""
     strip = None
+    _start_numba()
     while True:
         cmd = _wait_command(comm)
         code = int(cmd[0])
