@@ -34,6 +34,7 @@ DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips
 STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
  MG_RELEASE, CELLS) = range(1, 16)
+MG_NORM = 40  # multigrid's norm of the inverse (numbered apart from the list above)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 COARSE_BEGIN, COARSE_ADVANCE = 41, 42  # the two-level radius estimate (relaxtui.parallel.coarse)
 STOP_CHECK = 64  # the stop-signal agreement (relaxtui.parallel.stop), numbered apart from the commands above
@@ -586,11 +587,21 @@ class DistributedRadiusJob(RadiusJob):
         return self._final
 
 
+def _start_numba() -> None:
+    """Run one tiny kernel whose argument types no case changes (numba's first kernel in a process
+    imports and sets up its compiler and thread layer, about 1 s): the ranks 1..P-1 do it while
+    rank 0 reads the picture, instead of in their turn of :func:`warm_in_turn`, where rank 0 waits."""
+    from relaxtui.kernels import blocks
+
+    blocks.zero_fill(np.zeros((1, 1)), 1)
+
+
 def follow(comm, threads: int) -> int:
     """The loop of ranks 1..P-1: do what rank 0 commands until it says stop; returns the exit code."""
     from relaxtui.parallel import stop
 
     strip = None
+    _start_numba()
     while True:
         cmd = _wait_command(comm)
         code = int(cmd[0])
@@ -645,6 +656,8 @@ def follow(comm, threads: int) -> int:
             strip.mg.iterate(float(cmd[1]), int(cmd[2]))
         elif code == MG_RELEASE:
             strip.mg = None
+        elif code == MG_NORM:
+            strip.mg.inverse_norm(float(cmd[1]))
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 
