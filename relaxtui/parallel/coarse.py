@@ -274,7 +274,12 @@ def begin(strip, smoothing: int) -> StripCoarse:
     from relaxtui.parallel.group import warm_in_turn
 
     if not getattr(strip, "_coarse_warm", False):
-        warm_in_turn(strip.comm, lambda: warm(strip))
+        from relaxtui.parallel import stop
+
+        try:
+            warm_in_turn(strip.comm, lambda: warm(strip), pause="coarse-warm")
+        except stop.Stopped:
+            pass  # raised on every rank alike; rank 0's run now cancels at its next step, the kernels load when called
         strip._coarse_warm = True
     strip.coarse_radius = None  # an earlier, unfinished estimate's arrays go first
     state = StripCoarse(strip, smoothing)
