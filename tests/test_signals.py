@@ -206,3 +206,19 @@ def test_concurrent_runs_to_the_same_paths_never_mix(tmp_path):
     for proc in runs:
         proc.communicate(timeout=180)
     assert check_set(tmp_path) == "complete"
+
+
+def test_a_signal_after_the_run_converged_keeps_its_status_and_exit_code(tmp_path):
+    # The run has converged and is about to write ("solved") when SIGTERM arrives: the field is the
+    # converged one, so the report says converged and the exit code follows it (0), with no
+    # "(stopped by ...)" (relaxtui.commands.solve.exit_code; the MPI run does the same, tests/test_mpi.py).
+    write_case(tmp_path, n=20)
+    proc = start(tmp_path, "solved", "--tolerance", "1e-4")
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGTERM)
+    cont(proc)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err
+    assert check_set(tmp_path) == "complete"
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["status"] == "converged" and "stopped by" not in report["message"]

@@ -2,7 +2,10 @@
 
 Exit codes: 0 converged; 1 ran but did not converge (sweep-limit, time-limit,
 stalled, diverged); 2 bad input or options (nothing is written); 130
-interrupted (the outputs are still written, with status ``cancelled``).
+interrupted (the outputs are still written, with status ``cancelled``). A run
+that wrote its outputs exits with the code of its report's status
+(:func:`exit_code`): a signal that arrives in the chunk that converges leaves
+status ``converged`` and exit code 0.
 
 Interruption: Ctrl-C (SIGINT), SIGTERM (a batch system's stop) and SIGHUP (a
 closed terminal or SSH session) all end the run the same way: the current
@@ -43,15 +46,25 @@ class _Signals:
         self.first: int | None = None
         self.writing = False  # once set, signals are only noted
         self.ignored = 0
+        self.repeated = 0  # signals after the first, while solving
+        self.interrupt_on_repeat = True  # False: a repeat is only counted (MPI followers: rank 0 acts on it)
 
     def handler(self, signum, frame):
         if self.writing:
             self.ignored += 1
             return
         if self.event.is_set():
-            raise KeyboardInterrupt
+            self.repeated += 1
+            if self.interrupt_on_repeat:
+                raise KeyboardInterrupt
+            return
         self.first = signum
         self.event.set()
+
+    def note(self, report: dict) -> None:
+        """Name the signal in a cancelled run's message ("... (stopped by SIGTERM)")."""
+        if self.first is not None and report.get("status") == "cancelled":
+            report["message"] += f" (stopped by {self.name})"
 
     @property
     def name(self) -> str:
@@ -81,6 +94,15 @@ def _stop_signals_to(event: threading.Event):
 
 # kept for callers of the previous name (Ctrl-C only behaved the same way)
 _sigint_to = _stop_signals_to
+
+
+def exit_code(status: str) -> int:
+    """The exit code of a run that wrote its outputs, from the report's status alone: 0 converged,
+    130 cancelled (a stop signal), 1 any other end. A signal that arrives as the run converges, or
+    while the outputs are written, leaves the status, and so the code, what the run reached."""
+    if status == "converged":
+        return EXIT_CONVERGED
+    return EXIT_INTERRUPTED if status == "cancelled" else EXIT_NOT_CONVERGED
 
 
 def _default_outputs(args, case):
@@ -231,19 +253,17 @@ def run(args) -> int:
             steps += 1
             if steps <= 2:
                 pause_for_tests("solving" if steps == 1 else "solving:2")
+        pause_for_tests("solved")  # the run has ended (a signal now changes nothing but the wait)
         signals.writing = True  # from here on a signal never aborts: the set is finished first
         display.stop()
         if run.operator is not None:  # nothing runs on this operator again: an unfinished estimate frees its vectors
             run.operator.radius_job().discard()
         result = run.result()
-        if signals.first is not None and result.report.get("status") == "cancelled":
-            result.report["message"] += f" (stopped by {signals.name})"
+        signals.note(result.report)
         written = _write_all(result, args, out, report_path, history_path)
     if not args.quiet:
         _summary(result, written)
-    if interrupted.is_set():
-        return EXIT_INTERRUPTED
-    return EXIT_CONVERGED if result.report["status"] == "converged" else EXIT_NOT_CONVERGED
+    return exit_code(result.report["status"])
 
 
 def _write_all(result, args, out, report_path, history_path) -> list[Path]:

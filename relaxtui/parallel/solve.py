@@ -11,47 +11,23 @@ same sweeps) and multigrid (the same iterations to rounding, see
 :mod:`relaxtui.parallel.multigrid`). Lexicographic Gauss-Seidel, SOR and
 symmetric SOR are refused with a one-line message and exit code 2.
 
-Signals: SIGINT (Ctrl-C; mpiexec forwards it to every rank) and SIGTERM
-(also forwarded) end the run on rank 0 like the first Ctrl-C of a
-single-process run: status ``cancelled``, the current field and report
-written, exit code 130. The other ranks ignore them and follow rank 0.
+Signals: every rank handles SIGINT (Ctrl-C; mpiexec forwards it to every
+rank), SIGTERM (also forwarded) and SIGHUP with the single-process handler
+(:func:`relaxtui.commands.solve._stop_signals_to`); the ranks agree on them
+(:mod:`relaxtui.parallel.stop`) between steps and between the phases of the
+set-up, and the run ends as a single-process run does: status ``cancelled``
+("(stopped by SIGTERM)"), the current field and report written, the exit
+code of the report's status (130). A repeated signal before the writing
+stops the job at once without writing (exit code 130).
 """
 
 from __future__ import annotations
 
-import signal
 import sys
 import threading
-from contextlib import contextmanager
 from pathlib import Path
 
 from relaxtui.errors import RelaxError, UsageError
-
-
-@contextmanager
-def _signals_to(event: threading.Event):
-    """SIGINT and SIGTERM set ``event``; a second one raises KeyboardInterrupt."""
-    previous = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
-
-    def handler(signum, frame):
-        if event.is_set():
-            for s, h in previous.items():
-                signal.signal(s, h)
-            raise KeyboardInterrupt
-        event.set()
-
-    for s in previous:
-        signal.signal(s, handler)
-    try:
-        yield
-    finally:
-        for s, h in previous.items():
-            signal.signal(s, h)
-
-
-def _ignore_signals() -> None:
-    for s in (signal.SIGINT, signal.SIGTERM):
-        signal.signal(s, lambda signum, frame: None)
 
 
 def run(args) -> int | None:
@@ -68,11 +44,19 @@ def run(args) -> int | None:
         return None
     install_guard(comm, "solve")
     threads = set_threads(comm)
+    from relaxtui.commands.solve import _stop_signals_to
+    from relaxtui.parallel import stop
+
     if comm.Get_rank() != 0:
         from relaxtui.parallel.group import follow
 
-        _ignore_signals()
-        return follow(comm, threads)
+        with _stop_signals_to(threading.Event()) as signals:
+            signals.interrupt_on_repeat = False  # counted; rank 0 acts on it at the next agreement
+            stop.install(signals)
+            try:
+                return follow(comm, threads)
+            finally:
+                stop.install(None)
     from relaxtui.parallel.group import Group
 
     group = Group(comm)
@@ -82,20 +66,24 @@ def run(args) -> int | None:
         if group.busy:
             from relaxtui.parallel.comm import abort, one_line
 
-            abort(comm, getattr(exc, "exit_code", 130), f"relaxtui solve: error: {one_line(exc)}")
+            text = "interrupted" if isinstance(exc, KeyboardInterrupt) else f"error: {one_line(exc)}"
+            abort(comm, getattr(exc, "exit_code", 130), f"relaxtui solve: {text}")  # the CLI's wording
         group.stop(getattr(exc, "exit_code", 130))
         raise
+    finally:
+        stop.install(None)
     return code
 
 
 def _lead(comm, group, args, threads: int) -> int:
     from relaxtui.case import load_case
-    from relaxtui.commands.solve import (EXIT_CONVERGED, EXIT_INTERRUPTED, EXIT_NOT_CONVERGED, _default_outputs,
-                                         _Display, _summary, _write_all)
+    from relaxtui.commands.solve import _default_outputs, _Display, _stop_signals_to, _summary, _write_all, exit_code
+    from relaxtui.parallel import stop
     from relaxtui.parallel.group import DISTRIBUTED_METHODS, STEPPED_METHODS, DistributedOperator, refusal
+    from relaxtui.output.atomic import pause_for_tests
     from relaxtui.solver.driver import Run, check_outputs
 
-    case = load_case(args.case)
+    case = load_case(args.case, method=args.method, precision=getattr(args, "precision", None))
     out, report_path, history_path = _default_outputs(args, case)
     check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
     initial = None
@@ -111,7 +99,8 @@ def _lead(comm, group, args, threads: int) -> int:
     if run.method not in DISTRIBUTED_METHODS + STEPPED_METHODS:
         raise UsageError(refusal(run.method))
     interrupted = threading.Event()
-    with _signals_to(interrupted):
+    with _stop_signals_to(interrupted) as signals:
+        stop.install(signals)
         if not args.quiet:
             print(f"relaxtui: {comm.Get_size()} MPI ranks x {threads} numba thread{'s' if threads != 1 else ''}",
                   file=sys.stderr, flush=True)
@@ -119,19 +108,27 @@ def _lead(comm, group, args, threads: int) -> int:
         display = _Display(run, quiet=args.quiet)
         display.start("preparing")
         run.on_prepare = display.stage
-        run.prepare()
+        run.prepare()  # a signal during the set-up cuts it short (relaxtui.parallel.stop): the run then cancels
         run._initial = None  # scattered to the strips: rank 0 need not keep the whole grid's copy
+        steps = 0
         while not run.done:
+            group.check_stop()  # every rank's signals, agreed: rank 0's event is set by any of them
             if interrupted.is_set():
                 run.cancel()
             display.update(run.step(0.25))
+            steps += 1
+            if steps == 1:
+                pause_for_tests("solving")
+        pause_for_tests("solved")
+        signals.writing = True  # from here on a signal never aborts: the set is finished first
+        group.check_stop(writing=True)  # the followers too
         display.stop()
+        if run.operator is not None:  # as in one process: an unfinished estimate frees its arrays first
+            run.operator.radius_job().discard()
         result = run.result()
+        signals.note(result.report)
         written = _write_all(result, args, out, report_path, history_path)
-    if interrupted.is_set():
-        code = EXIT_INTERRUPTED
-    else:
-        code = EXIT_CONVERGED if result.report["status"] == "converged" else EXIT_NOT_CONVERGED
+    code = exit_code(result.report["status"])
     group.stop(code)
     if not args.quiet:
         _summary(result, written)

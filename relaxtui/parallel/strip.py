@@ -428,7 +428,7 @@ class Strip:
         from relaxtui.solver.multigrid import COARSEST_UNKNOWNS, GAMMA, KRYLOV_SWEEPS
 
         if not self._mg_warm:
-            warm_in_turn(self.comm, lambda: pm.warm(self, self.threads))
+            warm_in_turn(self.comm, lambda: pm.warm(self, self.threads), pause="multigrid-warm")
             self._mg_warm = True
         self.mg = pm.StripMultigrid(self.comm, self.bounds, (self.rows, self.cols), self.wide, self,
                                     per_cell=self.per_cell, cells_limit=self.gather_cells, coarsest=COARSEST_UNKNOWNS,
@@ -438,8 +438,10 @@ class Strip:
     # --- compile once --------------------------------------------------------------------------
 
     def warm(self) -> None:
-        """Load (or compile) every kernel a distributed solve calls, on empty ranges."""
+        """Load (or compile) every kernel a distributed solve calls, on empty ranges. A stop signal skips the
+        rest (:func:`relaxtui.parallel.stop.point` between the kernels; see :func:`~relaxtui.parallel.group.warm_in_turn`)."""
         from relaxtui.kernels import halo, measure, spectral
+        from relaxtui.parallel.stop import point
 
         u, cls, segs = self.u, self.cls, self.segments
         halo.jacobi_range(u, u, cls, self.table, *segs, 1.0, 1, 1, 1)
@@ -448,13 +450,16 @@ class Strip:
         halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
         halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
         halo.largest_bits(np.zeros(1), 0)
+        point()  # a stop signal skips the rest
         measure.flows(self.codes[:0], self.up_codes, self.dn_codes, False, False, u, cls, *segs, self.boundary,
                       self.kind, self.conductivity, self.fixed_conductivity, self.value, self.flux, self.coefficient,
                       self.ambient, self.cell_size, 1)
         measure.residual(u[:2], cls[:2], self.table, *segs, np.zeros((1, 1)), False, 1)
+        point()  # a stop signal skips the rest
         measure.export_field(self.codes[:0], self.kind, self.value, u, np.empty((0, self.cols)))
         measure.init_field(self.codes[:0], self.kind, self.value, np.zeros((1, 1)), False, 0.0, u)
         measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
+        point()  # a stop signal skips the rest
         spectral.start_vector(cls[:0], self.diag, u[:0])
         spectral.d_dot(u[:0], u[:0], cls[:0], self.diag)
         spectral.d_orthogonalise(u[:0], u[:0], 0.0, u[:0], 0.0, cls[:0], self.diag)

@@ -25,10 +25,11 @@ strictly less where a cell leaks to a fixed or convection face), so
 ``||(I - W)^-1||_inf = max w`` for the solution of ``(I - W) w = 1`` (all
 ones): the expected number of random-walk steps before a walker leaves the
 domain. It is computed exactly (banded Cholesky of the symmetric unnormalised
-form, the multigrid kernels' own) on grids where that is cheap, solved for to
+form, the multigrid kernels' own) on grids where that is cheap,
 bounded above by a quadratic barrier in one pass where that holds (``barrier_inverse_norm``;
 when the bound is too loose to certify a stop the rule asks for one of the next two), solved
-for to about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``),
+for to about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``; under MPI
+the same steps by strips, ``relaxtui.parallel.multigrid.StripMultigrid.inverse_norm``),
 and estimated from the Jacobi spectral radius μ elsewhere (``1/(1 - μ)`` is the D-norm of
 the inverse; times a safety factor for the infinity norm).
 """
