@@ -438,7 +438,7 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
     # The residual certificate's ||(I - W)^-1||_inf = max w for (I - W) w = 1 (relaxtui.solver.conditioning;
     # an M-matrix's inverse is non-negative, common practice) is solved for with the distributed hierarchy,
     # by the single-process steps on the same values: the single-process MultigridStepper.inverse_norm to
-    # 1e-7 (inner products added in another order, its weights float32), and scipy's spsolve on tests/exact.py's matrix
+    # 1e-7 (inner products added in another order), and scipy's spsolve on tests/exact.py's matrix
     # within the method's 1 % (INVERSE_NORM_RTOL, the last step added on top: an upper estimate). The CG
     # iteration it interrupted restarts and still reaches the spsolve solution. 2 ranks: the electrodes
     # demo with levels 0-2 split; 3 ranks: the masked case (uneven strips, every boundary kind).
@@ -461,8 +461,8 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
     assert got["how"] == "solved for with the multigrid hierarchy" and got["status"] == "converged"
     loaded = load_case(case)
     one = MultigridStepper(Operator(loaded)).inverse_norm()
-    # rel 1e-7, not rounding: one process stores its coarse interpolation weights in float32, the
-    # ranks keep float64 ones (the same steps; the solve's 1 % tolerance dwarfs either)
+    # rel 1e-7: the same steps on the same float32 interpolation weights, inner products added in
+    # another order (the solve's own 1 % tolerance dwarfs that)
     assert one is not None and got["norm"] == pytest.approx(one, rel=1e-7)
     matrix, _, _ = assemble(loaded)
     want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
