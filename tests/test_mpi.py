@@ -12,7 +12,9 @@ What is checked, and against what:
 - User errors and refused methods end every rank with the one-line message
   and exit code 2 (no hang, no traceback, no output files); an exception on
   one rank aborts the whole job (the guard); SIGTERM under mpiexec writes the
-  current field with status "cancelled" and exit code 130.
+  current field with status "cancelled" and exit code 130, also when it arrives
+  during the set-up (ranks paused at exact moments, RELAXTUI_TEST_PAUSE_AT, as
+  in tests/test_signals.py) or reaches one rank only.
 
 The launches use a clean environment (no launcher variables of an enclosing
 job, one numba thread per rank, the caller's numba cache directory shared by
