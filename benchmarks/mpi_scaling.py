@@ -1,6 +1,7 @@
 """Strong scaling of the strip-decomposed sweeps across MPI ranks, and a model of larger jobs.
 
     python benchmarks/mpi_scaling.py [--sizes 4096,8191] [--ranks 1,2,4] [--aquifer SWEEPS] [--multigrid N] [--markdown FILE]
+    python benchmarks/mpi_scaling.py --multigrid-scaling 4096,8191 [--markdown FILE]
 
 Needs the mpi extra (``pip install '.[mpi]'``). Sections:
 
@@ -22,6 +23,12 @@ Needs the mpi extra (``pip install '.[mpi]'``). Sections:
    (multigrid) on grids/large-aquifer.toml and on an N x N plate, one
    process (2 threads) against 2 ranks (1 thread each): iterations, the
    stopping rule's factor, seconds per iteration, field difference.
+6. ``--multigrid-scaling SIZES`` (this section alone): multigrid on the
+   N x N plate of section 5 for each N, one process (2 threads) against
+   ``mpiexec -n 2`` (1 thread each): wall time from launch to files
+   written, split into set-up, iterations and the rest (start-up, loading,
+   the residual certificate, gathering and writing the outputs), with the
+   load average before each run.
 
 The machine these numbers come from has 2 cores; with P = 4 the ranks are
 oversubscribed (2 per core) and the table says so. Other work on the machine
@@ -298,12 +305,37 @@ def multigrid(lines: list[str], n: int) -> None:
                          f"| {per:.3f} | {r['convergence_factor']:.4g} | {r['status']} | {diff:.3g} |")
 
 
+def multigrid_scaling(lines: list[str], sizes: list[int]) -> None:
+    """Multigrid wall time on N x N plates, one process (2 threads) against 2 ranks (1 thread each)."""
+    import tempfile
+
+    lines += ["## multigrid wall time, one process against 2 ranks (N x N plate, fixed frame, tolerance 1e-6)", "",
+              "| grid | run | load before | wall s | set-up s | iterations s | rest s | iterations | factor | status "
+              "| field difference |", "|---|---|---|---|---|---|---|---|---|---|---|"]
+    for n in sizes:
+        case = plate_files(Path(tempfile.mkdtemp(prefix="relaxtui-plate-")), n)
+        load = os.getloadavg()[0]
+        out, base = solve_both(case, [], "mg")
+        diff = field_difference(base, "mg")
+        for label, (wall, r, code) in out.items():
+            rest = wall - r["prepare_seconds"] - r["seconds"]
+            lines.append(f"| {n}² | {label} | {load:.1f} | {wall:.1f} | {r['prepare_seconds']:.1f} | {r['seconds']:.1f} "
+                         f"| {rest:.1f} | {r['sweeps']} | {r['convergence_factor']:.4g} | {r['status']} | {diff:.3g} |")
+            load = os.getloadavg()[0]  # before the second run
+        shutil.rmtree(base, ignore_errors=True)
+        shutil.rmtree(case.parent, ignore_errors=True)
+    lines += ["", "set-up: the report's `prepare_seconds` (assembly, hierarchy, kernels loaded); iterations: its "
+              "`seconds`; rest: wall minus both."]
+
+
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", default="4096,8191")
     p.add_argument("--ranks", default="1,2,4")
     p.add_argument("--aquifer", type=int, metavar="SWEEPS", help="also time large-aquifer.toml, red-black SOR, SWEEPS sweeps")
     p.add_argument("--multigrid", type=int, metavar="N", help="also compare multigrid on the aquifer and an N x N plate")
+    p.add_argument("--multigrid-scaling", metavar="SIZES",
+                   help="only: multigrid wall time on N x N plates, one process against 2 ranks (comma-separated N)")
     p.add_argument("--markdown")
     p.add_argument("--inner", nargs=2, metavar=("N", "METHOD"))
     p.add_argument("--inner-single", nargs=2, metavar=("N", "METHOD"))
@@ -325,6 +357,15 @@ def main() -> None:
 
     cores = len(os.sched_getaffinity(0))
     load = os.getloadavg()
+    if a.multigrid_scaling:
+        lines = [f"# MPI multigrid scaling ({time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())})", "",
+                 f"{cores} cores; load average at start {load[0]:.1f} / {load[1]:.1f} / {load[2]:.1f}; one run each.", ""]
+        multigrid_scaling(lines, [int(x) for x in a.multigrid_scaling.split(",") if x.strip()])
+        text = "\n".join(lines) + "\n"
+        print(text)
+        if a.markdown:
+            Path(a.markdown).write_text(text, encoding="utf-8")
+        return
     lines = [f"# MPI strong scaling ({time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())})", "",
              f"{cores} cores; load average at start {load[0]:.1f} / {load[1]:.1f} / {load[2]:.1f} "
              "(other engineers' work shares the machine). Median of 3 timed runs, min-max in brackets.", ""]

@@ -84,42 +84,48 @@ def block_couplings(cls, table, diag, sq, cb, eb, sb):
 
 
 @kernel(parallel=True)
-def start_vector(sq, out):
-    """out = sq (the D_c^(1/2) image of the constant vector on the unknowns); returns its 2-norm."""
-    s = 0.0
+def start_vector(sq, out, rows):
+    """out = sq (the D_c^(1/2) image of the constant vector on the unknowns); rows[i] = the sum of out[i]**2
+    over row i, for the inner rows 1 .. shape[0] - 2 (the squared 2-norm is their sum, see :func:`apply_step`)."""
     for i in prange(sq.shape[0]):
+        s = 0.0
         for j in range(sq.shape[1]):
             x = float(sq[i, j])
             out[i, j] = x
             s += x * x
-    return math.sqrt(s)
+        if 0 < i < sq.shape[0] - 1:
+            rows[i] = s
 
 
 @kernel(parallel=True)
-def apply_step(z, w, beta, cb, eb, sb):
-    """w = B z - beta w in place (w holds the previous Lanczos vector on entry); returns alpha = w . z.
+def apply_step(z, w, beta, cb, eb, sb, rows):
+    """w = B z - beta w in place on the inner rows (w holds the previous Lanczos vector on entry); rows[i] = the
+    part of alpha = w . z from row i.
 
-    In place because each cell of w is read only to compute itself: Lanczos then keeps two vectors."""
-    s = 0.0
+    In place because each cell of w is read only to compute itself: Lanczos then keeps two vectors. The inner
+    products are returned per row, each row summed in column order, and added by the caller in one exactly
+    rounded sum (math.fsum): the same number for any count of threads, and for any cut of the rows into strips
+    across MPI ranks (relaxtui.parallel.coarse)."""
     for i in prange(1, z.shape[0] - 1):
+        s = 0.0
         for j in range(1, z.shape[1] - 1):
             x = (cb[i, j] * z[i, j] + (eb[i, j] * z[i, j + 1] + eb[i, j - 1] * z[i, j - 1])
                  + (sb[i, j] * z[i + 1, j] + sb[i - 1, j] * z[i - 1, j])) - beta * w[i, j]
             w[i, j] = x
             s += x * z[i, j]
-    return s
+        rows[i] = s
 
 
 @kernel(parallel=True)
-def subtract_scaled(w, alpha, v):
-    """w -= alpha v; returns the 2-norm of the result."""
-    s = 0.0
-    for i in prange(w.shape[0]):
+def subtract_scaled(w, alpha, v, rows):
+    """w -= alpha v on the inner rows; rows[i] = the sum of the new w[i]**2 (the squared 2-norm by rows)."""
+    for i in prange(1, w.shape[0] - 1):
+        s = 0.0
         for j in range(w.shape[1]):
             x = w[i, j] - alpha * v[i, j]
             w[i, j] = x
             s += x * x
-    return math.sqrt(s)
+        rows[i] = s
 
 
 @kernel(parallel=True)
@@ -131,10 +137,12 @@ def add_scaled(y, factor, v):
 
 
 @kernel(parallel=True)
-def prolong(y, sq, cls, x):
-    """x = P D_c^(-1/2) y: every fine unknown takes the value of its block, 0 elsewhere (x: fine padded)."""
-    for i in prange(x.shape[0]):
-        ci = (i + 1) // 2
+def prolong(y, sq, cls, x, shift, first, stop):
+    """x = P D_c^(-1/2) y on rows first .. stop - 1 of x: every fine unknown takes the value of its block, 0
+    elsewhere. Fine row i lies in coarse row (i + 1 - shift) // 2: shift 0 for the whole padded grid, 1 for a
+    strip of it whose first own row is an odd grid row (relaxtui.parallel.coarse)."""
+    for i in prange(first, stop):
+        ci = (i + 1 - shift) // 2
         for j in range(x.shape[1]):
             if cls[i, j] != 0:
                 cj = (j + 1) // 2
@@ -157,17 +165,19 @@ def smooth_colour(x, cls, table, colour):
 
 
 @kernel(parallel=True)
-def rayleigh(x, cls, table, diag):
-    """(sum D x (J x), sum D x x) over the unknowns, J x computed on the fly (no array for it)."""
-    num = 0.0
-    den = 0.0
+def rayleigh(x, cls, table, diag, num, den):
+    """Per inner row i: num[i] = sum D x (J x), den[i] = sum D x x over the row's unknowns, J x computed on the
+    fly (no array for it); the caller adds the rows (see :func:`apply_step`)."""
     for i in prange(1, x.shape[0] - 1):
+        a = 0.0
+        b = 0.0
         for j in range(1, x.shape[1] - 1):
             c = cls[i, j]
             if c != 0:
                 xc = float(x[i, j])
                 jx = ((table[c, 0] * float(x[i - 1, j]) + table[c, 1] * float(x[i + 1, j]))
                       + table[c, 2] * float(x[i, j - 1])) + table[c, 3] * float(x[i, j + 1])
-                num += diag[c] * xc * jx
-                den += diag[c] * xc * xc
-    return num, den
+                a += diag[c] * xc * jx
+                b += diag[c] * xc * xc
+        num[i] = a
+        den[i] = b

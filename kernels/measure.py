@@ -208,3 +208,117 @@ def first_bad_initial(codes, kind, initial):
             if kind[codes[i, j]] == INTERIOR and not np.isfinite(initial[i, j]):
                 return i, j
     return -1, -1
+
+
+@kernel(inline=True)
+def _exported(codes, kind, value, u, i, j):
+    """The exported value of cell (i, j) (see :func:`export_field`): u, a fixed value, or NaN."""
+    r = codes[i, j]
+    k = kind[r]
+    if k == INTERIOR:
+        return np.float64(u[i + 1, j + 1])
+    if k == FIXED:
+        return value[r]
+    return np.nan
+
+
+@kernel(inline=True)
+def _in_domain(codes, kind, i, j, rows, cols):
+    if i < 0 or i >= rows or j < 0 or j >= cols:
+        return False
+    k = kind[codes[i, j]]
+    return k == INTERIOR or k == FIXED
+
+
+@kernel(inline=True)
+def _difference(vc, vp, vn, has_p, has_n, h):
+    """d u / d index / h at a cell: central where both neighbours are in the domain, one-sided where one
+    is, 0 where neither (the rule and the order of operations of relaxtui.output.flux.gradient)."""
+    g = 0.0
+    g += (vn - vc) if has_n else 0.0
+    g += (vc - vp) if has_p else 0.0
+    if has_p and has_n:
+        g *= 0.5
+    return g / h
+
+
+@kernel(inline=True)
+def _conductivity(codes, kind, cond, inherit, i, j, rows, cols):
+    """A domain cell's conductivity (relaxtui.output.flux.cell_conductivity): its region's, or for a fixed
+    region without one the mean over its interior 4-neighbours (NaN with none)."""
+    r = codes[i, j]
+    if not inherit[r]:
+        return cond[r]
+    total = 0.0
+    count = 0
+    for side in range(4):  # north, south, west, east: the reference's order of summation
+        a = i + (-1 if side == 0 else (1 if side == 1 else 0))
+        b = j + (-1 if side == 2 else (1 if side == 3 else 0))
+        if 0 <= a < rows and 0 <= b < cols:
+            rn = codes[a, b]
+            if kind[rn] == INTERIOR:
+                total += cond[rn]
+                count += 1
+    return total / count if count > 0 else np.nan
+
+
+@kernel(parallel=True)
+def field_summary(codes, kind, value, cond, inherit, u, h, nblk):
+    """Per row block, the report's extremes and peak flux, read straight from the padded working field.
+
+    The exported field (:func:`export_field`: u on interior cells, the exact value on fixed ones,
+    NaN elsewhere) is never built: each cell's value and its 4 neighbours' are read where needed.
+    ``cond`` per region is the conductivity used for the flux (interior: its own, a fixed region:
+    its declared one), ``inherit`` marks fixed regions without one (the mean of their interior
+    neighbours'). The flux is q = -k grad u with the differences of relaxtui.output.flux.gradient
+    (x right, y up; row i + 1 is down). Returns (nblk, 12) float64 rows
+    [found, min, row, col, max, row, col, |q|, qx, qy, row, col]: ``found`` 1 when the block has a
+    finite value; |q| is -1 when it has no finite flux. Within a block the first cell in row-major
+    order wins a tie; the caller combines the blocks in order keeping strictly better ones, so the
+    result does not depend on ``nblk``.
+    """
+    rows, cols = codes.shape
+    out = np.zeros((nblk, 12))
+    for b in prange(nblk):
+        lo, hi = span(b, rows, nblk)
+        found = False
+        vmin = np.inf
+        vmax = -np.inf
+        imin = jmin = imax = jmax = -1
+        best = -1.0
+        bqx = bqy = 0.0
+        ib = jb = -1
+        for i in range(lo, hi):
+            for j in range(cols):
+                r = codes[i, j]
+                k = kind[r]
+                if k != INTERIOR and k != FIXED:
+                    continue
+                v = _exported(codes, kind, value, u, i, j)
+                if np.isfinite(v):
+                    if not found or v < vmin:
+                        vmin, imin, jmin = v, i, j
+                    if not found or v > vmax:
+                        vmax, imax, jmax = v, i, j
+                    found = True
+                has_w = _in_domain(codes, kind, i, j - 1, rows, cols)
+                has_e = _in_domain(codes, kind, i, j + 1, rows, cols)
+                has_n = _in_domain(codes, kind, i - 1, j, rows, cols)
+                has_s = _in_domain(codes, kind, i + 1, j, rows, cols)
+                vw = _exported(codes, kind, value, u, i, j - 1) if has_w else 0.0
+                ve = _exported(codes, kind, value, u, i, j + 1) if has_e else 0.0
+                vn = _exported(codes, kind, value, u, i - 1, j) if has_n else 0.0
+                vs = _exported(codes, kind, value, u, i + 1, j) if has_s else 0.0
+                gx = _difference(v, vw, ve, has_w, has_e, h)
+                gy = -_difference(v, vn, vs, has_n, has_s, h)  # increasing row is -y
+                kc = _conductivity(codes, kind, cond, inherit, i, j, rows, cols)
+                qx = -(gx * kc)
+                qy = -(gy * kc)
+                mag = np.hypot(qx, qy)
+                if np.isfinite(mag) and mag > best:
+                    best, bqx, bqy, ib, jb = mag, qx, qy, i, j
+        out[b, 0] = 1.0 if found else 0.0
+        out[b, 1], out[b, 2], out[b, 3] = vmin, imin, jmin
+        out[b, 4], out[b, 5], out[b, 6] = vmax, imax, jmax
+        out[b, 7], out[b, 8], out[b, 9], out[b, 10], out[b, 11] = best, bqx, bqy, ib, jb
+    return out

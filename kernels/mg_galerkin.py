@@ -12,7 +12,7 @@ import numpy as np
 from numba import prange
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.blocks import span
-from relaxtui.kernels.mg_level0 import weights_row0
+from relaxtui.kernels.mg_level0 import WEIGHT_DTYPE, weights_row0
 
 
 @kernel(inline=True)
@@ -246,6 +246,7 @@ def _galerkin(level0, cls, table, diag, ptab, pflag, A, P, tag_f, bulk, Ac, tag,
 # Level-0 calls pass no coarse planes, coarse calls no class arrays. Called from Python, ``level0``
 # is a run-time flag: one build serves both (per class-code dtype).
 _NO_PLANES = np.zeros((9, 1, 1))
+_NO_WEIGHTS = np.zeros((8, 1, 1), dtype=WEIGHT_DTYPE)  # the coarse calls' weight type: one build serves both
 _NO_TAGS = np.zeros((1, 1), dtype=np.uint32)
 _NO_CLASSES = np.zeros((1, 1), dtype=np.uint8)
 _NO_TABLE = np.zeros((1, 5))
@@ -253,7 +254,7 @@ _NO_TABLE = np.zeros((1, 5))
 
 def galerkin0(cls, table, diag, ptab, pflag, bulk, Ac, tag, nblk):
     """Ac (5, Rc + 2, Cc + 2), zero on entry: the level-1 Galerkin operator P^T A P of level 0 (see :func:`_galerkin`)."""
-    _galerkin(True, cls, table, diag, ptab, pflag, _NO_PLANES[:5], _NO_PLANES[:8], _NO_TAGS, bulk, Ac, tag, nblk)
+    _galerkin(True, cls, table, diag, ptab, pflag, _NO_PLANES[:5], _NO_WEIGHTS, _NO_TAGS, bulk, Ac, tag, nblk)
 
 
 def galerkin9(A, P, tag_f, bulk, Ac, tag, nblk):

@@ -12,6 +12,30 @@ from relaxtui.kernels.mg_galerkin import stencil9
 
 
 @kernel(inline=True)
+def _cap_stored(w, lo, hi, total):
+    """Keep the stored weights w[lo:hi] from summing to more than max(total, 1), ``total`` being the
+    sum of the values computed for them (in float64, in the same order).
+
+    Stored in a narrower type (float32) each weight is rounded, and the rounded weights may sum a
+    few units in the last place above 1; the largest is then lowered until they do not. With
+    float64 storage the stored sum is ``total`` itself and nothing changes.
+    """
+    cap = max(total, 1.0)
+    s = 0.0
+    for k in range(lo, hi):
+        s += w[k]
+    while s > cap:
+        m = lo
+        for k in range(lo + 1, hi):
+            if w[k] > w[m]:
+                m = k
+        w[m] = w[m] * (1.0 - 2.5e-7)  # at least one float32 unit down (2**-23 relative at most)
+        s = 0.0
+        for k in range(lo, hi):
+            s += w[k]
+
+
+@kernel(inline=True)
 def _collapsed(sa, sc, sb, have_a, have_b, out, k):
     """Weights of a row/column cell from its collapsed sums: side a, centre, side b (A entries).
 
@@ -30,8 +54,11 @@ def _collapsed(sa, sc, sb, have_a, have_b, out, k):
     if use_a or use_b:
         # the weights sum to at most 1 (a coarse stencil need not be diagonally dominant)
         den = max(den, -((sa if use_a else 0.0) + (sb if use_b else 0.0)))
-        out[k] = -sa / den if use_a else 0.0
-        out[k + 1] = -sb / den if use_b else 0.0
+        wa = -sa / den if use_a else 0.0
+        wb = -sb / den if use_b else 0.0
+        out[k] = wa
+        out[k + 1] = wb
+        _cap_stored(out, k, k + 2, wa + wb)
         return 0
     out[k] = 1.0
     out[k + 1] = 0.0
@@ -67,6 +94,7 @@ def _centre(A, P, I, J, pi, pj, s, lost):
         P[5, I + 1, J + 1] = w01
         P[6, I + 1, J + 1] = w10
         P[7, I + 1, J + 1] = w11
+        _cap_stored(P[:, I + 1, J + 1], 4, 8, ((w00 + w01) + w10) + w11)
     else:
         P[4, I + 1, J + 1] = 1.0
         lost[I + 1, J + 1] |= 4

@@ -14,6 +14,10 @@ from relaxtui.kernels._jit import kernel
 
 CENTRE, EAST, SOUTH, SOUTH_EAST, SOUTH_WEST = 0, 1, 2, 3, 4
 ROW_LOST, COLUMN_LOST, ISOLATED = 1, 2, 4  # pflag bits (level 0) and lost-cell bits (coarse levels)
+# Storage type of the coarse levels' interpolation planes P: weights are computed in float64 and rounded
+# on store; every product with them (Galerkin stencils, transfers) is formed in float64. Half the bytes
+# of float64 planes (about 2.7 B per fine cell over the hierarchy).
+WEIGHT_DTYPE = np.float32
 
 
 @kernel(inline=True)

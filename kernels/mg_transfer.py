@@ -10,7 +10,7 @@ import numpy as np
 from numba import prange
 from relaxtui.kernels._jit import kernel
 from relaxtui.kernels.blocks import segment, span, wsum, wsum_of
-from relaxtui.kernels.mg_level0 import weights_row0
+from relaxtui.kernels.mg_level0 import WEIGHT_DTYPE, weights_row0
 
 
 @kernel(inline=True)
@@ -129,6 +129,7 @@ def _restrict(level0, u, cls, table, diag, row_ptr, seg_start, seg_end, seg_clas
 # Level-0 calls pass no coarse planes, coarse calls no class arrays or segments. Called from
 # Python, ``level0`` is a run-time flag: one build serves both (per class-code dtype).
 _NO_PLANES = np.zeros((9, 1, 1))
+_NO_WEIGHTS = np.zeros((8, 1, 1), dtype=WEIGHT_DTYPE)  # the coarse calls' weight type: one build serves both
 _NO_CLASSES = np.zeros((1, 1), dtype=np.uint8)
 _NO_TABLE = np.zeros((1, 5))
 _NO_INT64 = np.zeros(1, dtype=np.int64)
@@ -138,7 +139,7 @@ _NO_INT32 = np.zeros(1, dtype=np.int32)
 def restrict0(u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, ptab, pflag, fc, nblk):
     """fc (level-1 padded) = P^T (b - A u) on the coarse cells: the restricted unnormalised residual."""
     _restrict(True, u, cls, table, diag, row_ptr, seg_start, seg_end, seg_class, ptab, pflag,
-              _NO_PLANES[0], _NO_PLANES[:5], _NO_PLANES[:8], fc, nblk)
+              _NO_PLANES[0], _NO_PLANES[:5], _NO_WEIGHTS, fc, nblk)
 
 
 def restrict9(e, f, A, P, fc, nblk):

@@ -14,7 +14,7 @@ the other couplings read from neighbours by symmetry; a cell is an unknown
 iff A[0] > 0. Coarse cell (I, J) sits on fine cell (2I, 2J). The 4 non-C
 cells of block (I, J) (row cell (2I, 2J+1), column cell (2I+1, 2J), centre
 cell (2I+1, 2J+1)) interpolate with 8 weights, stored in planes
-``P[8, R + 2, C + 2]`` at [I + 1, J + 1]:
+``P[8, R + 2, C + 2]`` (``WEIGHT_DTYPE``, float32) at [I + 1, J + 1]:
 
     P[0], P[1]  row cell     -> (I, J), (I, J+1)
     P[2], P[3]  column cell  -> (I, J), (I+1, J)
@@ -43,13 +43,14 @@ from relaxtui.kernels.mg_level0 import (
     SOUTH,
     SOUTH_EAST,
     SOUTH_WEST,
+    WEIGHT_DTYPE,
     block_weights0,
 )
 from relaxtui.kernels.mg_smoother import smooth9
 from relaxtui.kernels.mg_transfer import prolong0, prolong9, restrict0, restrict9
 
 __all__ = [
-    "CENTRE", "EAST", "SOUTH", "SOUTH_EAST", "SOUTH_WEST", "ROW_LOST", "COLUMN_LOST", "ISOLATED",
+    "CENTRE", "EAST", "SOUTH", "SOUTH_EAST", "SOUTH_WEST", "WEIGHT_DTYPE", "ROW_LOST", "COLUMN_LOST", "ISOLATED",
     "band_factor", "band_order", "band_solve", "block_weights0", "copy_into", "delta_copy", "fcg_direction",
     "fcg_dots", "fcg_update", "galerkin0", "galerkin9", "interpolation9", "pcg_rz", "planes0", "prolong0",
     "prolong9", "restrict0", "restrict9", "smooth9", "zero_fill",

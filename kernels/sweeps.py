@@ -89,13 +89,6 @@ def _stencil_bulk(up, mid, dn, t, wn, ws, ww, we, q):
 
 
 @kernel(inline=True)
-def _stencil_mixed(up, mid, dn, t, crow, table):
-    for k in range(t.shape[0]):
-        c = crow[k]
-        t[k] = wsum_of(up, mid, dn, k, table, crow[k])
-
-
-@kernel(inline=True)
 def _blend_bulk(cells, t, parity, omega, mu):
     # update the cells k with (k & 1) == parity from s = t[k]
     for k in range(t.shape[0]):
@@ -103,6 +96,31 @@ def _blend_bulk(cells, t, parity, omega, mu):
         v = u + omega * (t[k] - u)
         v = v if (k & 1) == parity else u
         cells[k] = v
+        mu = max(mu, abs_bits(v - u))
+    return mu
+
+
+@kernel(inline=True)
+def _stencil_mixed(up, mid, dn, t, crow, table):
+    for k in range(t.shape[0]):
+        c = crow[k]
+        t[k] = wsum_of(up, mid, dn, k, table, crow[k])
+
+
+@kernel(inline=True)
+def _colour_bulk(up, mid, dn, half, wn, ws, ww, we, q, omega, mu):
+    """Update cells 0, 2, 4, ... (``half`` of them) of a bulk segment in place, from the stencil
+    sum; the other cells are only read. The caller offsets the segment's slices by the colour's
+    parity, so the index is 2 k from a constant 0: no wraparound check, and LLVM vectorises the
+    stride-2 loads and stores. Used for float64 fields: on the 2-core AVX2 machine (load 1-2) a
+    red-black sweep of 4096² ran at 0.64-0.71 of the Jacobi rate timed beside it, against 0.46 for
+    the stencil-then-blend form; a float32 field went the other way (733 against 1 274 Mcell/s for
+    the blend), so float32 keeps the blend."""
+    for h in range(half):
+        k = 2 * h
+        u = mid[k + 1]
+        v = u + omega * ((wsum(up, mid, dn, k, wn, ws, ww, we) + q) - u)
+        mid[k + 1] = v
         mu = max(mu, abs_bits(v - u))
     return mu
 
@@ -139,13 +157,19 @@ def _jacobi_rows(src, dst, cls, table, row_ptr, seg_start, seg_end, seg_class, o
 
 @kernel
 def _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, colour, tmp, mu):
-    """Update the cells of one colour in row i (in place): s for the whole segment into tmp, then blend."""
+    """Update the cells of one colour in row i (in place): a float64 bulk segment by a stride-2 loop
+    over that colour's cells; float32 bulk and every mixed segment by s for the whole segment into
+    tmp, then a blend. ``mid.itemsize`` is a constant of the compiled type: one branch survives."""
     up, mid, dn, crow = u[i - 1], u[i], u[i + 1], cls[i]
     for s in range(row_ptr[i], row_ptr[i + 1]):
         j0, j1, c = segment(seg_start, seg_end, seg_class, s)
-        t = tmp[: j1 - j0]
         parity = (colour + i + j0) & 1  # cell j0 + k has the colour iff (k & 1) == parity
-        if c > 0:
+        t = tmp[: j1 - j0]
+        if c > 0 and mid.itemsize == 8:
+            a = j0 + parity
+            mu = _colour_bulk(up[a:j1], mid[a - 1 : j1 + 1], dn[a:j1], (j1 - a + 1) // 2,
+                              table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4], omega, mu)
+        elif c > 0:
             _stencil_bulk(up[j0:j1], mid[j0 - 1 : j1 + 1], dn[j0:j1], t, table[c, 0], table[c, 1], table[c, 2], table[c, 3], table[c, 4])
             mu = _blend_bulk(mid[j0:j1], t, parity, omega, mu)
         else:

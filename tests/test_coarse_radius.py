@@ -166,3 +166,36 @@ def test_a_failing_background_estimate_is_reported_once_not_retried(monkeypatch)
     assert "failed (IndexError" in r["omega_note"]
     if "raised" in r["omega_note"]:  # the failure was seen mid-run (not only when the run ended)
         assert r["omega"] > 1.5 and r["sweeps"] < ones["sweeps"] / 2, (r["sweeps"], ones["sweeps"])
+
+
+def test_estimate_is_the_same_number_for_any_thread_count():
+    # The inner products are summed by rows and the rows added exactly rounded (math.fsum), so the thread
+    # count, which splits the rows among threads, cannot move the last bits (a threaded reduction's partial
+    # sums depend on the split; the strips of an MPI job rely on the same property, tests/test_mpi.py).
+    import numba
+
+    most = numba.config.NUMBA_NUM_THREADS
+    if most < 2:
+        pytest.skip("one numba thread available: nothing to compare")
+    op = Operator(irregular_case(61))
+    found = []
+    before = numba.get_num_threads()
+    try:
+        for threads in (1, most):
+            numba.set_num_threads(threads)
+            lz = CoarseLanczos(op.cls, op.table, op.diag, method_sweeps=lambda mu: 1e9)
+            lz.advance()
+            found.append((lz.mu, lz.coarse_mu, lz.steps))
+    finally:
+        numba.set_num_threads(before)
+    assert found[0] == found[1]
+
+
+def test_threshold_knob_reads_a_whole_number_from_the_environment(monkeypatch):
+    monkeypatch.setenv("RELAXTUI_COARSE_UNKNOWNS", "1234")
+    assert radius.coarse_unknowns() == 1234
+    monkeypatch.setenv("RELAXTUI_COARSE_UNKNOWNS", "many")  # not a whole number: the built-in threshold
+    assert radius.coarse_unknowns() == radius.COARSE_UNKNOWNS
+    monkeypatch.delenv("RELAXTUI_COARSE_UNKNOWNS")
+    monkeypatch.setattr(radius, "COARSE_UNKNOWNS", 7)
+    assert radius.coarse_unknowns() == 7

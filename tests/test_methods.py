@@ -300,3 +300,31 @@ def test_a_set_up_cut_by_the_time_limit_says_so(monkeypatch):
     while not run.done:
         run.step()
     assert run.status == "time-limit" and "was not ready" in run.omega_note
+
+
+
+def test_jacobi_chunks_are_even_so_no_sweep_ends_with_a_copy_back():
+    # Jacobi alternates two buffers; an odd number of sweeps in one call costs a copy of the field
+    # back into the working array (an extra pass), so the driver asks for even chunks. The field is
+    # the same either way: after 41 sweeps it is the plain-loop reference's (tests/reference.py,
+    # the contract's Jacobi update cell by cell) to rounding.
+    case = model_problem(24)
+    run = Run(case, method="jacobi", omega=1.0, tolerance=1e-12, max_sweeps=41)
+    run.prepare()
+    asked = []
+    real = run.operator.sweep
+
+    def spy(u, method, omega, sweeps, updates, residuals):
+        asked.append(sweeps)
+        return real(u, method, omega, sweeps, updates, residuals)
+
+    run.operator.sweep = spy
+    while not run.done:
+        run.step(0.05)
+    assert sum(asked) == 41 and all(n % 2 == 0 for n in asked[:-1]), asked  # the last: what is left
+    op = Operator(case)
+    v = op.view(op.new_field()).copy()
+    for _ in range(41):
+        v = reference.jacobi_sweep(case, v, 1.0)[0]
+    interior = op.cls[1:-1, 1:-1] > 0
+    assert np.allclose(op.view(run.field)[interior], v[interior], rtol=0, atol=1e-13)

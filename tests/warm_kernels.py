@@ -54,6 +54,17 @@ def main() -> int:
             with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
                 with contextlib.suppress(Exception, SystemExit):
                     cli(argv)
+        # the two-level radius estimate (large grids; tests/test_coarse_radius.py, the ranks of tests/test_mpi.py)
+        toml = GRIDS / "well-drawdown.toml"
+        if toml.exists():
+            import os
+
+            os.environ["RELAXTUI_COARSE_UNKNOWNS"] = "0"
+            argv = ["solve", str(toml), "--method", "red-black-sor", "--max-sweeps", "1", "-q",
+                    "--report", str(out / "two-level.json"), "--out", str(out / "two-level.npy")]
+            with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+                with contextlib.suppress(Exception, SystemExit):
+                    cli(argv)
     return 0
 
 

@@ -128,6 +128,7 @@ class OutputSet:
 
     def __init__(self, lock_folder: str | os.PathLike | None = None):
         self.pending: list[tuple[str, Path]] = []
+        self.digests: dict[str, str] = {}  # temporary file -> SHA-256 of its bytes, where the writer computed it
         self.lock_folder = Path(lock_folder) if lock_folder is not None else None
         self._outer = None
         self.committed = False
@@ -229,6 +230,9 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", what: str = "output"
         batch = OutputSet._current
         if batch is not None:
             batch.pending.append((tmp, target))
+            digest = getattr(handle, "sha256", None)  # set by a writer that hashed the bytes it wrote
+            if digest is not None:
+                batch.digests[tmp] = digest
         else:
             os.replace(tmp, target)
     except BaseException:
@@ -292,6 +296,74 @@ def write_npy(path, array, what: str = "field") -> Path:
     with atomic_write(path, "wb", what) as f:
         np.save(f, array, allow_pickle=False)
     return Path(path)
+
+
+NPY_STRIP_BYTES = 4 << 20  # bytes per row strip of write_field_npy (three strip buffers are alive at once)
+
+
+def write_field_npy(path, shape, fill_rows, what: str = "field", strip_bytes: int = NPY_STRIP_BYTES) -> str:
+    """Write a (rows, cols) float64 array as ``.npy`` without holding it whole; returns the file's SHA-256.
+
+    ``fill_rows(a, b, out)`` writes rows a .. b - 1 into ``out`` ((b - a, cols) float64). The file is
+    the one :func:`numpy.save` writes for that array (the version 1.0 header, then the rows, C order),
+    through :func:`atomic_write` (temporary file, then rename; inside an :class:`OutputSet` the rename
+    waits for its commit and the set learns the digest). The SHA-256 is computed in a second thread as
+    the strips are written (hashlib releases the GIL on large buffers), so stamping the report need not
+    read the file again. An exception, KeyboardInterrupt included, at any strip leaves no file.
+    """
+    import hashlib
+    import queue
+    import threading
+
+    import numpy as np
+    from numpy.lib import format as npy_format
+
+    rows, cols = (int(shape[0]), int(shape[1]))
+    step = max(1, int(strip_bytes) // max(8 * cols, 1))
+    header = io.BytesIO()
+    npy_format.write_array_header_1_0(header, {"descr": npy_format.dtype_to_descr(np.dtype(np.float64)),
+                                              "fortran_order": False, "shape": (rows, cols)})
+    h = hashlib.sha256()
+    # a strip is hashed while the next ones are filled and written: with a queue of one, the buffer
+    # filled next is never the one being hashed (three buffers in turn)
+    todo: queue.Queue = queue.Queue(maxsize=1)
+    failed: list[BaseException] = []
+
+    def hasher():
+        while True:
+            item = todo.get()
+            if item is None:
+                return
+            try:
+                h.update(item)
+            except BaseException as exc:  # pragma: no cover - hashlib on a memoryview does not raise
+                failed.append(exc)
+
+    buffers = [np.empty((min(step, rows), cols)) for _ in range(3)] if rows else []
+    thread = threading.Thread(target=hasher, name="relaxtui-sha256", daemon=True)
+    thread.start()
+    try:
+        with atomic_write(path, "wb", what) as f:
+            data = header.getvalue()
+            f.write(data)
+            todo.put(data)
+            for k, a in enumerate(range(0, rows, step)):
+                b = min(rows, a + step)
+                out = buffers[k % 3][: b - a]
+                fill_rows(a, b, out)
+                view = memoryview(out).cast("B")
+                f.write(view)
+                todo.put(view)
+            todo.put(None)
+            thread.join()
+            if failed:  # pragma: no cover
+                raise failed[0]
+            f.sha256 = h.hexdigest()
+    finally:
+        if thread.is_alive():
+            todo.put(None)
+            thread.join()
+    return f.sha256
 
 
 def write_npz(path, what: str = "bundle", **arrays) -> Path:

@@ -122,8 +122,9 @@ def _peak_inner(part, sub, keep):
     return float(mag[r, c]), float(qx[r, c]), float(qy[r, c]), r, c
 
 
-def build_report(run, field: np.ndarray) -> dict:
-    """The report of a finished :class:`relaxtui.solver.driver.Run` whose exported field is ``field``."""
+def build_report(run, field) -> dict:
+    """The report of a finished :class:`relaxtui.solver.driver.Run` whose exported field is ``field``
+    (an array, or a :class:`relaxtui.solver.outcome.FieldExport` read in row strips and cells)."""
     case = run.case
     op = run.operator
     u = run.field
@@ -158,9 +159,12 @@ def build_report(run, field: np.ndarray) -> dict:
         "source_total": _f(source_total),
         "imbalance": _f(imbalance),
     }
+    # from the working array in one pass (an operator split across MPI ranks: by strips on the ranks);
+    # else (per-cell flux coefficients) from the exported field, in row strips
     summary = getattr(op, "field_summary", None)
-    if summary is not None:  # an operator split across MPI ranks computes them by strips
-        ext, peak = summary(u)
+    found = summary(u) if summary is not None else None
+    if found is not None:
+        ext, peak = found
     else:
         ext, peak = extremes(case, field), peak_flux_in_strips(field, case)
     report.update({k: (_f(v) if k in ("min", "max") else v) for k, v in ext.items()})
@@ -182,13 +186,14 @@ def build_report(run, field: np.ndarray) -> dict:
     return report
 
 
-def stamp_outputs(report: dict, pending, paths: dict) -> dict:
+def stamp_outputs(report: dict, pending, paths: dict, digests: dict | None = None) -> dict:
     """Give ``report`` a run id and, under ``outputs``, the path and SHA-256 of each file of its set.
 
     ``pending`` holds (temporary file, target) pairs of an
     :class:`relaxtui.output.atomic.OutputSet` (the checksums are of the
     temporary files, which become the targets unchanged); ``paths`` maps each
-    output's role ("field", "history", ...) to its path or None.
+    output's role ("field", "history", ...) to its path or None; ``digests`` maps temporary files to
+    the SHA-256 their writer computed as it wrote them (those files are not read again).
     """
     import uuid
 
@@ -202,7 +207,8 @@ def stamp_outputs(report: dict, pending, paths: dict) -> dict:
             continue
         tmp = by_target.get(os.path.realpath(path))
         if tmp is not None:
-            listed[role] = {"path": str(path), "sha256": file_sha256(tmp)}
+            known = (digests or {}).get(tmp)
+            listed[role] = {"path": str(path), "sha256": known if known is not None else file_sha256(tmp)}
     report["outputs"] = listed
     return report
 

@@ -18,7 +18,7 @@ from pathlib import Path
 def write_run_outputs(result, *, out=None, report=None, history=None, picture=None, vtk=None, bundle=None,
                       scale: int = 1, isolines=None, probes=None) -> list[Path]:
     """Write the outputs of a :class:`relaxtui.solver.driver.SolveResult` as one set; returns the paths."""
-    from relaxtui.output.atomic import OutputSet, pause_for_tests, write_json, write_npy
+    from relaxtui.output.atomic import OutputSet, pause_for_tests, write_field_npy, write_json
     from relaxtui.output.report import stamp_outputs
 
     given = [p for p in (report, out, history, picture, vtk, bundle, probes) if p is not None]
@@ -26,8 +26,8 @@ def write_run_outputs(result, *, out=None, report=None, history=None, picture=No
         return []
     pause_for_tests("writing")
     with OutputSet(lock_folder=Path(given[0]).parent) as batch:
-        if out is not None:
-            write_npy(out, result.field, "field")
+        if out is not None:  # streamed from the working array in row strips (no full-size copy), hashed meanwhile
+            write_field_npy(out, result.field_shape, result.field_rows, "field")
         if history is not None:
             result.history.to_csv(history)
         if probes is not None:  # case format v1.1: the probe log
@@ -45,11 +45,11 @@ def write_run_outputs(result, *, out=None, report=None, history=None, picture=No
                 fields.write_vtk(vtk, result.field, result.case)
             if bundle:  # the bundle's own copy of the report names the files written before it
                 stamp_outputs(result.report, batch.pending, {"field": out, "history": history, "picture": picture,
-                                                             "vtk": vtk})
+                                                             "vtk": vtk}, batch.digests)
                 fields.write_bundle(bundle, field=result.field, case=result.case, history=result.history,
                                     report=result.report, probes=result.probes)
         stamp_outputs(result.report, batch.pending, {"field": out, "history": history, "picture": picture, "vtk": vtk,
-                                                     "bundle": bundle, "probes": probes})
+                                                     "bundle": bundle, "probes": probes}, batch.digests)
         if report is not None:
             write_json(report, result.report, "report")
         old_report = [report] if report is not None and os.path.lexists(report) else []

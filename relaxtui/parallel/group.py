@@ -34,7 +34,9 @@ DISTRIBUTED_METHODS = ("jacobi", "red-black-sor")  # relaxation sweeps by strips
 STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across ranks (relaxtui.parallel.multigrid)
 (SETUP, NEW_FIELD, SWEEP, RESIDUAL, FLOWS, EXPORT, LANCZOS_BEGIN, LANCZOS_ADVANCE, SCALE, SUMMARY, STOP, MG_SETUP, MG_SWEEP,
  MG_RELEASE, CELLS) = range(1, 16)
+MG_NORM = 40  # multigrid's norm of the inverse (numbered apart from the list above)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
+COARSE_BEGIN, COARSE_ADVANCE, COARSE_RELEASE = 41, 42, 43  # the two-level radius estimate (relaxtui.parallel.coarse)
 STOP_CHECK = 64  # the stop-signal agreement (relaxtui.parallel.stop), numbered apart from the commands above
 
 
@@ -513,14 +515,25 @@ class DistributedRadiusJob(RadiusJob):
         lz = self._lanczos
         if lz is not None and lz.done:
             return True
+        coarse = lz is not None and hasattr(lz, "work_left") or lz is None and self._coarse()
         if self._slice_steps > 0:
             step = self._seconds / self._slice_steps
         elif sweep_seconds is not None:
-            step = self.STEP_SWEEPS * sweep_seconds
+            if coarse:
+                from relaxtui.parallel.coarse import STEP_SWEEPS
+            else:
+                STEP_SWEEPS = self.STEP_SWEEPS
+            step = STEP_SWEEPS * sweep_seconds
         else:
             return True  # nothing timed yet: the driver's own delay decides
-        max_steps = lz.max_steps if lz is not None else _lanczos_defaults()["max_steps"]
-        left = max_steps - (lz.steps if lz is not None else 0)
+        if coarse:  # the two-level estimate: its coarse steps, their replay and the fine stage
+            from relaxtui.parallel.coarse import FINE_STEPS_PER_SMOOTHING, coarse_defaults
+
+            d = coarse_defaults()
+            left = lz.work_left() if lz is not None else 2 * d["max_steps"] + FINE_STEPS_PER_SMOOTHING * d["smoothing"]
+        else:
+            max_steps = lz.max_steps if lz is not None else _lanczos_defaults()["max_steps"]
+            left = max_steps - (lz.steps if lz is not None else 0)
         # a slice of SLICE seconds per chunk of about CHUNK_SECONDS: the estimate gets SLICE / CHUNK_SECONDS
         # of the sweeping time
         from relaxtui.solver.methods import CHUNK_SECONDS
@@ -534,12 +547,33 @@ class DistributedRadiusJob(RadiusJob):
             self._final = None  # an unsettled estimate made for SOR is redone for the slow methods
             self._lanczos = None
         if self._lanczos is None:
-            self._lanczos = DistributedLanczos(self.operator, method_sweeps)
+            self._lanczos = self._new_lanczos(method_sweeps)
         return True
+
+    def _coarse(self) -> bool:
+        """Whether this operator's estimate is the two-level one (as in one process, by its unknowns)."""
+        from relaxtui.solver.radius import coarse_unknowns
+
+        return self.operator is not None and self.operator.unknowns > coarse_unknowns()
+
+    def _new_lanczos(self, method_sweeps):
+        if self._coarse():
+            from relaxtui.parallel.coarse import DistributedCoarseLanczos
+
+            return DistributedCoarseLanczos(self.operator, method_sweeps)
+        return DistributedLanczos(self.operator, method_sweeps)
 
     def run(self, *args, **kwargs):
         self._pending = False
         return super().run(*args, **kwargs)
+
+    def discard(self) -> None:
+        """As :meth:`RadiusJob.discard`; an unfinished two-level estimate frees its arrays on every rank
+        (collective: called between commands, as the single-process solve does before its output)."""
+        lz = self._lanczos
+        super().discard()
+        if lz is not None and self._lanczos is None and hasattr(lz, "release"):
+            lz.release()
 
     def start(self, method_sweeps=None, *, redo_unsettled: bool = False, threads: int = 1) -> None:
         with self._lock:
@@ -561,11 +595,21 @@ class DistributedRadiusJob(RadiusJob):
         return self._final
 
 
+def _start_numba() -> None:
+    """Run one tiny kernel whose argument types no case changes (numba's first kernel in a process
+    imports and sets up its compiler and thread layer, about 1 s): the ranks 1..P-1 do it while
+    rank 0 reads the picture, instead of in their turn of :func:`warm_in_turn`, where rank 0 waits."""
+    from relaxtui.kernels import blocks
+
+    blocks.zero_fill(np.zeros((1, 1)), 1)
+
+
 def follow(comm, threads: int) -> int:
     """The loop of ranks 1..P-1: do what rank 0 commands until it says stop; returns the exit code."""
     from relaxtui.parallel import stop
 
     strip = None
+    _start_numba()
     while True:
         cmd = _wait_command(comm)
         code = int(cmd[0])
@@ -605,6 +649,15 @@ def follow(comm, threads: int) -> int:
             strip.lanczos_advance()
         elif code == CELLS:
             strip.cells_at(None, None)
+        elif code == COARSE_BEGIN:
+            from relaxtui.parallel.coarse import begin
+
+            begin(strip, int(cmd[1]))
+        elif code == COARSE_ADVANCE:
+            strip.coarse_radius.advance()
+        elif code == COARSE_RELEASE:
+            if strip.coarse_radius is not None:
+                strip.coarse_radius.release()
         elif code == MG_SETUP:
             try:
                 strip.multigrid_setup()
@@ -614,6 +667,8 @@ def follow(comm, threads: int) -> int:
             strip.mg.iterate(float(cmd[1]), int(cmd[2]))
         elif code == MG_RELEASE:
             strip.mg = None
+        elif code == MG_NORM:
+            strip.mg.inverse_norm(float(cmd[1]))
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 

@@ -480,6 +480,67 @@ class StripMultigrid:
                 break
         return upd, res, done
 
+    def inverse_norm(self, omega: float) -> float | None:
+        """``MultigridStepper.inverse_norm`` by strips: ``max w`` for ``(I - W) w = 1``, the same on every rank.
+
+        The single-process steps (steepest descent preconditioned by the symmetric cycle, every
+        right-hand side 1 and every fixed value 0, the iterate in CG's direction buffer), with the
+        same kernels on the same values; per step the cycle's own exchanges plus two collectives:
+        the partial sums of (z . A z, z . r) gathered and added in rank order, and one MAX
+        reduction of the step's largest change (with the iterate's largest value on the first
+        step). Every rank takes the same decisions from the same numbers, so no rank 0 broadcast
+        is needed. The CG state is dropped: the next :meth:`iterate` restarts CG from its field.
+        """
+        from relaxtui.kernels import multigrid as mg
+        from relaxtui.solver.multigrid import INVERSE_NORM_RTOL, INVERSE_NORM_STEPS
+
+        st = self.strip
+        nb = st.nblk
+        x, w = self.p, self.view
+        table = self.table
+        ones = table.copy()
+        ones[1:, 4] = 1.0  # row 0 is no unknown's class
+        self.synced, self.k, self.rz = False, 0, 0.0  # w and p are taken over
+        found = None
+        try:
+            self.table = ones  # the cycle's level-0 kernels read this table (right-hand sides in column 4)
+            mg.zero_fill(x, nb)
+            mg.copy_into(x, w, nb)
+            top = prev = None
+            for _ in range(INVERSE_NORM_STEPS):
+                self.cycle_symmetric(omega)  # w = x + B r(x)
+                mg.fcg_direction(w, x, w, 0.0, nb)  # the preconditioned residual z = w - x, in w
+                pap_l, pz_l, _ = mg.fcg_dots(x, w, st.cls, ones, self.diag, *st.segments, nb)
+                pap, pz = self._sum([pap_l, pz_l])
+                alpha = pz / pap if pap > 0.0 else 0.0  # exact line search along z
+                du_l = mg.fcg_update(x, w, alpha, w, nb)  # x += alpha z; w = x
+                if top is None:
+                    du, top = self._largest(du_l, x)
+                else:
+                    du = float(self._max_bits([du_l])[0])
+                if not math.isfinite(du):
+                    break
+                if prev is not None and du <= 0.5 * prev and du <= INVERSE_NORM_RTOL * top:
+                    _, top = self._largest(0.0, x)
+                    if math.isfinite(top) and top > 0.0:
+                        found = max(top + du, 1.0)
+                    break
+                prev = du
+        finally:
+            self.table = table
+            mg.zero_fill(self.p, nb)
+        return found
+
+    def _largest(self, du_l: float, x) -> tuple[float, float]:
+        """(largest change over the ranks, largest value of x over the ranks' own rows): one collective."""
+        MPI = mpi()
+        top = float(np.max(x[1:-1]))
+        # NaN as infinity: MAX of a NaN depends on the operands' order, and every rank must decide alike
+        mine = np.array([math.inf if math.isnan(du_l) else abs(du_l), math.inf if math.isnan(top) else top])
+        out = np.empty(2)
+        self.comm.Allreduce(mine, out, op=MPI.MAX)
+        return float(out[0]), float(out[1])
+
 
 def warm(strip, threads: int) -> None:
     """Load (or compile) every kernel of the distributed multigrid: a 24 x 24 grid of one class on this rank alone."""
@@ -557,6 +618,19 @@ class DistributedMultigrid:
         updates[:done] = upd[:done]
         residuals[:done] = res[:done]
         return done
+
+    def inverse_norm(self, omega: float | None = None) -> float | None:
+        """``||(I - W)^-1||_inf`` solved for with the distributed hierarchy (one collective command), as
+        :meth:`relaxtui.solver.multigrid.MultigridStepper.inverse_norm`; None after :meth:`release`."""
+        from relaxtui.parallel.group import MG_NORM
+        from relaxtui.solver.multigrid import DEFAULT_OMEGA
+
+        op = self.operator
+        if op.strip.mg is None or op.unknowns == 0:
+            return None
+        omega = DEFAULT_OMEGA if omega is None else float(omega)
+        with op.group.collective(MG_NORM, omega):
+            return op.strip.mg.inverse_norm(omega)
 
     def release(self) -> None:
         from relaxtui.parallel.group import MG_RELEASE

@@ -123,6 +123,8 @@ def _lead(comm, group, args, threads: int) -> int:
         signals.writing = True  # from here on a signal never aborts: the set is finished first
         group.check_stop(writing=True)  # the followers too
         display.stop()
+        if run.operator is not None:  # as in one process: an unfinished estimate frees its arrays first
+            run.operator.radius_job().discard()
         result = run.result()
         signals.note(result.report)
         written = _write_all(result, args, out, report_path, history_path)

@@ -397,6 +397,70 @@ class Operator:
         measure.export_field(self.codes, self.kind, self.value, u, out)
         return out
 
+    def export_rows(self, u, a: int, b: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Rows a .. b - 1 of :meth:`finish`'s field (into ``out``, (b - a, cols) float64, when given):
+        the exported field in strips, never whole."""
+        rows, cols = self.shape
+        if not 0 <= a <= b <= rows:
+            raise UsageError(f"rows {a}..{b} are not within the field's {rows} rows")
+        if out is None:
+            out = np.empty((b - a, cols))
+        elif out.shape != (b - a, cols) or out.dtype != np.float64 or not out.flags.c_contiguous:
+            raise UsageError(f"export rows: out must be a C-contiguous float64 array of shape {(b - a, cols)}")
+        if b > a:
+            from relaxtui.kernels import measure
+
+            measure.export_field(self.codes[a:b], self.kind, self.value, u[a : b + 2], out)
+        return out
+
+    def export_cells(self, u, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """:meth:`finish`'s values at the cells (rows, cols) (index arrays of one shape), float64."""
+        codes = self.codes[rows, cols]
+        kind = self.kind[codes]
+        inner = np.asarray(u[rows + 1, cols + 1], dtype=np.float64)
+        return np.where(kind == FIXED, self.value[codes], np.where(kind == INTERIOR, inner, np.nan))
+
+    def field_summary(self, u):
+        """The report's extremes and peak flux of :meth:`finish`'s field, read from the working array
+        by one parallel pass (``relaxtui.kernels.measure.field_summary``): ``(extremes, flux_max)``
+        with the keys of relaxtui.output.report.extremes and relaxtui.output.flux.peak_flux. None
+        for a case whose flux needs per-cell coefficients (case format v1.1 contacts, orthotropy,
+        maps, axisymmetry): the report then reads the export in strips."""
+        self._check_field(u)
+        if getattr(self.case, "per_face_physics", False):
+            return None
+        from relaxtui.kernels import measure
+        from relaxtui.output.report import cell_position
+
+        rows = self.shape[0]
+        fixed = self.kind == FIXED
+        cond = np.where(self.kind == INTERIOR, self.conductivity,
+                        np.where(fixed & (self.fixed_conductivity > 0.0), self.fixed_conductivity, np.nan))
+        inherit = (fixed & ~(self.fixed_conductivity > 0.0)).astype(np.uint8)
+        nblk = max(1, min(FLOW_BLOCKS, rows))
+        blocks = measure.field_summary(self.codes, self.kind, self.value, cond, inherit, u, float(self.case.cell_size), nblk)
+        low = high = peak = None
+        for row in blocks:  # in row order, strictly better only: the first cell in row-major order wins a tie
+            if row[0]:
+                if low is None or row[1] < low[0]:
+                    low = (float(row[1]), int(row[2]), int(row[3]))
+                if high is None or row[4] > high[0]:
+                    high = (float(row[4]), int(row[5]), int(row[6]))
+            if row[7] >= 0.0 and (peak is None or row[7] > peak[0]):
+                peak = (float(row[7]), float(row[8]), float(row[9]), int(row[10]), int(row[11]))
+        if low is None:
+            ext = {"min": None, "max": None, "min_at": None, "max_at": None}
+        else:
+            ext = {"min": low[0], "max": high[0], "min_at": cell_position(self.case, low[1], low[2]),
+                   "max_at": cell_position(self.case, high[1], high[2])}
+        if peak is None:
+            flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
+        else:
+            value, qx, qy, row, col = peak
+            at = cell_position(self.case, row, col)
+            flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
+        return ext, flux
+
     def jacobi_apply(self, x, out) -> None:
         """out = J x for the homogeneous Jacobi iteration matrix J = D^-1 (D - A), in the working layout.
 

@@ -32,9 +32,17 @@ of the time:
 
 The result errs low like the fine Lanczos estimate, and the driver corrects it
 from the factor SOR shows in the same way.
+
+Every inner product is summed by rows (each row in column order, in the
+kernels) and the row sums are added in one exactly rounded sum
+(:func:`row_sum`, ``math.fsum``): the estimate is the same number for any
+count of numba threads, and the strips of an MPI job
+(:mod:`relaxtui.parallel.coarse`) reproduce it bit for bit.
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -42,6 +50,11 @@ from relaxtui.solver.young import sor_sweeps as _sor_sweeps
 
 SMOOTHING_SWEEPS = 16  # red-black Gauss-Seidel sweeps on the prolonged Ritz vector (tests/test_coarse_radius.py)
 BYTES_PER_CELL = 9  # the peak of stages 1-3 per fine cell: coarse operator 4, two Lanczos vectors 4, Ritz vector 1
+
+
+def row_sum(rows: np.ndarray) -> float:
+    """The exactly rounded sum of per-row partial sums (math.fsum: independent of their order)."""
+    return math.fsum(rows.tolist())
 
 
 def coarse_shape(rows: int, cols: int) -> tuple[int, int]:
@@ -89,7 +102,9 @@ class CoarseLanczos:
         self.sb = np.zeros(shape, dtype=np.float32)
         coarse.block_couplings(cls, table, diag, self.sq, self.cb, self.eb, self.sb)
         self.v = np.zeros(shape)
-        self._norm = coarse.start_vector(self.sq, self.v)
+        self._rows = np.zeros(shape[0])  # per-row partial sums of the inner products
+        coarse.start_vector(self.sq, self.v, self._rows)
+        self._norm = math.sqrt(row_sum(self._rows[1:-1]))
         self.stage = "coarse"
         if self._norm == 0.0:
             self.rule.settled = self.rule.done = True
@@ -133,9 +148,11 @@ class CoarseLanczos:
     def _step(self):
         """One Lanczos step on the coarse operator, two vectors (``v``, and ``w`` holding the previous
         one): afterwards w is the next vector, unnormalised. Returns (alpha, beta)."""
-        k = self._k
-        alpha = k.apply_step(self.v, self.w, self.beta, self.cb, self.eb, self.sb)
-        return alpha, k.subtract_scaled(self.w, alpha, self.v)
+        k, rows = self._k, self._rows
+        k.apply_step(self.v, self.w, self.beta, self.cb, self.eb, self.sb, rows)
+        alpha = row_sum(rows[1:-1])
+        k.subtract_scaled(self.w, alpha, self.v, rows)
+        return alpha, math.sqrt(row_sum(rows[1:-1]))
 
     def _shift(self, beta_new: float) -> None:
         self.beta = beta_new
@@ -155,7 +172,7 @@ class CoarseLanczos:
         self.coarse_mu = float(values[-1])
         self._ritz = np.ascontiguousarray(vectors[:, -1])
         self.w.fill(0.0)
-        k.start_vector(self.sq, self.v)
+        k.start_vector(self.sq, self.v, self._rows)
         self._scale(self.v, 1.0 / self._norm, self.v)
         self.beta = 0.0
         self.y = np.zeros(self.v.shape, dtype=np.float32)  # rounding it is harmless (see the module docstring)
@@ -168,13 +185,15 @@ class CoarseLanczos:
         self.v = self.w = None
         self.cb = self.eb = self.sb = None  # the coarse operator is not needed any more
         x = np.empty(self.cls.shape, dtype=np.float32)
-        k.prolong(y, sq, self.cls, x)
+        k.prolong(y, sq, self.cls, x, 0, 0, x.shape[0])
         self.y = self.sq = y = sq = None
         for _ in range(self.smoothing):
             k.smooth_colour(x, self.cls, self.table, 0)
             k.smooth_colour(x, self.cls, self.table, 1)
-        num, den = k.rayleigh(x, self.cls, self.table, self.diag)
+        num_rows, den_rows = np.zeros(x.shape[0]), np.zeros(x.shape[0])
+        k.rayleigh(x, self.cls, self.table, self.diag, num_rows, den_rows)
         del x
+        num, den = row_sum(num_rows[1:-1]), row_sum(den_rows[1:-1])
         quotient = num / den if den > 0.0 else 0.0
         # both are lower bounds of the fine radius (Rayleigh quotients): the larger is the better
         self.fine_mu = min(max(quotient, self.rule.mu, 0.0), 1.0 - 1e-16)

@@ -26,7 +26,8 @@ strictly less where a cell leaks to a fixed or convection face), so
 ones): the expected number of random-walk steps before a walker leaves the
 domain. It is computed exactly (banded Cholesky of the symmetric unnormalised
 form, the multigrid kernels' own) on grids where that is cheap, solved for to
-about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``),
+about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``; under MPI
+the same steps by strips, ``relaxtui.parallel.multigrid.StripMultigrid.inverse_norm``),
 and estimated from the Jacobi spectral radius μ elsewhere (``1/(1 - μ)`` is the D-norm of
 the inverse; times a safety factor for the infinity norm).
 """

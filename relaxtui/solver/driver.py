@@ -26,7 +26,7 @@ from relaxtui.errors import UsageError
 from relaxtui.solver import conditioning, stopping
 from relaxtui.solver.history import History, _num  # noqa: F401 - re-exported
 from relaxtui.solver.methods import CHUNK_SECONDS, MAX_CHUNK, get_method  # noqa: F401 - CHUNK_SECONDS re-exported
-from relaxtui.solver.outcome import Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
+from relaxtui.solver.outcome import FieldExport, Progress, SolveResult, check_outputs, write_outputs  # noqa: F401 - re-exported
 
 MAX_CHUNK_UNSETTLED = 64  # most sweeps in one chunk while the rule has no estimate yet
 MAX_OMEGA_CORRECTIONS = 6  # re-estimates of auto omega from the observed factor per run
@@ -482,8 +482,9 @@ class Run:
         return self.progress
 
     def _chunk_size(self) -> int:
+        multiple = getattr(self._stepper, "chunk_multiple", 1)
         if self._sweep_seconds is None:
-            n = 1
+            n = multiple  # the first chunk times a sweep: as short as it can be
         else:
             n = int(CHUNK_SECONDS / max(self._sweep_seconds, 1e-9))
         d = self.rule.last
@@ -493,7 +494,8 @@ class Run:
             cap = int(min(MAX_CHUNK, max(4, d.eta_sweeps / 2)))
         remaining = self.max_sweeps - self.rule.sweeps
         # a stepper whose every step gains a lot (a multigrid cycle) may cap its chunks
-        return max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
+        n = max(1, min(n, cap, int(0.25 * self.rule.sweeps) + 16, remaining, self._stepper.max_chunk))
+        return n - n % multiple if n >= multiple else n
 
     def _near_floor(self, update: float) -> bool:
         """Whether an update is within NEAR_FLOOR_ULPS roundings of the field (its type's epsilon) of nothing."""
@@ -612,7 +614,14 @@ class Run:
             self.progress = self._progress()
         from relaxtui.output.report import build_report
 
-        field = self.operator.finish(self._u)
+        if hasattr(self.operator, "export_rows"):
+            # the exported field is made only if a caller asks for it: the report reads the working
+            # array, the .npy is written from it in strips (no second full-size array)
+            export = FieldExport(self.operator, self._u)
+            report = build_report(self, export)
+            return SolveResult(report=report, history=self.history.copy(), case=self.case, probes=self.probe_log,
+                               export=export)
+        field = self.operator.finish(self._u)  # an operator split across MPI ranks gathers it
         report = build_report(self, field)
         return SolveResult(field=field, report=report, history=self.history.copy(), case=self.case, probes=self.probe_log)
 

@@ -35,10 +35,12 @@ phases (the largest counts)
                                         is final, and ``relaxtui solve`` drops an
                                         unfinished one before its output (a screen
                                         session keeps it, paused, for its next run)
-  output                8               the exported field built for the report
-                                        (the sweep buffers are released before it)
+  output                8               the exported field, when a picture, VTK file or
+                                        bundle needs it whole (the report and the .npy
+                                        read the working array in strips and need
+                                        none; the sweep buffers are released first)
   method's own          ``Method.bytes_per_cell``: the peak of what the
-                                        method builds (multigrid 41: coarse levels
+                                        method builds (multigrid 38: coarse levels
                                         and CG vectors, held through the iterations)
   decoded picture       16              while the PNG is decoded in row strips (RSS,
                                         Pillow's buffers included); 44 for a picture
@@ -57,9 +59,10 @@ red-black SOR and Jacobi 42.5 B/cell (estimate 45), reached while the RGB
 picture is decoded whole; multigrid 51.3 (estimate 58; 79.0 before its
 certificate's norm of the inverse came from its own hierarchy instead of a
 Lanczos estimate, and before its coarse levels dropped their planes of
-inverses). Peak RSS of a multigrid solve to 1e-4 of the model problem
-(benchmarks/scale.py, load 1.6-2.3): 49.1 B/cell at 4097 x 4097, 50.0 at
-16 385 x 16 385 (estimate 58).
+inverses). Peak RSS of a multigrid solve to 1e-4 of the model problem, report and .npy
+written (benchmarks/scale.py, load 1.9-2.4): 46.4 B/cell at 4097 x 4097, 47.1
+at 8193 x 8193, 47.3 at 16 385 x 16 385 (estimate 55; 49.1 / 50.0 before the
+float32 interpolation weights).
 Peak RSS (benchmarks/footprint.py, model problem 4097 x 4097 cells, one
 material, auto omega, 1000 sweeps with the two-level radius estimate beside
 them, report and field written; (peak - 200 MiB) / cells, load 1-2.5):

@@ -75,7 +75,7 @@ def bulk_table9(previous: np.ndarray) -> np.ndarray:
     for t in np.flatnonzero(previous[:, 0] > 0.0):
         A = np.zeros((5, n + 2, n + 2))
         A[:, 1:-1, 1:-1] = previous[t][:, None, None]
-        P = np.zeros((8, rc + 2, rc + 2))
+        P = np.zeros((8, rc + 2, rc + 2), dtype=mg.WEIGHT_DTYPE)  # as the levels' own planes: identical stencils
         mg.interpolation9(A, P, np.zeros((rc + 2, rc + 2), dtype=np.uint8), 1)
         Ac = np.zeros((5, rc + 2, rc + 2))
         mg.galerkin9(A, P, np.zeros((n + 2, n + 2), dtype=np.uint32), np.zeros_like(table), Ac,

@@ -54,7 +54,8 @@ def _nblk(cells: int, rows: int) -> int:
 class Level:
     """A coarse level: stencil planes A (5, R + 2, C + 2), correction e, right-hand side f (the smoother
     divides by the centre plane: no plane of inverses),
-    and (unless coarsest) interpolation planes P (8, Rc + 2, Cc + 2) to the next level."""
+    and (unless coarsest) interpolation planes P (8, Rc + 2, Cc + 2) to the next level, stored in
+    ``relaxtui.kernels.multigrid.WEIGHT_DTYPE`` (float32; every product with them is float64)."""
 
     def __init__(self, A: np.ndarray):
         self.A = A
@@ -112,7 +113,7 @@ class Hierarchy:
                 if L.unknowns <= coarsest or L.shape == (1, 1):
                     break
                 rc, cc = _coarse_shape(L.shape)
-                P = np.zeros((8, rc + 2, cc + 2))
+                P = np.zeros((8, rc + 2, cc + 2), dtype=mg.WEIGHT_DTYPE)  # float32: stencils stay float64
                 lost = np.zeros((rc + 2, cc + 2), dtype=np.uint8)
                 mg.interpolation9(L.A, P, lost, L.nblk)
                 table = bulk_table9(table) if bulk else table

@@ -170,6 +170,15 @@ COARSE_UNKNOWNS = BACKGROUND_UNKNOWNS
 CACHE_VERSION = 1
 
 
+def coarse_unknowns() -> int:
+    """Above this many unknowns the two-level estimate is used: :data:`COARSE_UNKNOWNS`, or the whole number in
+    ``RELAXTUI_COARSE_UNKNOWNS`` (the tests take the two-level path on small grids with it, also under mpiexec)."""
+    import os
+
+    text = os.environ.get("RELAXTUI_COARSE_UNKNOWNS", "")
+    return int(text) if text.strip().isdigit() else COARSE_UNKNOWNS
+
+
 @dataclass(frozen=True)
 class RadiusState:
     """What the estimate is doing, for a progress line (safe to hand to another thread)."""
@@ -254,7 +263,7 @@ class RadiusJob:
             self._lanczos = None
         if self._lanczos is None:
             op = self.operator
-            if op.unknowns > COARSE_UNKNOWNS:
+            if op.unknowns > coarse_unknowns():
                 from relaxtui.solver.coarse import CoarseLanczos
 
                 self._lanczos = CoarseLanczos(op.cls, op.table, op.diag, method_sweeps=method_sweeps)
