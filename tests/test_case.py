@@ -634,7 +634,7 @@ def test_memory_model_constants():
     # largest phase: the decode (45 B per cell for a picture decoded whole, 17 in strips), the sweeps
     # (sweep buffers, Jacobi 8 B padded, and for methods that use the Jacobi radius its estimate:
     # fine Lanczos vectors 24 B padded on small pictures, the two-level estimate 9 B padded above
-    # radius.COARSE_UNKNOWNS cells), the output copy 8 B, or multigrid's levels and CG vectors 41 B; 200 MiB fixed.
+    # radius.COARSE_UNKNOWNS cells), the output copy 8 B, or multigrid's levels and CG vectors 38 B (float32 interpolation weights); 200 MiB fixed.
     # (tests/test_memory.py checks it against measured peaks.)
     from relaxtui.solver.radius import COARSE_UNKNOWNS
 
@@ -645,7 +645,7 @@ def test_memory_model_constants():
     assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + max(45 * cells, resident + 24 * padded)
     assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + resident + 32 * padded
     assert memory.estimate_solve_bytes(rows, cols, "sor", 300) == fixed + resident + padded + 24 * padded
-    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 41 * cells
+    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 38 * cells
     rows, cols = 3000, 2000  # an estimate only: nothing is allocated
     padded, cells = 3002 * 2002, 6_000_000
     assert cells > COARSE_UNKNOWNS
@@ -653,7 +653,7 @@ def test_memory_model_constants():
     assert memory.estimate_solve_bytes(rows, cols, "red-black-sor", 3) == fixed + resident + 9 * padded
     assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3) == fixed + resident + 17 * padded
     assert memory.estimate_solve_bytes(rows, cols, "jacobi", 3, fine_radius=True) == fixed + resident + 32 * padded
-    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 41 * cells
+    assert memory.estimate_solve_bytes(rows, cols, "multigrid", 3) == fixed + resident + 38 * cells
 
 
 def test_available_bytes_is_sane(monkeypatch):

@@ -12,7 +12,9 @@ What is checked, and against what:
 - User errors and refused methods end every rank with the one-line message
   and exit code 2 (no hang, no traceback, no output files); an exception on
   one rank aborts the whole job (the guard); SIGTERM under mpiexec writes the
-  current field with status "cancelled" and exit code 130.
+  current field with status "cancelled" and exit code 130, also when it arrives
+  during the set-up (ranks paused at exact moments, RELAXTUI_TEST_PAUSE_AT, as
+  in tests/test_signals.py) or reaches one rank only.
 
 The launches use a clean environment (no launcher variables of an enclosing
 job, one numba thread per rank, the caller's numba cache directory shared by
@@ -438,7 +440,7 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
     # The residual certificate's ||(I - W)^-1||_inf = max w for (I - W) w = 1 (relaxtui.solver.conditioning;
     # an M-matrix's inverse is non-negative, common practice) is solved for with the distributed hierarchy,
     # by the single-process steps on the same values: the single-process MultigridStepper.inverse_norm to
-    # 1e-7 (inner products added in another order, its weights float32), and scipy's spsolve on tests/exact.py's matrix
+    # 1e-7 (inner products added in another order), and scipy's spsolve on tests/exact.py's matrix
     # within the method's 1 % (INVERSE_NORM_RTOL, the last step added on top: an upper estimate). The CG
     # iteration it interrupted restarts and still reaches the spsolve solution. 2 ranks: the electrodes
     # demo with levels 0-2 split; 3 ranks: the masked case (uneven strips, every boundary kind).
@@ -461,8 +463,8 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
     assert got["how"] == "solved for with the multigrid hierarchy" and got["status"] == "converged"
     loaded = load_case(case)
     one = MultigridStepper(Operator(loaded)).inverse_norm()
-    # rel 1e-7, not rounding: one process stores its coarse interpolation weights in float32, the
-    # ranks keep float64 ones (the same steps; the solve's 1 % tolerance dwarfs either)
+    # rel 1e-7: the same steps on the same float32 interpolation weights, inner products added in
+    # another order (the solve's own 1 % tolerance dwarfs that)
     assert one is not None and got["norm"] == pytest.approx(one, rel=1e-7)
     matrix, _, _ = assemble(loaded)
     want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
@@ -705,8 +707,12 @@ class PausedJob:
         self._wait(lambda: all(_pending(self.pids[r], sig) for r in stopped), "the forwarded signal")
 
     def cont(self, *ranks: int) -> None:
+        """Continue the ranks and wait until they have taken their pending stop signals (so that a
+        later signal cannot merge with one not yet delivered)."""
         for r in ranks:
             os.kill(self.pids[r], signal.SIGCONT)
+        sigs = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
+        self._wait(lambda: not any(_pending(self.pids[r], s) for r in ranks for s in sigs), "the signals to be taken")
 
     def finish(self) -> tuple[int, str, str]:
         try:
@@ -792,3 +798,22 @@ def test_a_signal_after_the_run_converged_keeps_its_status_and_exit_code(tmp_pat
     assert code == 0, err
     _, report, _ = read(tmp_path, "late")
     assert report["status"] == "converged" and "stopped by" not in report["message"]
+
+
+@needs_mpi
+def test_a_second_signal_before_the_writing_stops_the_job_without_writing(tmp_path):
+    # As in one process (tests/test_signals.py): the first SIGTERM ends the run, a second one before
+    # the writing has begun stops at once, nothing is written, exit code 130, the CLI's one line.
+    case = masked_case(tmp_path)
+    job = PausedJob(2, ["solve", case, "--method", "jacobi", "--tolerance", "1e-13", "-q", *outputs("two")], tmp_path,
+                    "solving,solved")
+    job.wait_stopped(0)
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    job.wait_stopped(0)  # the run has ended, nothing is written yet
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    code, _, err = job.finish()
+    assert code == 130, err
+    assert err.strip() == "relaxtui solve: interrupted", err
+    assert not [p.name for p in tmp_path.iterdir() if p.name.startswith("two.")]

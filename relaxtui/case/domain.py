@@ -102,6 +102,21 @@ def label_groups(interior: np.ndarray, runs=None) -> tuple[np.ndarray, np.ndarra
     return starts, ends, group.reshape(-1)
 
 
+def _floating_runs(starts, ends, stride, touched) -> tuple[int, int, tuple[int, int]]:
+    """:func:`floating_groups` from the runs and their ``touched`` flags (:func:`anchored_runs`)."""
+    starts, ends, group = label_groups(None, (starts, ends, stride))
+    ok = np.zeros(int(group.max()) + 1, dtype=bool)
+    ok[group[touched]] = True
+    bad = np.flatnonzero(~ok)
+    if not bad.size:
+        return 0, 0, (-1, -1)
+    g = int(bad[0])
+    mine = group == g
+    size = int((ends[mine] - starts[mine]).sum())
+    first = int(starts[np.argmax(mine)])
+    return int(bad.size), size, (first // stride, first % stride - 1)
+
+
 def floating_groups(interior: np.ndarray, touch: np.ndarray) -> tuple[int, int, tuple[int, int]]:
     """Groups of interior cells with no cell in ``touch``.
 
@@ -158,13 +173,49 @@ def check_anchored(codes: np.ndarray, kinds: np.ndarray, label: str) -> None:
     _check(codes, np.asarray(kinds, np.int8), label, need_interior=False)
 
 
+STRIP_CELLS = 1 << 20  # cells per row strip of the check's temporaries (the picture is never copied whole)
+
+
+def anchored_runs(codes: np.ndarray, kinds: np.ndarray, strip_cells: int | None = None):
+    """The horizontal runs of interior cells (as :func:`interior_runs`) and, per run, whether one of
+    its cells has a face on a fixed or convection cell: ``(starts, ends, stride, touched)``.
+
+    Computed in row strips (with one halo row each side) of about ``strip_cells`` cells, so the
+    temporaries are a strip's, not the picture's; the runs come out in raster order.
+    """
+    h, w = codes.shape
+    stride = w + 2
+    step = max(1, (STRIP_CELLS if strip_cells is None else int(strip_cells)) // max(w, 1))
+    parts_s, parts_e, parts_t = [], [], []
+    for a in range(0, h, step):
+        b = min(h, a + step)
+        lo, hi = max(0, a - 1), min(h, b + 1)
+        interior, touch = anchored_interior(kinds[codes[lo:hi]])
+        interior, touch = interior[a - lo : b - lo], touch[a - lo : b - lo]
+        starts, ends, _ = interior_runs(interior)
+        padded = np.zeros((b - a, stride), dtype=bool)
+        padded[:, 1:-1] = touch
+        total = np.zeros(padded.size + 1, dtype=np.int64)
+        np.cumsum(padded.reshape(-1), out=total[1:])
+        parts_t.append(total[ends] > total[starts])  # a touching cell within [start, end)
+        parts_s.append(starts + a * stride)
+        parts_e.append(ends + a * stride)
+    if not parts_s:
+        empty = np.zeros(0, dtype=np.int64)
+        return empty, empty, stride, np.zeros(0, dtype=bool)
+    return np.concatenate(parts_s), np.concatenate(parts_e), stride, np.concatenate(parts_t)
+
+
 def _check(codes: np.ndarray, kinds: np.ndarray, label: str, need_interior: bool) -> None:
-    interior, touch = anchored_interior(kinds[codes])
-    if not interior.any():
+    starts, ends, stride, touched = anchored_runs(codes, kinds)
+    if not starts.size:
         if not need_interior:
             return
         raise CaseError(f"{label}: no interior cells: no pixel belongs to a region of kind 'interior', so there is nothing to solve for")
-    nbad, size, (r, c) = floating_groups(interior, touch)
+    if starts.size <= RUN_GRAPH_LIMIT:
+        nbad, size, (r, c) = _floating_runs(starts, ends, stride, touched)
+    else:  # a noise-like picture: the compiled labelling kernel on the whole mask
+        nbad, size, (r, c) = floating_groups(*anchored_interior(kinds[codes]))
     if nbad:
         more = f"; {nbad - 1} more such groups" if nbad > 1 else ""
         raise CaseError(

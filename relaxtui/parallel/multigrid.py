@@ -105,7 +105,7 @@ def _next_level(A, tag, table, bulk: bool, nblk_of):
     from relaxtui.solver.mgtables import bulk_table9
 
     rc, cc = _up(A.shape[1] - 2), _up(A.shape[2] - 2)
-    P = np.zeros((8, rc + 2, cc + 2))
+    P = np.zeros((8, rc + 2, cc + 2), dtype=mg.WEIGHT_DTYPE)  # as one process: float32 weights, float64 stencils
     mg.interpolation9(A, P, np.zeros((rc + 2, cc + 2), dtype=np.uint8), nblk_of(A.shape[1] - 2, A.shape[2] - 2))
     table = bulk_table9(table) if bulk else table
     Ac = np.zeros((5, rc + 2, cc + 2))
