@@ -9,7 +9,7 @@ Rows (sizes: full / ``--quick``):
   true max error of 1e-4 (benchmarks/multigrid.py's calibration: pyamg's best case); 2047² / 511².
 - multigrid set-up against its cycles: 511², 1023², 2047², 4095², 8191², 16 383² / 511², 1023²
   (the report's set-up seconds against its iteration seconds); peak memory per cell (peak RSS of
-  the child from wait4, report and .npy written): 4095², 8191² and 16 383² (with its wall time
+  the child, started from a small launcher (common.LAUNCHER), report and .npy written): 4095², 8191² and 16 383² (with its wall time
   against 120 s; about 13 GB: run it under the machine's heavy-run lock) / 1023².
 - the 16 383² picture: load (decode, colour match, domain check) in a child, seconds and peak
   bytes per pixel; / 4095² with ``--quick``.
@@ -73,23 +73,24 @@ def model_picture(folder: Path, n: int) -> Path:
 
 
 def solve_child(toml: Path, method: str, work: Path, *, tolerance=None, sweeps=None) -> dict:
-    """``relaxtui solve`` in a child: wall seconds, peak RSS (wait4) and the report it wrote."""
+    """``relaxtui solve`` in a child of a small launcher: its wall seconds, peak RSS and the report it wrote."""
     from startup import relaxtui_exe
 
     cmd = [relaxtui_exe(), "solve", str(toml), "--method", method, "--quiet", "--out", str(work / "f.npy"),
            "--report", str(work / "r.json"), "--history", str(work / "h.csv")]
     cmd += ["--tolerance", str(tolerance)] if tolerance is not None else []
     cmd += ["--max-sweeps", str(sweeps)] if sweeps is not None else []
+    side = work / "child.json"
+    side.unlink(missing_ok=True)
     t = time.perf_counter()
-    proc = subprocess.Popen(cmd, env=common.child_env(), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=work)
-    _, status, usage = os.wait4(proc.pid, 0)
+    proc = subprocess.run(common.from_small_parent(cmd, side), env=common.child_env(), stdout=subprocess.DEVNULL,
+                          stderr=subprocess.PIPE, cwd=work)
     wall = time.perf_counter() - t
-    err = proc.stderr.read().decode(errors="replace")
-    proc.stderr.close()
-    code = os.waitstatus_to_exitcode(status)
-    if code not in (0, 1):
-        return {"error": f"exit {code}: {err.strip()[-300:]}", "wall": wall}
-    return {"wall": wall, "peak": usage.ru_maxrss * 1024, "report": json.loads((work / "r.json").read_text())}
+    err = proc.stderr.decode(errors="replace")
+    if proc.returncode not in (0, 1) or not side.exists():
+        return {"error": f"exit {proc.returncode}: {err.strip()[-300:]}", "wall": wall}
+    child = json.loads(side.read_text())  # the command's own wall time and peak (not the launcher's)
+    return {"wall": child["wall"], "peak": child["maxrss"], "report": json.loads((work / "r.json").read_text())}
 
 
 LOAD_SCRIPT = r"""
@@ -149,7 +150,8 @@ def setup_rows(folder: Path, n: int, wall_target: float | None = None, memory: b
 def picture_rows(folder: Path, n: int) -> list[dict]:
     toml = model_picture(folder, n)
     size = (folder / f"model{n}.png").stat().st_size
-    r = common.run_json([sys.executable, "-c", LOAD_SCRIPT, str(toml)], env=common.child_env(), timeout=900)
+    r = common.run_json(common.from_small_parent([sys.executable, "-c", LOAD_SCRIPT, str(toml)], folder / "load.json"),
+                        env=common.child_env(), timeout=900)
     if "error" in r:
         return [row(f"picture {n + 2}² load", "error", "", r["error"])]
     return [row(f"picture {n + 2}² load", round(r["seconds"], 1), "s",
