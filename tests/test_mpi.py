@@ -817,3 +817,30 @@ def test_a_second_signal_before_the_writing_stops_the_job_without_writing(tmp_pa
     assert code == 130, err
     assert err.strip() == "relaxtui solve: interrupted", err
     assert not [p.name for p in tmp_path.iterdir() if p.name.startswith("two.")]
+
+
+def test_kernel_loading_refuses_to_compile_but_loads_from_the_cache(tmp_path):
+    # The ranks 1..P-1 load the kernels beside rank 0 only from numba's disk cache (relaxtui.parallel.group
+    # .warm_in_turn): a kernel missing from the cache raises instead of compiling a second time. Checked on
+    # a cache=True function of a module of its own: missing -> refused (and compilable afterwards); once a
+    # second process has compiled it into the cache -> loaded. numba's documented behaviour (its event API:
+    # "numba:compile" is announced only when a function is compiled, from numba's documentation).
+    from relaxtui.parallel.group import _load_only, _WouldCompile
+
+    (tmp_path / "cached_add.py").write_text("from numba import njit\n\n@njit(cache=True)\ndef add_one(x):\n"
+                                            "    return x + 1\n")
+    probe = ("import sys\nsys.path.insert(0, sys.argv[1])\nfrom relaxtui.parallel.group import _load_only, _WouldCompile\n"
+             "import cached_add\ntry:\n    with _load_only():\n        print('loaded', cached_add.add_one(1))\n"
+             "except _WouldCompile:\n    print('refused', cached_add.add_one(1))\n")
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "cache")}
+    runs = [subprocess.run([sys.executable, "-c", probe, str(tmp_path)], env=env, capture_output=True, text=True,
+                           timeout=120) for _ in range(2)]
+    assert [r.stdout.split() for r in runs] == [["refused", "2"], ["loaded", "2"]], [r.stderr for r in runs]
+    with pytest.raises(_WouldCompile):  # in this process too: a fresh function is not in any cache
+        sys.path.insert(0, str(tmp_path))
+        try:
+            import cached_add
+        finally:
+            sys.path.remove(str(tmp_path))
+        with _load_only():
+            cached_add.add_one(1)

@@ -18,6 +18,7 @@ from __future__ import annotations
 import os
 import sys
 import time
+from contextlib import contextmanager
 
 _MPI = None
 
@@ -146,3 +147,30 @@ def set_threads(comm) -> int:
     threads = max(1, min(numba.config.NUMBA_NUM_THREADS, cores // max(1, local_ranks(comm))))
     numba.set_num_threads(threads)
     return threads
+
+
+@contextmanager
+def alone():
+    """While held: this rank's numba kernels may use every thread of numba's pool.
+
+    For phases that rank 0 runs alone while the other ranks of its machine sleep in a
+    :func:`quiet_wait` (loading the case, assembling the whole operator once, writing the
+    outputs): :func:`set_threads` gave each rank its share of the cores, but the sleeping ranks
+    leave theirs idle. The pool numba launched holds ``numba.config.NUMBA_NUM_THREADS`` threads
+    (the machine's cores unless ``NUMBA_NUM_THREADS`` is set; at most the cores this process may run
+    on are used); a user's ``NUMBA_NUM_THREADS`` is
+    kept as it is (the pool is then that size and every phase keeps the thread count the user
+    chose). The rank's thread count is restored on exit."""
+    import numba
+
+    before = numba.get_num_threads()
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    pool = min(int(numba.config.NUMBA_NUM_THREADS), cores)
+    wide = before if os.environ.get("NUMBA_NUM_THREADS") else max(before, pool)
+    if wide != before:
+        numba.set_num_threads(wide)
+    try:
+        yield wide
+    finally:
+        if wide != before:
+            numba.set_num_threads(before)

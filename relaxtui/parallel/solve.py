@@ -83,7 +83,10 @@ def _lead(comm, group, args, threads: int) -> int:
     from relaxtui.output.atomic import pause_for_tests
     from relaxtui.solver.driver import Run, check_outputs
 
-    case = load_case(args.case, method=args.method, precision=getattr(args, "precision", None))
+    from relaxtui.parallel.comm import alone
+
+    with alone():  # the other ranks sleep meanwhile (reading the picture, the case's checks)
+        case = load_case(args.case, method=args.method, precision=getattr(args, "precision", None))
     out, report_path, history_path = _default_outputs(args, case)
     check_outputs(field=out, report=report_path, history=history_path, picture=args.picture, vtk=args.vtk, bundle=args.bundle)
     initial = None
@@ -127,7 +130,8 @@ def _lead(comm, group, args, threads: int) -> int:
             run.operator.radius_job().discard()
         result = run.result()
         signals.note(result.report)
-        written = _write_all(result, args, out, report_path, history_path)
+        with alone():  # the field is gathered: the other ranks sleep until the outputs are written
+            written = _write_all(result, args, out, report_path, history_path)
     code = exit_code(result.report["status"])
     group.stop(code)
     if not args.quiet:
