@@ -22,6 +22,59 @@ import types
 # starts its threads; a user's own setting wins.
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
+import sys  # noqa: E402
+import threading  # noqa: E402
+
+
+class _HiddenScipy:
+    """A meta-path finder that makes scipy unimportable for one thread, while numba starts up.
+
+    numba imports scipy twice as it starts: ``import scipy`` for a version check when ``numba`` is
+    imported, and ``scipy.linalg.cython_blas`` when its array-math registry loads (before the
+    first kernel is compiled or loaded from the cache), only to learn that BLAS is there. No
+    relaxtui kernel calls BLAS, and those imports took 0.11-0.19 s of every solve (measured with
+    ``python -X importtime`` and a profile of a 2047² multigrid solve, load about 2). Hidden
+    from numba's start-up, scipy is imported later by whoever needs it (numba's own ``np.dot``
+    and friends import it when they are compiled); other threads never see it hidden.
+    """
+
+    def __init__(self):
+        self.thread = threading.get_ident()
+
+    def find_spec(self, name, path=None, target=None):
+        if (name == "scipy" or name.startswith("scipy.")) and threading.get_ident() == self.thread:
+            raise ModuleNotFoundError(f"No module named {name!r} (hidden while numba starts)", name=name)
+        return None
+
+
+def _start_numba() -> None:
+    """Import numba and load its typing and lowering registries with scipy hidden (see
+    :class:`_HiddenScipy`); the work is the same a first kernel call does, done here once."""
+    hide = None if "scipy.linalg" in sys.modules else _HiddenScipy()  # already paid for: nothing to hide
+    fresh = "numba.np.arraymath" not in sys.modules
+    if hide is not None:
+        sys.meta_path.insert(0, hide)
+    try:
+        import numba  # noqa: F401
+        from numba.core.registry import cpu_target
+
+        cpu_target.target_context.refresh()
+    finally:
+        if hide is not None:
+            sys.meta_path.remove(hide)
+    if hide is not None and fresh:
+        # numba found no BLAS while scipy was hidden; with scipy installed it has one, and its
+        # inner-product helpers (np.cov, np.corrcoef, ...) should use it as they would have:
+        # np.dot imports scipy itself when such a function is compiled.
+        import importlib.util
+
+        from numba.np import arraymath
+
+        arraymath._HAVE_BLAS = importlib.util.find_spec("scipy") is not None
+
+
+_start_numba()
+
 from numba import njit  # noqa: E402
 from numba.core.cpu import ParallelOptions  # noqa: E402
 

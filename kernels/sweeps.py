@@ -103,7 +103,6 @@ def _blend_bulk(cells, t, parity, omega, mu):
 @kernel(inline=True)
 def _stencil_mixed(up, mid, dn, t, crow, table):
     for k in range(t.shape[0]):
-        c = crow[k]
         t[k] = wsum_of(up, mid, dn, k, table, crow[k])
 
 

@@ -1,5 +1,5 @@
 """``python -m relaxtui`` runs the command line."""
 
-from relaxtui.cli import main
+from relaxtui.cli import entry
 
-raise SystemExit(main())
+entry()

@@ -12,7 +12,9 @@ What is checked, and against what:
 - User errors and refused methods end every rank with the one-line message
   and exit code 2 (no hang, no traceback, no output files); an exception on
   one rank aborts the whole job (the guard); SIGTERM under mpiexec writes the
-  current field with status "cancelled" and exit code 130.
+  current field with status "cancelled" and exit code 130, also when it arrives
+  during the set-up (ranks paused at exact moments, RELAXTUI_TEST_PAUSE_AT, as
+  in tests/test_signals.py) or reaches one rank only.
 
 The launches use a clean environment (no launcher variables of an enclosing
 job, one numba thread per rank, the caller's numba cache directory shared by
@@ -706,8 +708,12 @@ class PausedJob:
         self._wait(lambda: all(_pending(self.pids[r], sig) for r in stopped), "the forwarded signal")
 
     def cont(self, *ranks: int) -> None:
+        """Continue the ranks and wait until they have taken their pending stop signals (so that a
+        later signal cannot merge with one not yet delivered)."""
         for r in ranks:
             os.kill(self.pids[r], signal.SIGCONT)
+        sigs = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
+        self._wait(lambda: not any(_pending(self.pids[r], s) for r in ranks for s in sigs), "the signals to be taken")
 
     def finish(self) -> tuple[int, str, str]:
         try:
@@ -793,3 +799,22 @@ def test_a_signal_after_the_run_converged_keeps_its_status_and_exit_code(tmp_pat
     assert code == 0, err
     _, report, _ = read(tmp_path, "late")
     assert report["status"] == "converged" and "stopped by" not in report["message"]
+
+
+@needs_mpi
+def test_a_second_signal_before_the_writing_stops_the_job_without_writing(tmp_path):
+    # As in one process (tests/test_signals.py): the first SIGTERM ends the run, a second one before
+    # the writing has begun stops at once, nothing is written, exit code 130, the CLI's one line.
+    case = masked_case(tmp_path)
+    job = PausedJob(2, ["solve", case, "--method", "jacobi", "--tolerance", "1e-13", "-q", *outputs("two")], tmp_path,
+                    "solving,solved")
+    job.wait_stopped(0)
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    job.wait_stopped(0)  # the run has ended, nothing is written yet
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    code, _, err = job.finish()
+    assert code == 130, err
+    assert err.strip() == "relaxtui solve: interrupted", err
+    assert not [p.name for p in tmp_path.iterdir() if p.name.startswith("two.")]

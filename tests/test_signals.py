@@ -2,8 +2,8 @@
 
 The solve process stops itself (SIGSTOP) at an exact moment named in the
 environment variable RELAXTUI_TEST_PAUSE_AT (relaxtui.output.atomic.pause_for_tests):
-"solving" (after the first step), "solving:2" (after the second), "writing" (the solve is over, nothing written
-yet), "remove" (every temporary file complete, the previous report about to
+"solving" (after the first step), "solving:2" (after the second), "solved" (the run has ended, the
+writing not begun), "writing" (the solve is over, nothing written yet), "remove" (every temporary file complete, the previous report about to
 be removed), "rename:N" (before the N-th rename), "renamed" (all renamed). The
 test waits until the process is stopped (/proc state "T"), sends its signal or
 SIGKILL, and continues it. No timing is involved.

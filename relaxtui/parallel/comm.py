@@ -33,7 +33,17 @@ def mpi():
 
         # numba's worker threads and the progress display never call MPI.
         mpi4py.rc.thread_level = "funneled"
-        from mpi4py import MPI
+        # the stop signals go to the main thread (its Python handler runs at once), not to a thread the
+        # MPI library starts while it initialises (MPICH starts one): that thread inherits them blocked
+        import signal
+
+        stops = {getattr(signal, n) for n in ("SIGINT", "SIGTERM", "SIGHUP") if hasattr(signal, n)}
+        blocked = signal.pthread_sigmask(signal.SIG_BLOCK, stops) if hasattr(signal, "pthread_sigmask") else None
+        try:
+            from mpi4py import MPI
+        finally:
+            if blocked is not None:
+                signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
 
         _MPI = MPI
     return _MPI

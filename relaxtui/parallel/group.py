@@ -26,7 +26,7 @@ from contextlib import contextmanager
 import numpy as np
 
 from relaxtui.errors import UsageError
-from relaxtui.parallel.comm import quiet_barrier, quiet_wait
+from relaxtui.parallel.comm import quiet_wait
 from relaxtui.parallel.strip import Strip, split_rows
 from relaxtui.solver.radius import Lanczos, RadiusJob, RitzRule
 

@@ -25,8 +25,10 @@ strictly less where a cell leaks to a fixed or convection face), so
 ``||(I - W)^-1||_inf = max w`` for the solution of ``(I - W) w = 1`` (all
 ones): the expected number of random-walk steps before a walker leaves the
 domain. It is computed exactly (banded Cholesky of the symmetric unnormalised
-form, the multigrid kernels' own) on grids where that is cheap, solved for to
-about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``; under MPI
+form, the multigrid kernels' own) on grids where that is cheap,
+bounded above by a quadratic barrier in one pass where that holds (``barrier_inverse_norm``;
+when the bound is too loose to certify a stop the rule asks for one of the next two), solved
+for to about 1 % by a multigrid run's own hierarchy (``MultigridStepper.inverse_norm``; under MPI
 the same steps by strips, ``relaxtui.parallel.multigrid.StripMultigrid.inverse_norm``),
 and estimated from the Jacobi spectral radius μ elsewhere (``1/(1 - μ)`` is the D-norm of
 the inverse; times a safety factor for the infinity norm).
@@ -85,12 +87,86 @@ def exact_inverse_norm(operator) -> float | None:
     return max(top_w, 1.0)
 
 
+BARRIER_HOW = "bounded above by a quadratic barrier"
+
+
+def barrier_inverse_norm(operator) -> float | None:
+    """An upper bound on ``||(I - W)^-1||_inf`` from one pass over the operator, or None.
+
+    Comparison principle for M-matrices (common practice; e.g. Berman and Plemmons, *Nonnegative
+    Matrices in the Mathematical Sciences*, 1994, ch. 6): with W >= 0, a v > 0 with
+    ``(I - W) v >= m > 0`` on every unknown makes ``I - W`` a nonsingular M-matrix, and then
+    ``w = (I - W)^-1 1 <= v / m``, so ``||(I - W)^-1||_inf = max w <= max v / m``. The candidates
+    are quadratics centred in the unknowns' bounding box (kernels/certificate.py): on the
+    5-point Laplacian with equal weights each gives m = 1 and bounds max w within a factor of
+    about 2 (2047² model problem: 2.1e6 against about 1.2e6). Where the weights are uneven
+    (conductivity jumps, insulated faces on the wrong side of the centre) they may fail: None,
+    and the caller finds the norm another way. The rounding of the kernel's sums is taken off m.
+    """
+    if operator.unknowns == 0 or not all(hasattr(operator, a) for a in ("cls", "row_ptr", "seg_class", "_blocks")):
+        return None  # (an operator split across MPI ranks has its strips' arrays only)
+    table = np.asarray(operator.table, dtype=np.float64)
+    w = table[1:, :4]
+    if w.size == 0 or not np.all(w >= 0.0) or not np.all(np.isfinite(w)) or float(np.max(w.sum(axis=1))) > 1.0 + 1e-12:
+        return None  # not the weights of an M-matrix (the comparison needs W >= 0, rows summing to at most 1)
+    row_ptr, seg_start, seg_end = operator.row_ptr, operator.seg_start, operator.seg_end
+    counts = np.diff(row_ptr)
+    rows = np.nonzero(counts)[0]
+    if rows.size == 0:
+        return None
+    i0, i1 = int(rows[0]), int(rows[-1])  # every unknown lies in rows i0..i1, columns j0..j1 (a box around the segments)
+    j0, j1 = int(seg_start.min()), int(seg_end.max()) - 1
+    ci, cj = (i0 + i1) // 2, (j0 + j1) // 2
+    ri2 = float(max(ci - i0, i1 - ci) ** 2 + 1)  # + 1: v >= 1 > 0 on every unknown
+    rj2 = float(max(cj - j0, j1 - cj) ** 2 + 1)
+    r2 = ri2 + rj2 - 1.0
+    from relaxtui.kernels import certificate
+
+    res = certificate.barriers(operator.cls, table, row_ptr, seg_start, seg_end, operator.seg_class, ci, cj, r2, ri2, rj2,
+                               operator._blocks()[1])
+    best = None
+    for low, high, least in res:
+        # the kernel's sums carry a few roundings of terms up to max v (the leak term) and 2 sqrt(max v) + 1
+        margin = 64.0 * _EPS * (abs(high) + 2.0 * math.sqrt(abs(high)) + 2.0)
+        m = float(low) - margin
+        if not (math.isfinite(m) and m > 0.0 and least > 0.0 and math.isfinite(high)):
+            continue
+        bound = max(float(high) / m, 1.0)  # ||(I - W)^-1|| >= 1 (W >= 0)
+        best = bound if best is None else min(best, bound)
+    return best
+
+
 def inverse_norm(run) -> tuple[float, str]:
-    """``||(I - W)^-1||_inf`` for a run's operator (cached on it) and how it was found."""
+    """``||(I - W)^-1||_inf`` for a run's operator (cached on it) and how it was found.
+
+    In order: exact (banded Cholesky) where that is cheap; else the quadratic barrier's upper
+    bound (one pass); else the method's own solve or the Jacobi-radius estimate. The barrier's
+    bound may be loose: :func:`tighter_inverse_norm` replaces it when it does not certify a stop.
+    """
     op = run.operator
     if op.inverse_norm is not None:
         return op.inverse_norm
     exact = exact_inverse_norm(op) if hasattr(op, "cls") else None
+    if exact is None:
+        bound = barrier_inverse_norm(op)
+        if bound is not None:
+            op.inverse_norm = (bound, BARRIER_HOW)
+            return op.inverse_norm
+    return _estimated(run, exact)
+
+
+def tighter_inverse_norm(run) -> tuple[float, str] | None:
+    """The norm found without the barrier, when the cached one is the barrier's bound (else None):
+    what the stopping rule asks for when the bound is too loose to certify a stop."""
+    op = run.operator
+    if op.inverse_norm is None or op.inverse_norm[1] != BARRIER_HOW:
+        return None
+    op.inverse_norm = None
+    return _estimated(run, None)
+
+
+def _estimated(run, exact) -> tuple[float, str]:
+    op = run.operator
     own = None
     if exact is None:
         # a stepper with a hierarchy of its own (multigrid) solves for the norm with it: a few cycles
@@ -153,6 +229,7 @@ def attach(rule, run) -> None:
                         "and the cell size together) exceed the range of float64; rescale the units")
     rule.field_residual = lambda: op.residual(run._u)
     rule.inverse_norm = lambda: inverse_norm(run)
+    rule.tighter_inverse_norm = lambda: tighter_inverse_norm(run)
     rule.floor_cells = int(op.unknowns)
     rule.convergent_by_theory = run.method in CONVERGENT_METHODS
 

@@ -253,6 +253,8 @@ class StoppingRule:
         # inverse_norm() -> (||(I - W)^-1||_inf, how it was found).
         self.field_residual = None
         self.inverse_norm = None
+        # tighter_inverse_norm() -> a tighter (norm, how) when inverse_norm() gave a cheap upper bound, else None
+        self.tighter_inverse_norm = None
         self.reason: str | None = None  # why the run stalled, when the rule knows better than "no progress"
         self.floor: float | None = None  # the attainable accuracy once known (field units)
         self.floor_cells = 1  # unknowns of the system (the rounding floor's random-sign estimate)
@@ -362,6 +364,15 @@ class StoppingRule:
         and a floor above the tolerance makes the honest status ``stalled``.
         """
         inv, how = self.inverse_norm()
+        status_out, est_out = self._certify_with(inv, how, status, est, frozen)
+        if status_out != CONVERGED and self.tighter_inverse_norm is not None:
+            tighter = self.tighter_inverse_norm()  # the first norm was a cheap upper bound: try the closer one
+            if tighter is not None:
+                self.reason = None
+                status_out, est_out = self._certify_with(*tighter, status, est, frozen)
+        return status_out, est_out
+
+    def _certify_with(self, inv: float, how: str, status: str, est: Estimate, frozen: bool) -> tuple[str, Estimate]:
         from relaxtui.solver.conditioning import rounding_floor
 
         floor = self.floor = rounding_floor(inv, self.scale, self.floor_cells, self.eps)

@@ -15,6 +15,7 @@ from relaxtui.tui.messages import while_open
 from relaxtui.tui.params import ParamsPanel
 from relaxtui.tui.runs import RunsPanel
 from relaxtui.tui.session import VIEWS
+from relaxtui.tui.worker import OmegaApplied
 
 
 class Controls:
@@ -60,7 +61,7 @@ class Controls:
     def on_params_panel_refused(self, msg: ParamsPanel.Refused) -> None:
         self._refuse(msg.text)
 
-    def on_omegaapplied(self, ev: w.OmegaApplied) -> None:
+    def on_omegaapplied(self, ev: OmegaApplied) -> None:
         if ev.ok:
             self._tell(ev.text, title="ω changed", timeout=4)
         else:
