@@ -29,6 +29,27 @@ METHODS = ("multigrid", "symmetric-sor", "jacobi", "sor", "gauss-seidel", "red-b
 def main() -> int:
     from relaxtui.cli import main as cli
 
+    # first: the float32 build of the report's field summary, which tests/test_field_output.py (early in
+    # the session) reaches long before the --precision single solves below
+    with contextlib.suppress(Exception):
+        from relaxtui.case import load_case
+        from relaxtui.solver.assembled import Operator
+
+        op = Operator(load_case(GRIDS / "electrodes.toml"))
+        op.field_summary(op.new_field(precision="single"))
+    # the uint16 class-code builds of the sweeps (more than 255 classes: tests/test_kernels.py)
+    with contextlib.suppress(Exception):
+        import numpy as np
+        from cases import fixed, interior, make_case  # tests/cases.py, beside this script
+
+        keys = "abcdefghijkl"
+        rng = np.random.default_rng(7)
+        art = ["H" * 40] + ["#" + "".join(rng.choice(list(keys), 38)) + "#" for _ in range(12)] + ["#" * 40]
+        legend = {ch: interior(f"m{n}", 0.5 + n) for n, ch in enumerate(keys)}
+        legend.update({"H": fixed("hot", 2.0), "#": fixed("cold", -1.0)})
+        op = Operator(make_case(art, legend))
+        for method in ("red-black-sor", "sor", "jacobi"):
+            op.sweep(op.new_field(), method, 1.3 if method != "jacobi" else 1.0, 1, np.zeros(1), np.zeros(1))
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp)
         for case in ("electrodes", "composite", "power-module", "well-drawdown", "heat-spreader"):
