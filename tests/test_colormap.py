@@ -119,12 +119,12 @@ def _is_round_step(step):
     return any(abs(mantissa - m) < 1e-6 for m in (1.0, 2.0, 2.5, 5.0, 10.0))
 
 
-@pytest.mark.parametrize("seed", range(5))
-def test_nice_ticks_round_and_inside(seed):
+@pytest.mark.parametrize("draw", range(5))
+def test_nice_ticks_round_and_inside(draw):
     # "Nice numbers" for axis labels (Heckbert, Graphics Gems 1990; common
     # practice): steps of 1, 2, 2.5 or 5 times a power of ten, ticks at
     # multiples of the step, all inside the range.
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(draw)
     for _ in range(200):
         span = 10.0 ** rng.uniform(-6, 6)
         lo = rng.uniform(-1000, 1000) * span  # ranges up to 1e3 spans away from 0

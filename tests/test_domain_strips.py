@@ -37,10 +37,10 @@ def scipy_reference(codes):
     return len(bad), int(np.count_nonzero(labels == g)), divmod(firsts[g], codes.shape[1])
 
 
-@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("draw", range(6))
 @pytest.mark.parametrize("strip_cells", [1, 13, 1 << 20])
-def test_strips_find_the_floating_groups_of_the_whole_picture(seed, strip_cells):
-    rng = np.random.default_rng(seed)
+def test_strips_find_the_floating_groups_of_the_whole_picture(draw, strip_cells):
+    rng = np.random.default_rng(draw)
     for _ in range(40):
         h, w = (int(x) for x in rng.integers(1, 24, 2))
         codes = rng.choice(6, size=(h, w), p=[0.55, 0.03, 0.2, 0.05, 0.02, 0.15]).astype(np.uint8)

@@ -152,7 +152,7 @@ def test_sor_transient_growth_is_not_divergence(method):
     ends at its sweep limit (or converged, then within tolerance of the exact rational answer)."""
     from test_weak_anchoring import weak_case
 
-    rng = np.random.default_rng(12)  # the case of test_weak_anchoring's seed 12
+    rng = np.random.default_rng(12)  # the case of test_weak_anchoring's draw 12
     case = weak_case(rng, int(rng.integers(2, 6)), int(rng.integers(3, 8)))
     exact = exact_fraction_solution(case)
     tolerance = 1e-6 * float(np.nanmax(np.abs(exact)))

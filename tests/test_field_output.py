@@ -71,22 +71,22 @@ def check_summary(op, u):
         assert (got["value"], got["qx"], got["qy"], got["row"], got["col"]) == peak
 
 
-def random_field(op, seed, dtype=np.float64):
+def random_field(op, draw, dtype=np.float64):
     u = op.new_field(precision="single" if dtype == np.float32 else "double")
     inner = op.view(u)
     interior_cells = op.cls[1:-1, 1:-1] != 0
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(draw)
     inner[interior_cells] = rng.normal(size=int(interior_cells.sum())).astype(dtype)
     return u
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("draw", [0, 1, 2])
 @pytest.mark.parametrize("cell_size", [1.0, 0.037])
-def test_field_summary_is_the_numpy_computation_on_the_exported_field(seed, cell_size):
+def test_field_summary_is_the_numpy_computation_on_the_exported_field(draw, cell_size):
     # fixed regions with and without their own conductivity (the latter: the mean of its interior
     # neighbours'), two materials, holes, flux and convection cells (outside the domain: NaN)
     op = Operator(make_case(ART, LEGEND, cell_size=cell_size))
-    check_summary(op, random_field(op, seed))
+    check_summary(op, random_field(op, draw))
 
 
 def test_field_summary_of_a_single_precision_field():

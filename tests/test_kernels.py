@@ -36,9 +36,9 @@ def with_fixed_values(case, field):
     return out
 
 
-def start_field(case, seed=3):
+def start_field(case, draw=3):
     """A rough start: interior cells random in [0, 1], fixed cells at their value."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(draw)
     return rng.random(case.codes.shape)
 
 
@@ -84,7 +84,7 @@ def test_many_sweeps_in_one_call_equal_single_calls(method, omega):
 def test_residual_matches_reference(name):
     case = CASES[name]
     op = Operator(case)
-    init = start_field(case, seed=11)
+    init = start_field(case, draw=11)
     u = op.new_field(init)
     field = with_fixed_values(case, init)
     assert op.residual(u) == pytest.approx(reference.residual(case, field), abs=1e-14)
@@ -103,7 +103,7 @@ def test_fused_red_black_is_the_two_pass_schedule_bit_for_bit(nblk, omega):
 
     case = CASES["two-material"]
     op = Operator(case)
-    u = op.new_field(start_field(case, seed=5))
+    u = op.new_field(start_field(case, draw=5))
     v = u.copy()
     upd, res = np.zeros(3), np.zeros(3)
     sweeps.sor_red_black(u, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, omega, 3, upd, res, nblk)
@@ -111,7 +111,7 @@ def test_fused_red_black_is_the_two_pass_schedule_bit_for_bit(nblk, omega):
         big = reference.red_black_two_pass(v, op.cls, op.table, omega)
         assert upd[k] == big
     assert np.array_equal(u, v)
-    w = op.new_field(start_field(case, seed=5))
+    w = op.new_field(start_field(case, draw=5))
     sweeps.sor_red_black_serial(w, op.cls, op.table, op.row_ptr, op.seg_start, op.seg_end, op.seg_class, omega, 3, upd, res)
     assert np.array_equal(w, v)
 
@@ -230,8 +230,8 @@ def test_same_results_without_the_jit():
             assert fl0[region] == pytest.approx(fl1[region], abs=1e-13)
 
 
-def _random_case(seed, rows=23, cols=57):
-    rng = np.random.default_rng(seed)
+def _random_case(draw, rows=23, cols=57):
+    rng = np.random.default_rng(draw)
     # two materials and fixed cells scattered at random, a long uniform band (bulk runs), a fixed row
     pick = rng.choice(list("..bbx"), size=(rows, cols))
     pick[rng.random((rows, cols)) < 0.01] = "H"
@@ -241,9 +241,9 @@ def _random_case(seed, rows=23, cols=57):
     return make_case(["".join(r) for r in pick], lg)
 
 
-@pytest.mark.parametrize("seed", range(4))
-def test_segments_cover_every_unknown_once(seed):
-    op = Operator(_random_case(seed))
+@pytest.mark.parametrize("draw", range(4))
+def test_segments_cover_every_unknown_once(draw):
+    op = Operator(_random_case(draw))
     covered = np.zeros(op.cls.shape, dtype=np.int64)
     for i in range(op.cls.shape[0]):
         for s in range(op.row_ptr[i], op.row_ptr[i + 1]):
@@ -259,14 +259,14 @@ def test_segments_cover_every_unknown_once(seed):
     assert op.cells_streamed == covered.sum()
 
 
-@pytest.mark.parametrize("seed", range(6))
-def test_group_check_agrees_with_scipy_labelling(seed):
+@pytest.mark.parametrize("draw", range(6))
+def test_group_check_agrees_with_scipy_labelling(draw):
     """The run-based union-find against scipy.ndimage.label (4-connectivity) on random pictures."""
     import scipy.ndimage
 
     from relaxtui.errors import CaseError
 
-    rng = np.random.default_rng(100 + seed)
+    rng = np.random.default_rng(100 + draw)
     rows, cols = 19, 31
     pick = rng.choice(list("..xx"), size=(rows, cols))
     pick[rng.random((rows, cols)) < 0.004] = "H"
@@ -292,12 +292,12 @@ def test_group_check_agrees_with_scipy_labelling(seed):
         Operator(case)
 
 
-@pytest.mark.parametrize("seed", range(3))
+@pytest.mark.parametrize("draw", range(3))
 @pytest.mark.parametrize("method,omega", [("jacobi", 0.9), ("sor", 1.3), ("red-black-sor", 1.3)])
-def test_random_pictures_match_reference(seed, method, omega):
-    case = _random_case(seed)
+def test_random_pictures_match_reference(draw, method, omega):
+    case = _random_case(draw)
     op = Operator(case)
-    init = start_field(case, seed)
+    init = start_field(case, draw)
     u = op.new_field(init)
     want, big_u, big_r = reference.SWEEPS[method](case, with_fixed_values(case, init), omega)
     upd, res = np.zeros(1), np.zeros(1)

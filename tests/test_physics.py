@@ -244,9 +244,9 @@ def test_a_map_constant_per_block_equals_the_blocks_drawn_as_regions():
             assert r.report["flows"][name] == pytest.approx(v, rel=1e-6, abs=1e-9), (method, name)
 
 
-def _smooth_map(shape, seed, lo, hi):
+def _smooth_map(shape, draw, lo, hi):
     """A smooth random map: a few low Fourier modes, scaled to [lo, hi]."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(draw)
     y, x = np.mgrid[0 : shape[0], 0 : shape[1]] / max(shape)
     f = np.zeros(shape)
     for _ in range(6):

@@ -4,7 +4,7 @@ Cases held only by convection faces (coefficients down to 1e-8), sometimes a fix
 with conductivity contrasts up to 1e8 and sources. Tiny grids are checked against exact rational
 arithmetic (tests/exact_fraction.py: no float64 rounding in the answer at all); mid-size grids
 against spsolve (tests/exact.py) where its own error, about kappa * eps * max |u|, is far below the
-tolerance. Seeds are fixed (numpy's default_rng(seed)), so every run checks the same cases.
+tolerance. Draws are fixed (numpy's default_rng(draw)), so every run checks the same cases.
 """
 
 from __future__ import annotations
@@ -52,9 +52,9 @@ def check(case, exact, method, tolerance):
     return status
 
 
-@pytest.mark.parametrize("seed", range(24))
-def test_tiny_weakly_anchored_cases_against_exact_arithmetic(seed):
-    rng = np.random.default_rng(seed)
+@pytest.mark.parametrize("draw", range(24))
+def test_tiny_weakly_anchored_cases_against_exact_arithmetic(draw):
+    rng = np.random.default_rng(draw)
     case = weak_case(rng, int(rng.integers(2, 6)), int(rng.integers(3, 8)))
     try:
         exact = exact_fraction_solution(case)
@@ -67,9 +67,9 @@ def test_tiny_weakly_anchored_cases_against_exact_arithmetic(seed):
         check(case, exact, method, tolerance)
 
 
-@pytest.mark.parametrize("seed", range(6))
-def test_mid_size_weakly_anchored_cases_against_spsolve(seed):
-    rng = np.random.default_rng(1000 + seed)
+@pytest.mark.parametrize("draw", range(6))
+def test_mid_size_weakly_anchored_cases_against_spsolve(draw):
+    rng = np.random.default_rng(1000 + draw)
     case = weak_case(rng, 20, 24, min_log_coefficient=-5.0)
     try:
         exact = exact_solution(case)
