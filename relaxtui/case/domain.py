@@ -105,6 +105,11 @@ def label_groups(interior: np.ndarray, runs=None) -> tuple[np.ndarray, np.ndarra
 def _floating_runs(starts, ends, stride, touched) -> tuple[int, int, tuple[int, int]]:
     """:func:`floating_groups` from the runs and their ``touched`` flags (:func:`anchored_runs`)."""
     starts, ends, group = label_groups(None, (starts, ends, stride))
+    return _first_floating(starts, ends, stride, group, touched)
+
+
+def _first_floating(starts, ends, stride, group, touched) -> tuple[int, int, tuple[int, int]]:
+    """(groups none of whose runs is ``touched``, size of the first, its first cell) from labelled runs."""
     ok = np.zeros(int(group.max()) + 1, dtype=bool)
     ok[group[touched]] = True
     bad = np.flatnonzero(~ok)
@@ -128,20 +133,10 @@ def floating_groups(interior: np.ndarray, touch: np.ndarray) -> tuple[int, int, 
     starts, ends, stride = runs
     if len(starts) <= RUN_GRAPH_LIMIT:
         starts, ends, group = label_groups(interior, runs)
-        ngroups = int(group.max()) + 1
         r, c = np.divmod(np.flatnonzero(touch), w)
         keys = r * stride + c + 1
         run_of_touch = np.searchsorted(starts, keys, side="right") - 1
-        ok = np.zeros(ngroups, dtype=bool)
-        ok[group[run_of_touch]] = True
-        bad = np.flatnonzero(~ok)
-        if not bad.size:
-            return 0, 0, (-1, -1)
-        g = int(bad[0])
-        mine = group == g
-        size = int((ends[mine] - starts[mine]).sum())
-        first = int(starts[np.argmax(mine)])
-        return int(bad.size), size, (first // stride, first % stride - 1)
+        return _first_floating(starts, ends, stride, group, run_of_touch)
     from relaxtui.kernels.labels import label4
 
     labels, count = label4(interior)

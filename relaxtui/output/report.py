@@ -28,6 +28,23 @@ def _f(x):
     return x if math.isfinite(x) else None
 
 
+def extremes_and_peak(case, low, high, peak) -> tuple[dict, dict]:
+    """The report's extremes and peak-flux entries from the lowest and highest cell, (value, row,
+    col) each, and the peak flux, (value, qx, qy, row, col); ``None`` where the field has none."""
+    if low is None:
+        ext = {"min": None, "max": None, "min_at": None, "max_at": None}
+    else:
+        ext = {"min": low[0], "max": high[0], "min_at": cell_position(case, low[1], low[2]),
+               "max_at": cell_position(case, high[1], high[2])}
+    if peak is None:
+        flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
+    else:
+        value, qx, qy, row, col = peak
+        at = cell_position(case, row, col)
+        flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
+    return ext, flux
+
+
 def cell_position(case, row: int, col: int) -> dict:
     """Row/column and the cell centre in metres (origin bottom-left, y up)."""
     rows = case.shape[0]

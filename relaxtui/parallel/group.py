@@ -407,23 +407,12 @@ class DistributedOperator:
         """The report's extremes and peak flux, computed by strips (see :meth:`Strip.summary`):
         ``({"min", "max", "min_at", "max_at"}, flux_max)`` with the keys of
         :func:`relaxtui.output.report.extremes` and :func:`relaxtui.output.flux.peak_flux`."""
-        from relaxtui.output.report import cell_position
+        from relaxtui.output.report import extremes_and_peak
 
         self._check_field(u)
         with self.group.collective(SUMMARY):
             low, high, peak = self.strip.summary(self.case.regions, self.cell_size)
-        if low is None:
-            ext = {"min": None, "max": None, "min_at": None, "max_at": None}
-        else:
-            ext = {"min": low[0], "max": high[0], "min_at": cell_position(self.case, low[1], low[2]),
-                   "max_at": cell_position(self.case, high[1], high[2])}
-        if peak is None:
-            flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
-        else:
-            value, qx, qy, row, col = peak
-            at = cell_position(self.case, row, col)
-            flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
-        return ext, flux
+        return extremes_and_peak(self.case, low, high, peak)
 
     def radius_job(self):
         """The Jacobi-radius job of this operator (see :class:`DistributedRadiusJob`), made on first use."""

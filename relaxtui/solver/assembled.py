@@ -430,7 +430,7 @@ class Operator:
         if getattr(self.case, "per_face_physics", False):
             return None
         from relaxtui.kernels import measure
-        from relaxtui.output.report import cell_position
+        from relaxtui.output.report import extremes_and_peak
 
         rows = self.shape[0]
         fixed = self.kind == FIXED
@@ -448,18 +448,7 @@ class Operator:
                     high = (float(row[4]), int(row[5]), int(row[6]))
             if row[7] >= 0.0 and (peak is None or row[7] > peak[0]):
                 peak = (float(row[7]), float(row[8]), float(row[9]), int(row[10]), int(row[11]))
-        if low is None:
-            ext = {"min": None, "max": None, "min_at": None, "max_at": None}
-        else:
-            ext = {"min": low[0], "max": high[0], "min_at": cell_position(self.case, low[1], low[2]),
-                   "max_at": cell_position(self.case, high[1], high[2])}
-        if peak is None:
-            flux = {"value": 0.0, "qx": 0.0, "qy": 0.0, "row": None, "col": None, "x": None, "y": None}
-        else:
-            value, qx, qy, row, col = peak
-            at = cell_position(self.case, row, col)
-            flux = {"value": value, "qx": qx, "qy": qy, "row": row, "col": col, "x": at["x"], "y": at["y"]}
-        return ext, flux
+        return extremes_and_peak(self.case, low, high, peak)
 
     def jacobi_apply(self, x, out) -> None:
         """out = J x for the homogeneous Jacobi iteration matrix J = D^-1 (D - A), in the working layout.
