@@ -372,8 +372,10 @@ class _Display:
             return
         err = p.estimated_error
         eta = "" if p.eta_seconds is None else f" ETA {p.eta_seconds:.0f} s"
-        info = (f"sweep {group(p.sweeps)}  error {err:.2g} / {p.tolerance:.2g}{eta}  {p.mcells_per_s:.0f} Mcell/s"
-                if math.isfinite(err) else f"sweep {group(p.sweeps)}  error not yet estimable  {p.mcells_per_s:.0f} Mcell/s")
+        # no rate where the last step swept nothing (a stop between chunks): 0 would not be a measurement
+        rate = f"  {p.mcells_per_s:.0f} Mcell/s" if p.mcells_per_s > 0 else ""
+        info = (f"sweep {group(p.sweeps)}  error {err:.2g} / {p.tolerance:.2g}{eta}{rate}"
+                if math.isfinite(err) else f"sweep {group(p.sweeps)}  error not yet estimable{rate}")
         if p.background:
             info += f"  ({p.background})"
         if self.live:
