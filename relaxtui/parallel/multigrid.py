@@ -564,7 +564,7 @@ class DistributedMultigrid:
     """Rank 0's multigrid stepper over a :class:`relaxtui.parallel.group.DistributedOperator`.
 
     The interface of :class:`relaxtui.solver.multigrid.MultigridStepper` (``sweep``,
-    ``release``, ``info``, ``rule_options``, ``max_chunk``); every call is one
+    ``release``, ``info``, ``rule_options``, ``max_chunk``, ``chunk_multiple``); every call is one
     collective command to the other ranks.
     """
 
@@ -574,6 +574,7 @@ class DistributedMultigrid:
         self.operator = operator
         self.rule_options = dict(MultigridStepper.rule_options)
         self.max_chunk = MultigridStepper.max_chunk
+        self.chunk_multiple = MultigridStepper.chunk_multiple
         self.info = None
         self._build()
 

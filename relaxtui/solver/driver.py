@@ -482,7 +482,7 @@ class Run:
         return self.progress
 
     def _chunk_size(self) -> int:
-        multiple = getattr(self._stepper, "chunk_multiple", 1)
+        multiple = self._stepper.chunk_multiple
         if self._sweep_seconds is None:
             n = multiple  # the first chunk times a sweep: as short as it can be
         else:

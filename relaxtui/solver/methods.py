@@ -61,6 +61,7 @@ class Stepper(Protocol):
     info: dict | None  # shown by the UI and put in the report (e.g. a level hierarchy)
     rule_options: dict  # keyword arguments for the stopping rule (rate window, envelope)
     max_chunk: int  # most iterations per chunk
+    chunk_multiple: int  # chunks are a multiple of this many iterations when they can be
 
     def sweep(self, u, omega: float, sweeps: int, updates, residuals) -> int: ...
 
@@ -73,7 +74,7 @@ class BaseStepper:
     info = None
     rule_options: dict = {}
     max_chunk = MAX_CHUNK
-    chunk_multiple = 1  # the driver makes chunks a multiple of this when it can (read with getattr: optional)
+    chunk_multiple = 1
 
     def release(self) -> None:
         """Drop buffers that are not needed once the run has ended."""

@@ -263,7 +263,7 @@ class MultigridStepper:
         ``levels`` (list of {shape, unknowns}, finest first), ``setup_seconds``,
         ``cycle`` (a description), ``memory_bytes`` (arrays held beyond the
         operator's own), shown by the UI and put in the report.
-    rule_options, max_chunk
+    rule_options, max_chunk, chunk_multiple
         What the driver passes to the stopping rule (rate window 2, no
         envelope: the updates of a multigrid iteration fall by a large factor
         each time) and its chunk cap (one iteration: each gains a decade or
@@ -272,6 +272,7 @@ class MultigridStepper:
 
     rule_options = {"min_window": 2, "envelope": 1}
     max_chunk = 1
+    chunk_multiple = 1
 
     def __init__(self, operator, *, krylov: bool = KRYLOV, pre: int = PRE_SWEEPS, post: int = POST_SWEEPS,
                  gamma: int = GAMMA, krylov_sweeps: int = KRYLOV_SWEEPS, coarsest: int = COARSEST_UNKNOWNS):
