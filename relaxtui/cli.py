@@ -205,13 +205,7 @@ def entry() -> None:
 
 
 def _exit(code) -> None:
-    if not _quick_exit_safe():
-        raise SystemExit(code)
-    try:
-        for stream in (sys.stdout, sys.stderr):
-            if stream is not None:
-                stream.flush()
-    except Exception:  # a closed pipe or a full disk: let the normal exit report it
+    if not _quick_exit_safe() or not _flushed():
         raise SystemExit(code)
     import atexit
 
@@ -219,14 +213,22 @@ def _exit(code) -> None:
     if run is None:  # pragma: no cover - every CPython has it
         raise SystemExit(code)
     run()
+    if not _flushed():  # what the atexit handlers printed
+        raise SystemExit(code)
+    _flush_c_streams()
+    os._exit(int(code) & 0xFF if isinstance(code, int) else 1)
+
+
+def _flushed() -> bool:
+    """Flush stdout and stderr; False where that fails (a closed pipe, a full disk: the normal exit
+    then reports it)."""
     try:
         for stream in (sys.stdout, sys.stderr):
             if stream is not None:
                 stream.flush()
     except Exception:
-        raise SystemExit(code)
-    _flush_c_streams()
-    os._exit(int(code) & 0xFF if isinstance(code, int) else 1)
+        return False
+    return True
 
 
 def _quick_exit_safe() -> bool:
