@@ -10,7 +10,7 @@ import argparse
 import os
 import sys
 
-from relaxtui.errors import RelaxError, UsageError
+from relaxtui.errors import RelaxError, UsageError, printable
 from relaxtui.options import (
     argparse_type,
     parse_max_sweeps,
@@ -185,6 +185,10 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"relaxtui {args.command}: interrupted", file=sys.stderr)
         return 130
+    except OSError as exc:  # the system refused a file operation no check foresaw (I/O error, full disk): one line
+        where = f": {printable(exc.filename)!r}" if getattr(exc, "filename", None) else ""
+        print(f"relaxtui {args.command}: error: {printable(exc.strerror or exc)}{where}", file=sys.stderr)
+        return 2
 
 
 def entry() -> None:

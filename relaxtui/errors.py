@@ -52,3 +52,8 @@ class UsageError(RelaxError):
 
 class OutputError(RelaxError):
     """An output cannot be written (missing folder, permission)."""
+
+
+class WriteRefused(OutputError, OSError):
+    """The system refused to write an output (a full disk, a file size limit, a read-only or pseudo file
+    system): an :class:`OutputError` for the command line, and still an ``OSError`` for callers that catch those."""

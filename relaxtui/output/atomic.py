@@ -15,7 +15,7 @@ import os
 import tempfile
 from pathlib import Path
 
-from relaxtui.errors import OutputError
+from relaxtui.errors import OutputError, RelaxError, WriteRefused
 
 
 def check_target(path: str | os.PathLike, what: str = "output") -> Path:
@@ -160,7 +160,10 @@ class OutputSet:
             done = []
             for i, (tmp, target) in enumerate(self.pending):
                 pause_for_tests(f"rename:{i}")
-                os.replace(tmp, target)
+                try:
+                    os.replace(tmp, target)
+                except OSError as exc:  # the temporaries not yet renamed are removed by discard()
+                    raise WriteRefused(f"cannot write {str(target)!r}: {_os_reason(exc)}") from None
                 done.append(target)
             pause_for_tests("renamed")
             _sync_folders({t.parent for _, t in self.pending})
@@ -219,7 +222,12 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", what: str = "output"
     set's commit.
     """
     target = check_target(path, what)
-    fd, tmp = tempfile.mkstemp(prefix=_temp_prefix(target.name), suffix=".part", dir=target.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=_temp_prefix(target.name), suffix=".part", dir=target.parent)
+    except OSError as exc:  # a read-only or pseudo file system, a full disk, no permission: one line, no traceback
+        folder = str(target.parent) if str(target.parent) else "."
+        raise WriteRefused(f"cannot write {what} {str(target)!r}: {_os_reason(exc)} "
+                          f"(creating a temporary file in folder {folder!r})") from None
     try:
         kwargs = {} if "b" in mode else {"encoding": "utf-8", "newline": ""}
         with os.fdopen(fd, mode, **kwargs) as handle:
@@ -235,10 +243,21 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", what: str = "output"
                 batch.digests[tmp] = digest
         else:
             os.replace(tmp, target)
+    except OSError as exc:  # the disk filled up, a file size limit, an I/O error: the target is untouched
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        if isinstance(exc, RelaxError):
+            raise
+        raise WriteRefused(f"cannot write {what} {str(target)!r}: {_os_reason(exc)}; nothing was written") from None
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def _os_reason(exc: OSError) -> str:
+    """The system's words for a failed file operation ("No space left on device"), without the path."""
+    return exc.strerror or type(exc).__name__
 
 
 def file_sha256(path: str | os.PathLike) -> str:

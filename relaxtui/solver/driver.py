@@ -184,6 +184,26 @@ class Run:
 
     def _scale(self) -> float:
         """Largest |value| of the starting field's interior and fixed cells and of the boundary values."""
+        return self._field_magnitude() or 1.0
+
+    def _lower_scale(self) -> bool:
+        """After a stall at the rounding floor: when the scale came from a start far larger than the field is now
+        (an initial field in other units, 1e300 where the answer is 100), lower the rule's scale to the present
+        field and boundary values and say True (the caller decides again).
+
+        The rounding errors of the early sweeps were of the start's size, but each is damped by the sweeps after
+        it like any other error; what is left at a fixed point is the rounding of the present field
+        (conditioning.rounding_floor). The residual certificate does not depend on the scale."""
+        if self.rule is None or not self._prepared:
+            return False
+        now = self._field_magnitude()
+        if not (math.isfinite(now) and 0.0 < now and 2.0 * now < self.rule.scale):
+            return False
+        self.rule.scale = now
+        return True
+
+    def _field_magnitude(self) -> float:
+        """Largest |value| of the working field's interior and fixed cells and of the boundary values (0 if all 0)."""
         if hasattr(self.operator, "field_scale"):  # an operator split across MPI ranks reduces it itself
             scale = self.operator.field_scale(self._u)
         else:
@@ -201,7 +221,7 @@ class Run:
             for v in (r.value, r.ambient):
                 if v is not None:
                     scale = max(scale, abs(v))
-        return scale or 1.0
+        return scale
 
     # -- the Jacobi radius -------------------------------------------------------
     def _wants_radius(self, request) -> bool:
@@ -468,6 +488,8 @@ class Run:
                                           None if cells is None else (lambda r, c: cells(self._u, r, c)))
             # the time limit covers the whole run, set-up included
             decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
+            if decision.status == stopping.STALLED and self._lower_scale():
+                decision = self.rule.decide(self.prepare_seconds + self.seconds, cancelled=self._cancel.is_set())
             if decision.status is None and k < n:
                 decision = replace(decision, status=stopping.DIVERGED)
             if decision.status is None:

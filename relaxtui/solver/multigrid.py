@@ -500,12 +500,25 @@ class MultigridStepper:
         nb = self.h.nblk0
         self.cycle_symmetric(omega)  # w = u + B r(u): the preconditioned residual is z = w - u
         rz, res = mg.pcg_rz(u, self.w, op.cls, op.table, op.diag, *self._segments(), nb)
-        beta = rz / self._rz if (self._k > 0 and self._rz != 0.0) else 0.0
+        # beta only from dot products float64 holds to full precision: on a field of magnitude 1e-150
+        # or below r . z is subnormal or 0 (a product of two such numbers), and beta = 0 restarts CG
+        beta = rz / self._rz if (self._k > 0 and _exact_dot(self._rz) and _exact_dot(rz)) else 0.0
         mg.fcg_direction(self.w, u, self.p, beta, nb)  # p = z + beta p
         pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, *self._segments(), nb)
-        alpha = pr / pap if pap > 0.0 else 0.0  # exact line search along p (pr = p . r(u))
+        scaled = False
+        if not (_exact_dot(pap) and math.isfinite(pr)):
+            # p . A p under- or overflowed (a field near 1e-150 or below, or a huge one): the line search
+            # is invariant under p -> s p (alpha -> alpha / s, the step alpha p the same), so scale p by a
+            # power of two (exact) to magnitude 1 and take the dot products again; the next step restarts
+            # CG (beta = 0), since p is no longer in the units beta refers to
+            top = float(np.max(np.abs(self.p)))
+            if 0.0 < top < math.inf:
+                self.p *= 2.0 ** -math.frexp(top)[1]
+                pap, pr, _ = mg.fcg_dots(u, self.p, op.cls, op.table, op.diag, *self._segments(), nb)
+                scaled = True
+        alpha = pr / pap if (pap > 0.0 and math.isfinite(pap)) else 0.0  # exact line search along p (pr = p . r(u))
         du = mg.fcg_update(u, self.p, alpha, self.w, nb)  # u += alpha p; w = u
-        self._rz = rz
+        self._rz = 0.0 if scaled else rz
         self._k += 1
         return du, res
 
@@ -613,6 +626,15 @@ class MultigridStepper:
             mg.delta_copy(u, self.u_old, nb)  # u_old = u again
         self._synced = None
         _WARM.add(key)
+
+
+_TINY_DOT = float(np.finfo(float).tiny) / float(np.finfo(float).eps)  # about 1e-292: below it a dot product's terms may be subnormal
+
+
+def _exact_dot(value: float) -> bool:
+    """Whether a dot product of CG is a normal, finite float64 number, far enough from the subnormal range
+    that its terms kept their precision (IEEE 754 binary64's smallest normal number, common practice)."""
+    return _TINY_DOT < abs(value) < math.inf
 
 
 def _shifted_classes(operator) -> np.ndarray:

@@ -165,7 +165,7 @@ def estimates(updates: np.ndarray, ends=None, *, prior_factor: float | None = No
         gap = np.where(complex_regime, prior_gap * RATE_SAFETY * ERROR_SAFETY, gap)
     gap = gap / RATE_SAFETY
     finite = ok & np.isfinite(e_now) & np.isfinite(r1) & np.isfinite(r2) & (rate > 0.0) & (gap > 0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # over: updates near 1e308 (a huge start)
         # the tail of the updates from this sweep on, Δ/(1 - rho) (a little looser
         # than Δ·rho/(1 - rho)), with both safety factors applied
         error = np.where(finite, ERROR_SAFETY * e_now / np.where(finite, gap, 1.0), np.inf)
@@ -263,6 +263,9 @@ class StoppingRule:
         # for Sparse Linear Systems, 2003, ch. 4, from memory): growing updates are then a transient
         # (non-normal SOR near omega = 2), not divergence; only non-finite or huge values are.
         self.convergent_by_theory = False
+        # True when a converged estimate must also pass the residual certificate ||(I - W)^-1|| max |r| <= tolerance
+        # (symmetric SOR, whose updates can understate the error: relaxtui.solver.conditioning.RESIDUAL_CERTIFIED_METHODS)
+        self.residual_certified = False
 
     def rescale(self, scale: float) -> None:
         """Raise the field's magnitude (sources can lift the field above its boundary values); the
@@ -351,6 +354,12 @@ class StoppingRule:
         status = self._status(est, seconds, cancelled)
         if status in (CONVERGED, STALLED) and self.inverse_norm is not None:
             status, est = self._certify(status, est, frozen)
+            if status is None:
+                # a converged estimate the residual certificate refused (residual_certified): decide again on
+                # the certified bound, which is above the tolerance (a stall, a limit, or keep going)
+                status = self._status(est, seconds, cancelled)
+                if status == STALLED:
+                    status, est = self._certify(status, est, frozen)
         self.last = Decision(status, est.error, est.factor, eta)
         return self.last
 
@@ -402,6 +411,13 @@ class StoppingRule:
             if floor > self.tolerance:
                 self.reason = self._floor_reason(inv, how, floor)
                 return STALLED, Estimate(error, est.factor, est.measured, est.mature)
+            if self.residual_certified and self.field_residual is not None:
+                r = float(self.field_residual())
+                bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+                if bound > self.tolerance:
+                    # the updates say converged, the residual does not certify it: go on, and report the
+                    # certified bound (the updates' estimate is known to understate the error here)
+                    return None, Estimate(max(error, bound), est.factor, est.measured, est.mature)
             return CONVERGED, Estimate(error, est.factor, est.measured, est.mature)
         return status, est
 

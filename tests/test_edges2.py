@@ -1,0 +1,207 @@
+"""More edges of float64 and of the file system: regressions for what a hostile user or an unlucky
+practitioner found.
+
+* multigrid on a field of magnitude 1e-300 (its conjugate-gradient dot products are squares of such
+  numbers and underflowed to 0: the run said "stalled: the updates vanished" after 2 cycles);
+* symmetric SOR on weakly held cases (its updates understate the error as omega nears 2: it said
+  "converged" a thousand tolerances away from the answer);
+* a start far larger than the answer (--initial of 1e300 where the answer is 100: a RuntimeWarning on
+  stderr, then "stalled" with a rounding floor taken from the start);
+* a write the system refuses (a full disk, a file size limit, a folder where no file can be made):
+  a traceback instead of a one-line error.
+
+Each answer is checked against something outside the project: a closed form (a field held by two
+fixed sides with insulated top and bottom is linear in the column, the 5-point scheme being exact
+for linear fields), or exact rational arithmetic (tests/exact_fraction.py).
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+from cases import convection, fixed, hot_cold_toml, interior, make_case, outside
+from exact_fraction import exact_fraction_solution
+from PIL import Image
+
+from relaxtui.cli import main
+from relaxtui.solver.driver import solve
+
+
+def plate(right: float, n: int = 12, left: float = 0.0):
+    """Top row outside, left column fixed at ``left``, right column at ``right``, (n - 1) x (n - 2) interior."""
+    art = ["x" * n] + ["L" + "." * (n - 2) + "R" for _ in range(n - 1)]
+    return make_case(art, {".": interior("plate"), "L": fixed("l", left), "R": fixed("r", right), "x": outside()})
+
+
+def linear_profile(right: float, n: int = 12, left: float = 0.0) -> np.ndarray:
+    """Closed form for plate(): rows alike between the insulated top row and the image border, so u is
+    linear in the column, u_j = left + (right - left) j / (n - 1)."""
+    field = np.tile(left + (right - left) * np.arange(n) / (n - 1), (n, 1))
+    field[0] = np.nan
+    return field
+
+
+def true_error(result, exact) -> float:
+    mask = np.isfinite(exact)
+    return float(np.max(np.abs(result.field[mask] - exact[mask])))
+
+
+# --- multigrid on tiny fields: scaled conjugate-gradient dot products -------------------------------
+
+
+@pytest.mark.parametrize("magnitude", [1e-300, 1e-200])
+def test_multigrid_solves_a_field_of_tiny_magnitude(magnitude):
+    """110 unknowns (above multigrid's direct-solve size) between fixed sides 0 and 1e-300: the closed-form
+    linear profile to a tolerance of a millionth of the field, like every relaxation method reaches."""
+    case, exact = plate(magnitude), linear_profile(magnitude)
+    tolerance = 1e-6 * magnitude
+    result = solve(case, method="multigrid", tolerance=tolerance)
+    assert result.report["status"] == "converged", result.report["message"]
+    assert true_error(result, exact) <= tolerance
+
+
+# --- symmetric SOR: a converged estimate needs the residual certificate -----------------------------
+
+
+def rows_alike(row: str, legend, count: int):
+    return make_case([row] * count, legend)
+
+
+def test_symmetric_sor_is_honest_on_a_nearly_insulated_bar():
+    """6 rows x 10 cells with a unit source, held only by convection of coefficient 1e-14 at both ends
+    (condition number about 1e15; the answer is near 5e14). Rows alike between insulated borders: the
+    exact answer is that of one row, in exact rational arithmetic. Auto omega is 2 - 6e-8 here; the
+    symmetric sweep's updates were 1e-5 against residuals of 0.5 and the run said converged to 5e8
+    with the field still at its starting guess."""
+    legend = {".": interior("p", source=1.0), "C": convection("a", 1e-14, 5.0), "D": convection("b", 1e-14, -3.0)}
+    row = "C" + "." * 10 + "D"
+    case = rows_alike(row, legend, 6)
+    exact = np.tile(exact_fraction_solution(make_case([row], legend)), (6, 1))
+    tolerance = 1e-6 * float(np.nanmax(np.abs(exact)))
+    result = solve(case, method="symmetric-sor", tolerance=tolerance, max_sweeps=3000)
+    err = true_error(result, exact)
+    assert result.report["status"] != "converged" or err <= tolerance, (err, result.report["message"])
+    estimate = result.report["estimated_error"]
+    assert estimate is None or estimate >= err  # the reported bound is the residual certificate's (an upper bound)
+
+
+@pytest.mark.parametrize("draw", [7, 12])
+def test_symmetric_sor_on_weakly_anchored_draws(draw):
+    """Two of test_weak_anchoring's random cases (the same draws), where symmetric SOR said converged
+    after 17 sweeps with a true error of 1.6e3 and 1e3 tolerances (exact rational answers)."""
+    from test_weak_anchoring import weak_case
+
+    rng = np.random.default_rng(draw)
+    case = weak_case(rng, int(rng.integers(2, 6)), int(rng.integers(3, 8)))
+    exact = exact_fraction_solution(case)
+    tolerance = 1e-3 * float(np.nanmax(np.abs(exact)))
+    result = solve(case, method="symmetric-sor", tolerance=tolerance, max_sweeps=3000)
+    err = true_error(result, exact)
+    assert result.report["status"] != "converged" or err <= tolerance, (err, result.report["message"])
+
+
+@pytest.mark.parametrize("omega", ["auto", 1.9])
+def test_symmetric_sor_still_converges_on_an_ordinary_plate(omega):
+    """The certificate costs no honest run its convergence: the closed-form linear profile to 1e-6."""
+    case, exact = plate(100.0), linear_profile(100.0)
+    result = solve(case, method="symmetric-sor", omega=omega, tolerance=1e-6)
+    assert result.report["status"] == "converged", result.report["message"]
+    assert true_error(result, exact) <= 1e-6
+
+
+# --- a start far above the answer ---------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("method", ["jacobi", "red-black-sor", "symmetric-sor", "multigrid"])
+def test_a_huge_initial_field_comes_down_to_the_answer(method):
+    """Starting every interior cell at 1e300 (a field saved in other units, say): the sweeps bring it down
+    to the closed-form linear profile; the rounding floor follows the field, not the start, and no
+    warning reaches the user (overflowing estimates used to print a RuntimeWarning, then stall)."""
+    case, exact = plate(100.0), linear_profile(100.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = solve(case, method=method, tolerance=1e-6, initial=np.full(case.codes.shape, 1e300))
+    assert result.report["status"] == "converged", result.report["message"]
+    assert true_error(result, exact) <= 1e-6
+
+
+# --- writes the system refuses: one line, exit 2, nothing written -------------------------------------
+
+
+def write_case(folder: Path) -> Path:
+    img = np.full((8, 8, 3), 255, dtype=np.uint8)
+    img[0, :] = 0
+    img[1:, 0] = (0, 0, 255)
+    img[1:, -1] = (255, 0, 0)
+    Image.fromarray(img, "RGB").save(folder / "plate.png")
+    path = folder / "case.toml"
+    path.write_text(hot_cold_toml("plate.png"), encoding="utf-8")
+    return path
+
+
+def one_line_error(err: str) -> str:
+    assert err.count("\n") == 1 and "error:" in err and "Traceback" not in err, err
+    return err
+
+
+def listing(folder: Path):
+    return sorted(p.name for p in folder.iterdir())
+
+
+def test_a_full_disk_is_one_line_and_leaves_nothing(tmp_path, capsys, monkeypatch):
+    case = write_case(tmp_path)
+    before = listing(tmp_path)
+
+    def full(fd):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "fsync", full)  # every output is flushed to disk before its rename
+    code = main(["solve", str(case), "-q", "--out", str(tmp_path / "f.npy"), "--report", str(tmp_path / "r.json"),
+                 "--history", str(tmp_path / "h.csv")])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert os.strerror(errno.ENOSPC) in one_line_error(err) and "f.npy" in err
+    assert listing(tmp_path) == before  # no output, no temporary file left
+
+
+def test_a_folder_where_no_file_can_be_made_is_one_line(tmp_path, capsys, monkeypatch):
+    case = write_case(tmp_path)
+    before = listing(tmp_path)
+    import tempfile
+
+    def refused(*args, **kwargs):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS))
+
+    monkeypatch.setattr(tempfile, "mkstemp", refused)  # a read-only file system that os.access does not see
+    code = main(["solve", str(case), "-q", "--out", str(tmp_path / "f.npy"), "--report", str(tmp_path / "r.json")])
+    err = capsys.readouterr().err
+    assert code == 2 and os.strerror(errno.EROFS) in one_line_error(err)
+    assert listing(tmp_path) == before
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="needs Linux's /proc")
+def test_an_output_in_a_pseudo_file_system_is_one_line(tmp_path, capsys):
+    """/proc takes no new files, whoever asks (root included): common practice on Linux."""
+    case = write_case(tmp_path)
+    code = main(["solve", str(case), "-q", "--out", "/proc/relaxtui-field.npy", "--report", str(tmp_path / "r.json")])
+    err = capsys.readouterr().err
+    assert code == 2 and "relaxtui-field.npy" in one_line_error(err)
+    assert not (tmp_path / "r.json").exists()  # the set is all or nothing
+
+
+def test_an_unforeseen_system_error_is_one_line(tmp_path, capsys, monkeypatch):
+    """Whatever file operation fails where no check looked (an I/O error reading the case): one line, exit 2."""
+    import relaxtui.commands.info as info
+
+    def broken(args):
+        raise OSError(errno.EIO, os.strerror(errno.EIO), str(args.case))
+
+    monkeypatch.setattr(info, "run", broken)
+    code = main(["info", str(tmp_path / "case.toml")])
+    err = capsys.readouterr().err
+    assert code == 2 and os.strerror(errno.EIO) in one_line_error(err) and "case.toml" in err
