@@ -287,7 +287,10 @@ class DistributedOperator:
         meta["cls"], meta["codes"] = cls.copy(), codes
         if multigrid:
             meta["wide"] = _wide(op, self.bounds, *self.bounds[0])
-        del op, cls  # rank 0 keeps its strip only (and the case's picture)
+        # rank 0 keeps its strip only (and the case's picture); with the v1.1 per-face physics (contacts,
+        # orthotropy, maps, axisymmetry) also the whole operator, whose flows it reads from the gathered field
+        self._whole = op if getattr(case, "per_face_physics", False) else None
+        del op, cls
         self.strip = Strip(comm, meta, threads)
         from relaxtui.parallel import stop
 
@@ -383,6 +386,14 @@ class DistributedOperator:
     def flows(self, u) -> tuple[dict[str, float], float, float]:
         """As :meth:`relaxtui.solver.assembled.Operator.flows`, summed over the strips."""
         self._check_field(u)
+        if self._whole is not None:  # v1.1 face conductances: the single-process flows, on the gathered field
+            from relaxtui.case.model import INTERIOR
+
+            whole, field = self._whole, self.finish(u)
+            w = whole.new_field()
+            inside = whole.kind[whole.codes] == INTERIOR  # the flows read the interior cells' values only
+            whole.view(w)[inside] = field[inside]
+            return whole.flows(w)
         with self.group.collective(FLOWS):
             per_region = self.strip.flows() * self.depth
         from relaxtui.solver.assembled import flow_balance, region_source_total
@@ -410,6 +421,8 @@ class DistributedOperator:
         from relaxtui.output.report import extremes_and_peak
 
         self._check_field(u)
+        if self._whole is not None:
+            return None  # v1.1 per-face conductivities: the report reads the gathered field (as one process does)
         with self.group.collective(SUMMARY):
             low, high, peak = self.strip.summary(self.case.regions, self.cell_size)
         return extremes_and_peak(self.case, low, high, peak)
