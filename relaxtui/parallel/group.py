@@ -379,9 +379,13 @@ class DistributedOperator:
 
     def field_scale(self, u) -> float:
         """Largest |u| over the interior and fixed cells of the whole grid (the driver's scale)."""
+        from relaxtui.case.model import FIXED, INTERIOR
+
         self._check_field(u)
         with self.group.collective(SCALE):
-            return self.strip.field_scale()
+            scale = self.strip.field_scale()
+        cells = np.asarray(self.region_cells)[(self.kind == INTERIOR) | (self.kind == FIXED)]
+        return scale if cells.sum() > 0 else 1.0  # no such cell anywhere: 1.0, as in the driver
 
     def flows(self, u) -> tuple[dict[str, float], float, float]:
         """As :meth:`relaxtui.solver.assembled.Operator.flows`, summed over the strips."""

@@ -254,16 +254,18 @@ class Strip:
         return None if out is None else float(out.view(np.float64)[0])
 
     def field_scale(self) -> float | None:
-        """Largest |u| over the interior and fixed cells of all strips (1.0 without such cells, as in the driver)."""
-        mid = self.u[1:-1, 1:-1]
-        kinds = self.kind[self.codes]
-        vals = mid[(kinds == INTERIOR) | (kinds == FIXED)]
-        local = float(np.max(np.abs(vals))) if vals.size else 0.0
+        """Largest |u| over the interior and fixed cells of all strips, on rank 0 (None elsewhere); 0.0 when
+        no strip has such a cell (the caller, which knows the whole grid's region counts, decides then)."""
+        own = self.u[1:-1]  # the working array holds 0 in every other cell of the strip's rows
+        hi, lo = float(own.max()), float(own.min())
+        if math.isfinite(hi) and math.isfinite(lo):
+            local = max(hi, -lo, 0.0)
+        else:  # non-finite cells outside the domain: look at the domain only (as the driver does)
+            kinds = self.kind[self.codes]
+            vals = own[:, 1:-1][(kinds == INTERIOR) | (kinds == FIXED)]
+            local = float(np.max(np.abs(vals))) if vals.size else 0.0
         out = self.reduce_max_bits(np.array([local]).view(np.int64))
-        count = self.reduce_sum(np.array([float(vals.size)]))
-        if out is None:
-            return None
-        return float(out.view(np.float64)[0]) if count[0] > 0 else 1.0
+        return None if out is None else float(out.view(np.float64)[0])
 
     def flows(self) -> np.ndarray | None:
         """Per region, the flow into the domain through its faces summed over all strips (no depth factor)."""
@@ -415,17 +417,22 @@ class Strip:
     # --- compile once --------------------------------------------------------------------------
 
     def warm(self) -> None:
-        """Load (or compile) every kernel a distributed solve calls, on empty ranges. A stop signal skips the
-        rest (:func:`relaxtui.parallel.stop.point` between the kernels; see :func:`~relaxtui.parallel.group.warm_in_turn`)."""
+        """Load (or compile) every kernel this strip's solve calls, on empty ranges: for Jacobi and red-black
+        SOR their sweeps and the Jacobi radius's Lanczos; for multigrid (whose own kernels
+        :func:`relaxtui.parallel.multigrid.warm` loads) the measurements only (loading a kernel from the
+        cache costs 15-20 ms; multigrid never calls the other eleven). A stop signal skips the rest
+        (:func:`relaxtui.parallel.stop.point` between the kernels; see :func:`~relaxtui.parallel.group.warm_in_turn`)."""
         from relaxtui.kernels import halo, measure, spectral
         from relaxtui.parallel.stop import point
 
         u, cls, segs = self.u, self.cls, self.segments
-        halo.jacobi_range(u, u, cls, self.table, *segs, 1.0, 1, 1, 1)
-        halo.jacobi_range_serial(u, u, cls, self.table, *segs, 1.0, 1, 1)
-        halo.colour_range(u, cls, self.table, *segs, 1.0, 0, 1, 1, 1)
-        halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
-        halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
+        relaxation = self.wide is None  # a multigrid strip has its set-up band
+        if relaxation:
+            halo.jacobi_range(u, u, cls, self.table, *segs, 1.0, 1, 1, 1)
+            halo.jacobi_range_serial(u, u, cls, self.table, *segs, 1.0, 1, 1)
+            halo.colour_range(u, cls, self.table, *segs, 1.0, 0, 1, 1, 1)
+            halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
+            halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
         halo.largest_bits(np.zeros(1), 0)
         point()  # a stop signal skips the rest
         measure.flows(self.codes[:0], self.up_codes, self.dn_codes, False, False, u, cls, *segs, self.boundary,
@@ -437,10 +444,11 @@ class Strip:
         cond, inherit = np.zeros(self.kind.shape), np.zeros(self.kind.shape, dtype=np.uint8)
         measure.field_summary(self.codes[:0], self.kind, self.value, cond, inherit, u, 1.0, 1, 0, 0, 1)
         measure.init_field(self.codes[:0], self.kind, self.value, np.zeros((1, 1)), False, 0.0, u)
-        measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
-        point()  # a stop signal skips the rest
-        spectral.start_vector(cls[:0], self.diag, u[:0])
-        spectral.d_dot(u[:0], u[:0], cls[:0], self.diag)
-        spectral.d_orthogonalise(u[:0], u[:0], 0.0, u[:0], 0.0, cls[:0], self.diag)
-        spectral.scale_into(u[:0], 1.0, u[:0])
-        spectral.tridiagonal_extreme(np.zeros(1), np.zeros(1), 1)
+        if relaxation:
+            measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
+            point()  # a stop signal skips the rest
+            spectral.start_vector(cls[:0], self.diag, u[:0])
+            spectral.d_dot(u[:0], u[:0], cls[:0], self.diag)
+            spectral.d_orthogonalise(u[:0], u[:0], 0.0, u[:0], 0.0, cls[:0], self.diag)
+            spectral.scale_into(u[:0], 1.0, u[:0])
+            spectral.tridiagonal_extreme(np.zeros(1), np.zeros(1), 1)
