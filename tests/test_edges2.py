@@ -205,3 +205,25 @@ def test_an_unforeseen_system_error_is_one_line(tmp_path, capsys, monkeypatch):
     code = main(["info", str(tmp_path / "case.toml")])
     err = capsys.readouterr().err
     assert code == 2 and os.strerror(errno.EIO) in one_line_error(err) and "case.toml" in err
+
+
+# --- a field lifted far above its boundary values: the rounding floor follows the field ----------------
+
+
+def test_a_source_lifting_the_field_far_above_its_boundary_sets_the_floor():
+    """12 rows alike of: a fixed cell at 1.0, three cells of k = 1e-4, six of k = 1e4 with a unit source, the
+    image border at the end (insulated). The field rises to 2.1e5 (exact rational arithmetic on one row,
+    the rows being alike between insulated borders); the condition number is about 1e10, so float64
+    resolves about 1e-5 of the field. Multigrid said converged to 1e-7 of it with a true error of 3
+    tolerances: its floor was taken from the boundary's 1.0."""
+    legend = {".": interior("low", 1e-4), "k": interior("high", 1e4, source=1.0), "F": fixed("held", 1.0)}
+    row = "F" + "." * 3 + "k" * 6
+    case = make_case([row] * 12, legend)
+    exact = np.tile(exact_fraction_solution(make_case([row], legend)), (12, 1))
+    for rel in (1e-7, 1e-8):
+        tolerance = rel * float(np.nanmax(np.abs(exact)))
+        result = solve(case, method="multigrid", tolerance=tolerance)
+        err = true_error(result, exact)
+        assert result.report["status"] != "converged" or err <= tolerance, (rel, err, result.report["message"])
+        if result.report["status"] == "stalled":
+            assert result.report["estimated_error"] >= err  # the floor in the estimate covers the true error

@@ -237,6 +237,7 @@ def attach(rule, run) -> None:
         raise CaseError(f"{_label(run.case)}: the case's numbers (conductivities, coefficients, sources, fluxes "
                         "and the cell size together) exceed the range of float64; rescale the units")
     rule.field_residual = lambda: op.residual(run._u)
+    rule.field_magnitude = run._field_magnitude
     rule.inverse_norm = lambda: inverse_norm(run)
     rule.tighter_inverse_norm = lambda: tighter_inverse_norm(run)
     rule.floor_cells = int(op.unknowns)
