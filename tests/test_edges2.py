@@ -227,3 +227,39 @@ def test_a_source_lifting_the_field_far_above_its_boundary_sets_the_floor():
         assert result.report["status"] != "converged" or err <= tolerance, (rel, err, result.report["message"])
         if result.report["status"] == "stalled":
             assert result.report["estimated_error"] >= err  # the floor in the estimate covers the true error
+
+
+# --- outputs of render, sweep and init never replace an input -----------------------------------------
+
+
+@pytest.mark.parametrize("victim", ["case.toml", "plate.png", "f.npy"])
+def test_render_never_writes_over_an_input(tmp_path, capsys, monkeypatch, victim):
+    """`relaxtui render f.npy --case case.toml -o case.toml` wrote a PNG over the case file (exit 0)."""
+    monkeypatch.chdir(tmp_path)
+    write_case(tmp_path)
+    np.save("f.npy", np.zeros((8, 8)))
+    before = {p: Path(p).read_bytes() for p in ("case.toml", "plate.png", "f.npy")}
+    code = main(["render", "f.npy", "--case", "case.toml", "-o", victim])
+    err = capsys.readouterr().err
+    assert code == 2 and "overwrite" in one_line_error(err)
+    assert {p: Path(p).read_bytes() for p in before} == before
+
+
+@pytest.mark.parametrize("victim", ["case.toml", "./plate.png"])
+def test_sweep_never_writes_its_table_over_an_input(tmp_path, capsys, monkeypatch, victim):
+    """`relaxtui sweep case.toml --csv case.toml` wrote the table over the case file (exit 0)."""
+    monkeypatch.chdir(tmp_path)
+    write_case(tmp_path)
+    before = listing(tmp_path), Path("case.toml").read_bytes(), Path("plate.png").read_bytes()
+    code = main(["sweep", "case.toml", "--omega", "1.1:1.3:0.1", "-q", "--csv", victim])
+    err = capsys.readouterr().err
+    assert code == 2 and "overwrite" in one_line_error(err)
+    assert (listing(tmp_path), Path("case.toml").read_bytes(), Path("plate.png").read_bytes()) == before
+
+
+def test_init_on_a_folder_is_one_line(tmp_path, capsys):
+    """`relaxtui init .` raised a ValueError traceback (a folder has no name to give the case file)."""
+    code = main(["init", str(tmp_path)])
+    err = capsys.readouterr().err
+    assert code == 2 and "folder" in one_line_error(err)
+    assert listing(tmp_path) == []

@@ -140,6 +140,8 @@ def starter_text(mask_ref: str, decoded: picture.Decoded, mask_name: str) -> tup
 def run(args) -> int:
     """Handle ``relaxtui init``; returns the exit code."""
     mask = Path(args.mask)
+    if mask.is_dir():  # `relaxtui init .`: no picture name to derive the case file's from
+        raise OutputError(f"{str(mask)!r} is a folder, not a PNG picture")
     target = Path(args.output) if getattr(args, "output", None) else mask.with_suffix(".toml")
     if target.resolve() == mask.resolve():
         raise OutputError(f"refusing to write the case over the picture {str(mask)!r}; give -o CASE.toml")

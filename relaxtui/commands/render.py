@@ -16,7 +16,11 @@ def run(args) -> int:
 
     case = load_case(args.case)
     from relaxtui.case.picture import require_regular_file
-    from relaxtui.commands.solve import warn_if_mismatched
+    from relaxtui.commands.solve import check_output_set, warn_if_mismatched
+
+    # the picture never replaces an input: `-o case.toml` used to write a PNG over the case file
+    check_output_set({"picture": args.output}, {"case file": args.case, "picture of the case": case.mask_path,
+                                                "field": args.field})
     from relaxtui.errors import CaseError, UsageError
 
     try:

@@ -78,6 +78,10 @@ def run(args) -> int:
     # the memory check for the most demanding method of the table (multigrid needs the most per cell)
     heaviest = "multigrid" if any(m == "multigrid" for m, _ in settings) else settings[0][0]
     case = load_case(args.case, method=heaviest, precision=getattr(args, "precision", None))
+    if args.csv:  # the table never replaces an input (`--csv case.toml` used to write the table over the case file)
+        from relaxtui.commands.solve import check_output_set
+
+        check_output_set({"table": args.csv}, {"case file": args.case, "picture": case.mask_path})
     # validate every setting before the first solve
     for method, w in settings:
         Run(case, method=method, omega=w, tolerance=args.tolerance, max_sweeps=args.max_sweeps, time_limit=args.time_limit,
