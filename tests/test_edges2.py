@@ -257,9 +257,10 @@ def test_sweep_never_writes_its_table_over_an_input(tmp_path, capsys, monkeypatc
     assert (listing(tmp_path), Path("case.toml").read_bytes(), Path("plate.png").read_bytes()) == before
 
 
-def test_init_on_a_folder_is_one_line(tmp_path, capsys):
+def test_init_on_a_folder_is_one_line(tmp_path, capsys, monkeypatch):
     """`relaxtui init .` raised a ValueError traceback (a folder has no name to give the case file)."""
-    code = main(["init", str(tmp_path)])
+    monkeypatch.chdir(tmp_path)
+    code = main(["init", "."])
     err = capsys.readouterr().err
     assert code == 2 and "folder" in one_line_error(err)
     assert listing(tmp_path) == []
