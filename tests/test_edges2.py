@@ -264,3 +264,20 @@ def test_init_on_a_folder_is_one_line(tmp_path, capsys, monkeypatch):
     err = capsys.readouterr().err
     assert code == 2 and "folder" in one_line_error(err)
     assert listing(tmp_path) == []
+
+
+def test_an_unconverged_message_never_claims_an_estimate_above_the_tolerance_it_is_below():
+    """A run stopped by its sweep limit with an estimate under the tolerance that was not trusted (an unsettled
+    rate) said 'estimated error 0.03 > 0.061' (seen on symmetric SOR before its residual certificate); the
+    words now follow the numbers. The decision is set by hand: the message is a function of it."""
+    from relaxtui.solver import stopping
+    from relaxtui.solver.driver import Run
+
+    run = Run(plate(100.0), method="sor", omega=1.5, tolerance=0.061, max_sweeps=3)
+    while not run.done:
+        run.step(1.0)
+    run.rule.last = stopping.Decision(stopping.SWEEP_LIMIT, 0.03, 0.9, None)
+    message = run._describe(stopping.SWEEP_LIMIT)
+    assert " > " not in message and "0.03" in message and "0.061" in message, message
+    run.rule.last = stopping.Decision(stopping.SWEEP_LIMIT, 0.5, 0.9, None)
+    assert "0.5 > 0.061" in run._describe(stopping.SWEEP_LIMIT)

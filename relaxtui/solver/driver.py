@@ -579,6 +579,11 @@ class Run:
         tol = f"{self.tolerance:.3g}{unit}"
         err = "not yet estimable" if d is None or not math.isfinite(d.estimated_error) else f"{d.estimated_error:.2g}{unit}"
         n = _group(self.rule.sweeps if self.rule else 0)
+        above = f"{err} > {tol}"
+        if d is not None and math.isfinite(d.estimated_error) and d.estimated_error <= self.tolerance:
+            # a run that stops unconverged with an estimate under the tolerance: the estimate was not trusted
+            # (its decay rate had not settled, or the residual certificate refused it), so no ">" is claimed
+            above = f"{err} (not certified; tolerance {tol})"
         if status == stopping.CONVERGED:
             return f"equilibrium reached: estimated error {err} <= {tol} after {n} sweeps"
         if status == stopping.STALLED:
@@ -586,14 +591,14 @@ class Run:
                 return f"stalled after {n} sweeps: {self.rule.reason}"
             if self.rule.at_floor():
                 return (f"stalled after {n} sweeps: the updates are at {self.rule.float_name}'s rounding floor while the "
-                        f"estimated error {err} > {tol} (the tolerance is below what this grid resolves)")
-            return f"stalled after {n} sweeps: no progress over a long window, estimated error {err} > {tol}"
+                        f"estimated error {above} (the tolerance is below what this grid resolves)")
+            return f"stalled after {n} sweeps: no progress over a long window, estimated error {above}"
         if status == stopping.DIVERGED:
             return f"diverged after {n} sweeps at omega {self.omega:.4g}: the field grows without bound"
         if status == stopping.SWEEP_LIMIT:
-            return f"sweep limit {n} reached: estimated error {err} > {tol}"
+            return f"sweep limit {n} reached: estimated error {above}"
         if status == stopping.TIME_LIMIT:
-            return f"time limit {self.time_limit:g} s reached after {n} sweeps: estimated error {err} > {tol}"
+            return f"time limit {self.time_limit:g} s reached after {n} sweeps: estimated error {above}"
         if status == stopping.CANCELLED:
             return f"cancelled after {n} sweeps: estimated error {err} (tolerance {tol})"
         if not self._prepared:
