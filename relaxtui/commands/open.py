@@ -12,8 +12,10 @@ the exit code is the headless solve's for the latest run's status (130 cancelled
 1 any other end; 130 with no run). Further signals are counted and ignored (a hang-up often
 brings two SIGHUPs, the kernel's and the shell's): the wait is at most a chunk of sweeps. The
 save never needs the screen: a terminal that has hung up is replaced by /dev/null first
-(Textual's writes to it would fail), and if the UI still has not come down some seconds after
-the files are written, the process ends itself with the exit code.
+(Textual's writes to it would fail), and if the UI still has not come down a while after the
+files are written (``GONE_GRACE`` seconds with a hung-up terminal, ``UI_GRACE`` with a live
+one it may still be restoring), the process ends itself with the exit code: an output thread
+of Textual's that died on the dead terminal can leave the event loop stuck.
 """
 
 from __future__ import annotations
@@ -25,7 +27,8 @@ from pathlib import Path
 
 from relaxtui.errors import CaseError
 
-UI_GRACE = 10.0  # seconds the saved process waits for the UI to come down before it ends itself
+UI_GRACE = 10.0  # seconds the saved process waits for the UI to restore a live terminal before it ends itself
+GONE_GRACE = 1.0  # the same where the terminal has hung up (there is nothing to restore)
 
 
 def run(args) -> int:
@@ -37,7 +40,7 @@ def run(args) -> int:
     if not path.is_file():
         raise CaseError(f"{args.case}: case file not found")
     from relaxtui.commands.solve import _stop_signals_to
-    from relaxtui.tui.app import RelaxApp
+    from relaxtui.tui.app import RelaxApp, release_resume_signals
 
     wake = threading.Event()
     with _stop_signals_to(wake) as signals:
@@ -57,6 +60,7 @@ def run(args) -> int:
         try:
             app.run()
         finally:
+            release_resume_signals()  # Textual leaves its SIGCONT handler, which needs the ended event loop
             outcome = saver.close()  # waits for a save under way
     if outcome is None:
         return 0
@@ -89,15 +93,15 @@ class _StopSaver(threading.Thread):
         from relaxtui.tui.worker import save_on_signal
 
         self.signals.writing = True  # from here on a signal is only counted
-        _leave_hung_up_terminal()
+        gone = _leave_hung_up_terminal()
         try:
-            self.outcome = save_on_signal(self.session, self.signals, Path.cwd())
+            self.outcome = save_on_signal(self.session, self.signals, Path("."))  # the export's relative names
         except Exception:  # pragma: no cover - save_on_signal reports each run's failure itself
             self.outcome = ([], EXIT_INTERRUPTED)
         finally:
             self.done.set()
-        _leave_hung_up_terminal()  # a hang-up that came after the signal (the UI is still writing)
-        if not self.ui_closed.wait(UI_GRACE):
+        gone = _leave_hung_up_terminal() or gone  # a hang-up that came after the signal
+        if not self.ui_closed.wait(GONE_GRACE if gone else UI_GRACE):
             # the UI did not come down (its output thread stuck on a dead terminal): every file is
             # written and renamed, so end the process here
             os._exit(self.outcome[1])
@@ -115,9 +119,9 @@ class _StopSaver(threading.Thread):
         return self.outcome
 
 
-def _leave_hung_up_terminal() -> None:
+def _leave_hung_up_terminal() -> bool:
     """Point standard input, output and error at /dev/null where they are a terminal that has hung up
-    (a tty whose every call fails with EIO), so that nothing the UI still writes fails."""
+    (a tty whose every call fails with EIO), so that nothing the UI still writes fails; True if one was."""
     import errno
     import stat
     import termios
@@ -134,17 +138,18 @@ def _leave_hung_up_terminal() -> None:
         except OSError:
             continue
     if not dead:
-        return
+        return False
     try:
         null = os.open(os.devnull, os.O_RDWR)
     except OSError:
-        return
+        return True
     for fd in dead:
         try:
             os.dup2(null, fd)
         except OSError:
             pass
     os.close(null)
+    return True
 
 
 def _tell(saved, name: str) -> None:

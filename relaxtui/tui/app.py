@@ -51,6 +51,16 @@ FOCUS_KEYS = {"m": "focus_param('method')", "o": "focus_param('omega')", "t": "f
               "r": "focus_study('scan')", "l": "focus_study('csv')"}
 
 
+def release_resume_signals() -> None:
+    """SIGCONT and SIGTSTP back to their default actions: the UI is leaving, nothing to suspend or resume
+    (main thread only)."""
+    import signal
+
+    for name in ("SIGCONT", "SIGTSTP"):
+        if hasattr(signal, name):
+            signal.signal(getattr(signal, name), signal.SIG_DFL)
+
+
 class RelaxApp(Controls, Refresher, App):
     """Watch and tune steady-state field solves of one case."""
 
@@ -159,6 +169,9 @@ class RelaxApp(Controls, Refresher, App):
 
     def _leave_on_stop_signal(self) -> None:
         if not self._exit_requested and self.stop_requested():
+            # Textual's SIGCONT handler resumes the screen and needs the event loop: one that came after
+            # the loop has ended (a stopped and continued save) would raise in the main thread
+            release_resume_signals()
             self.exit()
 
     async def on_event(self, event) -> None:

@@ -336,7 +336,7 @@ def save_on_signal(session, signals, folder=".") -> tuple[list[Saved], int]:
     from relaxtui.solver.driver import write_outputs
 
     closing = session.close()
-    jobs = []  # (run id, result or None, problem)
+    jobs = []  # (run id, result or None, status, why nothing is written)
     latest_status = closing.latest.status if closing.latest is not None else None
     if closing.active is not None:
         rec, control = closing.active, closing.control
@@ -348,7 +348,8 @@ def save_on_signal(session, signals, folder=".") -> tuple[list[Saved], int]:
             control.ended.wait()
             try:
                 result = control.result if control.result is not None else control.run.result()
-                signals.note(result.report)
+                if closing.active_status != "stopping":  # else the user's x stopped it, not the signal
+                    signals.note(result.report)
                 latest_status = result.report["status"]
                 jobs.append((rec.id, result, latest_status, ""))
             except Exception as exc:  # a run whose worker died: say so, save the others
