@@ -246,3 +246,18 @@ def test_status_and_exit_code_of_each_kind_of_end(small_case, tmp_path, capsys):
     code, report, _, written = run_solve(small_case, tmp_path, capsys, "--max-sweeps", "2")
     assert (code, report["status"], report["sweeps"], written) == (1, "sweep-limit", 2, True)
     assert report["estimated_error"] is None or report["estimated_error"] > report["tolerance"]
+
+
+# --- references.md §9: the automatic omega on the model problem ---------------------------------
+
+
+def test_auto_omega_of_the_model_problem_is_youngs_optimum():
+    # references.md §9: an N x N block in a one-cell fixed frame is the 5-point Dirichlet Laplacian with
+    # h = 1/(N+1), ρ_J = cos(πh) and ω_opt = 2/(1 + sin(πh)) (Young 1971); the report's "auto" omega
+    # comes from a Lanczos estimate of ρ_J, measured 1.3e-9 from ω_opt at N = 31
+    from cases import model_problem
+
+    n = 31
+    report = solve(model_problem(n, hot=1.0), method="red-black-sor", omega="auto", tolerance=1e-8).report
+    assert report["status"] == "converged"
+    assert report["omega"] == pytest.approx(2.0 / (1.0 + math.sin(math.pi / (n + 1))), abs=1e-6)
