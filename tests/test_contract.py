@@ -261,3 +261,33 @@ def test_auto_omega_of_the_model_problem_is_youngs_optimum():
     report = solve(model_problem(n, hot=1.0), method="red-black-sor", omega="auto", tolerance=1e-8).report
     assert report["status"] == "converged"
     assert report["omega"] == pytest.approx(2.0 / (1.0 + math.sin(math.pi / (n + 1))), abs=1e-6)
+
+
+# --- v1.1 (docs/case-format.md, "Coefficient maps"): both maps of a region as .png -------------------
+
+
+def test_two_png_maps_of_one_region_take_their_ranges_as_arrays(tmp_path):
+    # docs/case-format.md: value = map_min + (map_max − map_min) · p / 65535 for grey level p; with both maps
+    # .png, map_min and map_max are [for conductivity_map, for source_map] (checked with plain numpy here)
+    from relaxtui.errors import CaseError
+
+    rows, cols = 4, 5
+    img = np.full((rows, cols, 3), 255, dtype=np.uint8)
+    img[-1, :] = (0, 0, 255)
+    Image.fromarray(img, "RGB").save(tmp_path / "m.png")
+    rng = np.random.default_rng(3)
+    k_grey = rng.integers(0, 65536, (rows, cols)).astype(np.uint16)
+    s_grey = rng.integers(0, 65536, (rows, cols)).astype(np.uint16)
+    Image.fromarray(k_grey).save(tmp_path / "k.png")
+    Image.fromarray(s_grey).save(tmp_path / "s.png")
+    body = ('mask = "m.png"\n' + region_toml("#ffffff", "interior", "slab") +
+            'conductivity_map = "k.png"\nsource_map = "s.png"\nmap_min = [0.5, -2.0]\nmap_max = [4.0, 6.0]\n' +
+            region_toml("#0000ff", "fixed", "sink", value=1.0))
+    (tmp_path / "c.toml").write_text(body, encoding="utf-8")
+    maps = {m.key: m.values for m in load_case(tmp_path / "c.toml").maps}
+    np.testing.assert_allclose(maps["conductivity"], 0.5 + 3.5 * k_grey / 65535.0, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(maps["source"], -2.0 + 8.0 * s_grey / 65535.0, rtol=0, atol=1e-12)
+    # one number for two .png maps is refused at its line
+    (tmp_path / "c.toml").write_text(body.replace("map_min = [0.5, -2.0]", "map_min = 0.5"), encoding="utf-8")
+    with pytest.raises(CaseError, match=r"c\.toml:\d+: .*'map_min'"):
+        load_case(tmp_path / "c.toml")
