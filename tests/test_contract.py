@@ -291,3 +291,21 @@ def test_two_png_maps_of_one_region_take_their_ranges_as_arrays(tmp_path):
     (tmp_path / "c.toml").write_text(body.replace("map_min = [0.5, -2.0]", "map_min = 0.5"), encoding="utf-8")
     with pytest.raises(CaseError, match=r"c\.toml:\d+: .*'map_min'"):
         load_case(tmp_path / "c.toml")
+
+
+def test_an_ill_posed_case_writes_nothing_and_names_the_group(tmp_path, capsys, monkeypatch):
+    # contract: a group of interior cells touching no fixed or convection face is an error naming its size and
+    # one of its cells; "only bad input writes nothing" (exit 2, one line, no traceback: README)
+    img = np.full((4, 6, 3), 255, dtype=np.uint8)
+    img[:, 0] = (0, 0, 255)  # a flux column: it does not anchor the field
+    Image.fromarray(img, "RGB").save(tmp_path / "q.png")
+    (tmp_path / "q.toml").write_text('mask = "q.png"\n' + region_toml("#ffffff", "interior", "plate")
+                                     + region_toml("#0000ff", "flux", "heater", flux=2.0), encoding="utf-8")
+    work = tmp_path / "run"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    code = main(["solve", str(tmp_path / "q.toml")])
+    out, err = capsys.readouterr()
+    assert code == 2 and out == "" and list(work.iterdir()) == []
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert "q.toml" in err and "20 interior cells" in err and "row 0, column 1" in err
