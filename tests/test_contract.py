@@ -309,3 +309,26 @@ def test_an_ill_posed_case_writes_nothing_and_names_the_group(tmp_path, capsys, 
     assert code == 2 and out == "" and list(work.iterdir()) == []
     assert err.count("\n") == 1 and "Traceback" not in err
     assert "q.toml" in err and "20 interior cells" in err and "row 0, column 1" in err
+
+
+def test_the_picture_border_acts_like_outside():
+    # contract, "Region kinds": the image border behaves like `outside`; so a picture and the same picture
+    # framed by outside cells have the same equations: same field, same flows (checked against the
+    # scipy assembly of tests/exact.py too)
+    art = ["..~~....",
+           "........",
+           "..H...b.",
+           "....bbb.",
+           "^^......"]
+    legend = {".": interior("plate", 2.0, source=0.5), "b": interior("insert", 0.3), "H": fixed("pin", 3.0),
+              "~": convection("air", 4.0, -1.0), "^": flux("heater", 0.7), "x": outside("frame")}
+    bare = make_case(art, legend, cell_size=0.1, depth=2.0)
+    framed = make_case(["x" * 10] + ["x" + row + "x" for row in art] + ["x" * 10], legend, cell_size=0.1, depth=2.0)
+    a = solve(bare, method="red-black-sor", omega="auto", tolerance=1e-11)
+    b = solve(framed, method="red-black-sor", omega="auto", tolerance=1e-11)
+    assert a.report["status"] == b.report["status"] == "converged"
+    np.testing.assert_allclose(a.field, b.field[1:-1, 1:-1], rtol=0, atol=1e-10)
+    np.testing.assert_allclose(a.field, exact_solution(bare), rtol=0, atol=1e-10)
+    for name in ("pin", "air", "heater"):
+        assert a.report["flows"][name] == pytest.approx(b.report["flows"][name], rel=1e-8, abs=1e-12)
+    assert b.report["flows"].keys() == a.report["flows"].keys()  # outside regions carry no flow entry
