@@ -332,3 +332,24 @@ def test_the_picture_border_acts_like_outside():
     for name in ("pin", "air", "heater"):
         assert a.report["flows"][name] == pytest.approx(b.report["flows"][name], rel=1e-8, abs=1e-12)
     assert b.report["flows"].keys() == a.report["flows"].keys()  # outside regions carry no flow entry
+
+
+def test_report_geometry_depth_probes_and_precision_keys(small_case, tmp_path, capsys):
+    # docs/case-format.md, v1.1: the report's `geometry` says which geometry was solved, its `depth` is null
+    # for an axisymmetric case, `probes` is {} without probes, `precision` says what the run used
+    code, report, _, _ = run_solve(small_case, tmp_path, capsys)
+    assert code == 0
+    assert (report["geometry"], report["depth"], report["probes"], report["precision"]) == ("planar", 1.0, {}, "double")
+    text = small_case.read_text(encoding="utf-8")
+    axi = tmp_path / "axi.toml"
+    # a probe at x = 2 m, y = 1.5 m: between the centres of columns 3 and 4 and of rows 2 and 3 (6 rows, h = 0.5)
+    axi.write_text('geometry = "axisymmetric"\n' + text + '[[probe]]\nname = "mid"\nx = 2.0\ny = 1.5\n', encoding="utf-8")
+    code, report, _, _ = run_solve(axi, tmp_path, capsys)
+    assert code == 0
+    assert (report["geometry"], report["depth"]) == ("axisymmetric", None)
+    field = np.load(tmp_path / "f.npy")
+    # bilinear between the four centres around the point (docs/case-format.md, "Probes"): column x/h − 1/2 = 3.5,
+    # row rows − y/h − 1/2 = 2.5, so the mean of rows 2-3 and columns 3-4 (plain numpy)
+    assert report["probes"]["mid"] == pytest.approx(float(field[2:4, 3:5].mean()), rel=1e-12)
+    # flows are totals around the axis and still balance (no source): hot in, cold out
+    assert report["flows"]["hot"] == pytest.approx(-report["flows"]["cold"], rel=1e-6)
