@@ -211,18 +211,6 @@ def first_bad_initial(codes, kind, initial):
 
 
 @kernel(inline=True)
-def _exported(codes, kind, value, u, i, j):
-    """The exported value of cell (i, j) (see :func:`export_field`): u, a fixed value, or NaN."""
-    r = codes[i, j]
-    k = kind[r]
-    if k == INTERIOR:
-        return np.float64(u[i + 1, j + 1])
-    if k == FIXED:
-        return value[r]
-    return np.nan
-
-
-@kernel(inline=True)
 def _in_domain(codes, kind, i, j, rows, cols):
     if i < 0 or i >= rows or j < 0 or j >= cols:
         return False
@@ -262,9 +250,29 @@ def _conductivity(codes, kind, cond, inherit, i, j, rows, cols):
     return total / count if count > 0 else np.nan
 
 
+@kernel(inline=True)
+def _exported_at(codes, kind, value, u, i, j, du):
+    """The exported value of cell (i, j) of ``codes`` (see :func:`export_field`: u, a fixed value, or NaN),
+    its u at row i + du of ``u`` (du = 1: the padded layout)."""
+    r = codes[i, j]
+    k = kind[r]
+    if k == INTERIOR:
+        return np.float64(u[i + du, j + 1])
+    if k == FIXED:
+        return value[r]
+    return np.nan
+
+
+@kernel(inline=True)
+def _exported(codes, kind, value, u, i, j):
+    """The exported value of cell (i, j) (see :func:`export_field`): u, a fixed value, or NaN."""
+    return _exported_at(codes, kind, value, u, i, j, 1)
+
+
 @kernel(parallel=True)
-def field_summary(codes, kind, value, cond, inherit, u, h, nblk):
-    """Per row block, the report's extremes and peak flux, read straight from the padded working field.
+def field_summary(codes, kind, value, cond, inherit, u, h, nblk, r0, r1, du):
+    """Per row block of rows [r0, r1) of ``codes``, the report's extremes and peak flux, read straight
+    from the padded working field.
 
     The exported field (:func:`export_field`: u on interior cells, the exact value on fixed ones,
     NaN elsewhere) is never built: each cell's value and its 4 neighbours' are read where needed.
@@ -276,11 +284,19 @@ def field_summary(codes, kind, value, cond, inherit, u, h, nblk):
     finite value; |q| is -1 when it has no finite flux. Within a block the first cell in row-major
     order wins a tie; the caller combines the blocks in order keeping strictly better ones, so the
     result does not depend on ``nblk``.
+
+    The whole grid: ``codes`` (rows, cols), ``u`` padded, r0 = 0, r1 = rows, du = 1. A strip of it
+    (the MPI ranks' field summary): ``codes`` holds the strip's rows and the neighbours' edge rows
+    around them, ``u`` holds cell (i, j) of ``codes`` at row i + du (du = 0 when ``codes`` starts with
+    the neighbour's row, which is ``u``'s halo row 0), and [r0, r1) are the strip's own rows; cells
+    outside ``codes`` are outside the domain, as at the picture's edge. Row indices are ``codes``'.
     """
     rows, cols = codes.shape
     out = np.zeros((nblk, 12))
     for b in prange(nblk):
-        lo, hi = span(b, rows, nblk)
+        lo, hi = span(b, r1 - r0, nblk)
+        lo += r0
+        hi += r0
         found = False
         vmin = np.inf
         vmax = -np.inf
@@ -294,7 +310,7 @@ def field_summary(codes, kind, value, cond, inherit, u, h, nblk):
                 k = kind[r]
                 if k != INTERIOR and k != FIXED:
                     continue
-                v = _exported(codes, kind, value, u, i, j)
+                v = _exported_at(codes, kind, value, u, i, j, du)
                 if np.isfinite(v):
                     if not found or v < vmin:
                         vmin, imin, jmin = v, i, j
@@ -305,10 +321,10 @@ def field_summary(codes, kind, value, cond, inherit, u, h, nblk):
                 has_e = _in_domain(codes, kind, i, j + 1, rows, cols)
                 has_n = _in_domain(codes, kind, i - 1, j, rows, cols)
                 has_s = _in_domain(codes, kind, i + 1, j, rows, cols)
-                vw = _exported(codes, kind, value, u, i, j - 1) if has_w else 0.0
-                ve = _exported(codes, kind, value, u, i, j + 1) if has_e else 0.0
-                vn = _exported(codes, kind, value, u, i - 1, j) if has_n else 0.0
-                vs = _exported(codes, kind, value, u, i + 1, j) if has_s else 0.0
+                vw = _exported_at(codes, kind, value, u, i, j - 1, du) if has_w else 0.0
+                ve = _exported_at(codes, kind, value, u, i, j + 1, du) if has_e else 0.0
+                vn = _exported_at(codes, kind, value, u, i - 1, j, du) if has_n else 0.0
+                vs = _exported_at(codes, kind, value, u, i + 1, j, du) if has_s else 0.0
                 gx = _difference(v, vw, ve, has_w, has_e, h)
                 gy = -_difference(v, vn, vs, has_n, has_s, h)  # increasing row is -y
                 kc = _conductivity(codes, kind, cond, inherit, i, j, rows, cols)

@@ -309,6 +309,37 @@ def test_converged_masked_case_and_demo_agree_with_one_process(tmp_path, capsys)
             assert abs(rp["flows"][name] - flow) <= 1e-3 * scale, name
 
 
+@needs_mpi
+def test_v11_face_physics_flows_and_flux_match_one_process(tmp_path, capsys):
+    # case format v1.1 (contacts, orthotropy): the flows use face conductances that the strips' v1
+    # flows kernel does not know; under mpiexec they are the single-process ones (read on rank 0 from
+    # the gathered field), the same field bit for bit (Jacobi), flux_max from the same per-cell k
+    rows, cols = 17, 13
+    c = np.zeros((rows, cols), dtype=np.uint8)  # 0 plate
+    c[5:12, 3:9] = 1  # insert, orthotropic
+    c[0, :], c[-1, :] = 2, 3  # hot, cold
+    regions = ['name = "plate"\nkind = "interior"\nconductivity = 2.0\nsource = 50.0',
+               'name = "insert"\nkind = "interior"\nconductivity = [0.3, 3.0]',
+               'name = "hot"\nkind = "fixed"\nvalue = 100.0',
+               'name = "cold"\nkind = "fixed"\nvalue = 0.0\nconductivity = 5.0']
+    case = write_case(tmp_path, "faces", c, regions)
+    with case.open("a", encoding="utf-8") as f:
+        f.write('\n[[contact]]\nbetween = ["plate", "cold"]\nresistance = 0.05\n')
+    assert load_case(case).per_face_physics
+    opts = ["--method", "jacobi", "--tolerance", "1e-12", "--max-sweeps", "80", "-q"]
+    assert single(["solve", case, *opts, *outputs(str(tmp_path / "one"))], tmp_path, capsys) == 1
+    code, _, err = mpirun(2, ["solve", case, *opts, *outputs("many")], tmp_path)
+    assert code == 1, err
+    f1, r1, _ = read(tmp_path, "one")
+    fp, rp, _ = read(tmp_path, "many")
+    assert np.array_equal(f1, fp, equal_nan=True)
+    for key in ("min", "max", "min_at", "max_at", "flux_max"):
+        assert rp[key] == r1[key], key
+    for name, flow in r1["flows"].items():
+        assert rp["flows"][name] == pytest.approx(flow, rel=1e-12, abs=1e-12), name
+    assert rp["imbalance"] == pytest.approx(r1["imbalance"], rel=1e-9, abs=1e-12)
+
+
 def comb_case(folder: Path) -> Path:
     """21 x 40 cells: a spine two cells wide from a hot to a cold row, and one full-width tooth on row 9. Cut
     into 3 strips by unknowns it gives [0, 9), [9, 10), [10, 21): the middle strip is the one odd row 9, which
@@ -584,9 +615,9 @@ def test_given_omega_estimate_that_takes_turns_starts_only_when_it_can_finish():
 
 
 @needs_mpi
-def test_strip_summary_over_several_blocks_matches_the_whole_field(tmp_path):
-    # A strip longer than one block of rows (the default block is 256 rows) once failed; blocks of
-    # 4 rows on the 31-row masked case cross the hole, the insert and both fixed edges.
+def test_strip_summary_matches_the_whole_field(tmp_path):
+    # one rank's strip is the whole 31-row masked case (the hole, the insert and both fixed edges);
+    # the summary kernel runs on it in its strip layout, against the numpy extremes and flux
     from mpi4py import MPI
 
     from relaxtui.output.flux import peak_flux
@@ -599,7 +630,7 @@ def test_strip_summary_over_several_blocks_matches_the_whole_field(tmp_path):
     n = 30
     op.sweep(u, "red-black-sor", 1.5, n, np.zeros(n), np.zeros(n))
     field = op.finish(u)
-    low, high, peak = op.strip.summary(case.regions, case.cell_size, block=4)
+    low, high, peak = op.strip.summary(case.regions, case.cell_size)
     ext, flux = extremes(case, field), peak_flux(field, case)
     assert low[0] == ext["min"] and high[0] == ext["max"]
     assert peak[0] == pytest.approx(flux["value"], rel=1e-12) and (peak[3], peak[4]) == (flux["row"], flux["col"])

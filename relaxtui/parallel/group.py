@@ -287,7 +287,10 @@ class DistributedOperator:
         meta["cls"], meta["codes"] = cls.copy(), codes
         if multigrid:
             meta["wide"] = _wide(op, self.bounds, *self.bounds[0])
-        del op, cls  # rank 0 keeps its strip only (and the case's picture)
+        # rank 0 keeps its strip only (and the case's picture); with the v1.1 per-face physics (contacts,
+        # orthotropy, maps, axisymmetry) also the whole operator, whose flows it reads from the gathered field
+        self._whole = op if getattr(case, "per_face_physics", False) else None
+        del op, cls
         self.strip = Strip(comm, meta, threads)
         from relaxtui.parallel import stop
 
@@ -376,13 +379,25 @@ class DistributedOperator:
 
     def field_scale(self, u) -> float:
         """Largest |u| over the interior and fixed cells of the whole grid (the driver's scale)."""
+        from relaxtui.case.model import FIXED, INTERIOR
+
         self._check_field(u)
         with self.group.collective(SCALE):
-            return self.strip.field_scale()
+            scale = self.strip.field_scale()
+        cells = np.asarray(self.region_cells)[(self.kind == INTERIOR) | (self.kind == FIXED)]
+        return scale if cells.sum() > 0 else 1.0  # no such cell anywhere: 1.0, as in the driver
 
     def flows(self, u) -> tuple[dict[str, float], float, float]:
         """As :meth:`relaxtui.solver.assembled.Operator.flows`, summed over the strips."""
         self._check_field(u)
+        if self._whole is not None:  # v1.1 face conductances: the single-process flows, on the gathered field
+            from relaxtui.case.model import INTERIOR
+
+            whole, field = self._whole, self.finish(u)
+            w = whole.new_field()
+            inside = whole.kind[whole.codes] == INTERIOR  # the flows read the interior cells' values only
+            whole.view(w)[inside] = field[inside]
+            return whole.flows(w)
         with self.group.collective(FLOWS):
             per_region = self.strip.flows() * self.depth
         from relaxtui.solver.assembled import flow_balance, region_source_total
@@ -410,6 +425,8 @@ class DistributedOperator:
         from relaxtui.output.report import extremes_and_peak
 
         self._check_field(u)
+        if self._whole is not None:
+            return None  # v1.1 per-face conductivities: the report reads the gathered field (as one process does)
         with self.group.collective(SUMMARY):
             low, high, peak = self.strip.summary(self.case.regions, self.cell_size)
         return extremes_and_peak(self.case, low, high, peak)

@@ -22,7 +22,10 @@ picture of the whole grid (1 B/cell, for the report and pictures),
 assembles the whole operator once before handing out the strips (class
 codes of the whole grid, transient) and gathers the exported field of the
 whole grid (8 B/cell) to write the outputs, one after the other: its peak
-is its strip plus about 9 B/cell of the whole grid.
+is its strip plus about 9 B/cell of the whole grid. A case with the v1.1
+per-face physics (contacts, orthotropy, maps, axisymmetry) also keeps the
+whole assembled operator on rank 0 for the flows (its class codes and
+per-cell conductivities): not counted here.
 """
 
 from __future__ import annotations

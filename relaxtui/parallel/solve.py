@@ -133,7 +133,9 @@ def _lead(comm, group, args, threads: int) -> int:
         with alone():  # the field is gathered: the other ranks sleep until the outputs are written
             written = _write_all(result, args, out, report_path, history_path)
     code = exit_code(result.report["status"])
-    group.stop(code)
-    if not args.quiet:
-        _summary(result, written)
+    try:
+        if not args.quiet:  # before the stop: the other ranks sleep meanwhile instead of spinning in MPI's finalize
+            _summary(result, written)
+    finally:
+        group.stop(code)
     return code

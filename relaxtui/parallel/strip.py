@@ -254,16 +254,18 @@ class Strip:
         return None if out is None else float(out.view(np.float64)[0])
 
     def field_scale(self) -> float | None:
-        """Largest |u| over the interior and fixed cells of all strips (1.0 without such cells, as in the driver)."""
-        mid = self.u[1:-1, 1:-1]
-        kinds = self.kind[self.codes]
-        vals = mid[(kinds == INTERIOR) | (kinds == FIXED)]
-        local = float(np.max(np.abs(vals))) if vals.size else 0.0
+        """Largest |u| over the interior and fixed cells of all strips, on rank 0 (None elsewhere); 0.0 when
+        no strip has such a cell (the caller, which knows the whole grid's region counts, decides then)."""
+        own = self.u[1:-1]  # the working array holds 0 in every other cell of the strip's rows
+        hi, lo = float(own.max()), float(own.min())
+        if math.isfinite(hi) and math.isfinite(lo):
+            local = max(hi, -lo, 0.0)
+        else:  # non-finite cells outside the domain: look at the domain only (as the driver does)
+            kinds = self.kind[self.codes]
+            vals = own[:, 1:-1][(kinds == INTERIOR) | (kinds == FIXED)]
+            local = float(np.max(np.abs(vals))) if vals.size else 0.0
         out = self.reduce_max_bits(np.array([local]).view(np.int64))
-        count = self.reduce_sum(np.array([float(vals.size)]))
-        if out is None:
-            return None
-        return float(out.view(np.float64)[0]) if count[0] > 0 else 1.0
+        return None if out is None else float(out.view(np.float64)[0])
 
     def flows(self) -> np.ndarray | None:
         """Per region, the flow into the domain through its faces summed over all strips (no depth factor)."""
@@ -284,58 +286,35 @@ class Strip:
         vals[mine] = self.u[rows[mine] - self.a + 1, cols[mine] + 1]
         return self.reduce_sum(vals)
 
-    def summary(self, regions, cell_size: float, block: int = 256):
-        """Extremes and peak flux of the exported field, by strips; on rank 0 the whole exported field too.
+    def summary(self, regions, cell_size: float):
+        """Extremes and peak flux of the exported field, by strips (a case without the v1.1 per-face physics).
 
-        Each rank exports its rows into an array with one halo row above and
-        below, trades the edge rows with its neighbours (the flux of an edge
-        row needs the row beyond it) and computes, by blocks of ``block``
-        rows, the cell flux of :func:`relaxtui.output.flux.flux` on a case of
-        those rows plus one on each side: the same differences of the same
-        numbers as on the whole grid. Rank 0 then picks the smallest and
-        largest value and the largest flux magnitude, the first in row-major
-        order on a tie (as :func:`relaxtui.output.report.extremes` and
-        :func:`relaxtui.output.flux.peak_flux` do).
+        Each rank trades the working array's edge rows with its neighbours
+        (the flux of an edge row reads the row beyond it) and runs the
+        single-process kernel (``relaxtui.kernels.measure.field_summary``) on
+        its own rows, with the neighbours' edge rows and their class codes
+        beside them: the same differences of the same numbers as on the whole
+        grid. Rank 0 then picks the smallest and largest value and the largest
+        flux magnitude, the first in row-major order on a tie (as the
+        single-process :meth:`~relaxtui.solver.assembled.Operator.field_summary` does).
 
         Returns on rank 0 ``(minimum, maximum, peak)``: (value, row, col) or
         None for each extreme, and (value, qx, qy, row, col) or None for the
         peak flux; None on the other ranks.
         """
-        from pathlib import Path
-
-        from relaxtui.case.model import Case
         from relaxtui.kernels import measure
-        from relaxtui.output.flux import flux, largest_flux
+        from relaxtui.solver.assembled import FLOW_BLOCKS, combine_summary_blocks, summary_conductivities
 
         n, cols = self.n, self.cols
-        ext = np.empty((n + 2, cols))
-        measure.export_field(self.codes, self.kind, self.value, self.u, ext[1 : n + 1])
-        self.exchange(ext)
-        first = 0 if self.has_up else 1
-        bottom = n + 2 if self.has_dn else n + 1
+        self.exchange(self.u)  # the neighbours' edge rows of the field as it stands
         codes = np.empty((n + 2, cols), dtype=self.codes.dtype)
         codes[0], codes[1 : n + 1], codes[n + 1] = self.up_codes, self.codes, self.dn_codes
-        mine = ext[1 : n + 1]
-        # extremes (an infinite value of a diverged run counts as missing, as in the report)
-        low = high = None
-        finite = np.where(np.isinf(mine), np.nan, mine) if np.isinf(mine).any() else mine
-        if not np.isnan(finite).all():
-            i, j = divmod(int(np.nanargmin(finite)), cols)
-            low = (float(finite[i, j]), self.a + i, j)
-            i, j = divmod(int(np.nanargmax(finite)), cols)
-            high = (float(finite[i, j]), self.a + i, j)
-        # peak flux, block by block
-        peak = None
-        for r0 in range(1, n + 1, block):
-            r1 = min(r0 + block, n + 1)
-            e0, e1 = max(r0 - 1, first), min(r1 + 1, bottom)
-            sub = Case(path=None, mask_path=Path("strip"), regions=regions, codes=codes[e0:e1], cell_size=cell_size)
-            qx, qy = flux(ext[e0:e1], sub)
-            own = slice(r0 - e0, r1 - e0)
-            qx, qy = qx[own], qy[own]
-            top = largest_flux(qx, qy)
-            if top is not None and (peak is None or top[0] > peak[0]):  # strictly larger: the first one wins a tie
-                peak = (*top[:3], self.a + r0 - 1 + top[3], top[4])
+        first = 0 if self.has_up else 1  # codes row first + i sits at u row first + i: du = first
+        bottom = n + 2 if self.has_dn else n + 1
+        cond, inherit = summary_conductivities(self.kind, self.conductivity, self.fixed_conductivity)
+        blocks = measure.field_summary(codes[first:bottom], self.kind, self.value, cond, inherit, self.u, float(cell_size),
+                                       max(1, min(FLOW_BLOCKS, n)), 1 - first, 1 - first + n, first)
+        low, high, peak = combine_summary_blocks(blocks, self.a - (1 - first))
         found = self.comm.gather((low, high, peak), root=0)
         if self.rank != 0:
             return None
@@ -438,17 +417,22 @@ class Strip:
     # --- compile once --------------------------------------------------------------------------
 
     def warm(self) -> None:
-        """Load (or compile) every kernel a distributed solve calls, on empty ranges. A stop signal skips the
-        rest (:func:`relaxtui.parallel.stop.point` between the kernels; see :func:`~relaxtui.parallel.group.warm_in_turn`)."""
+        """Load (or compile) every kernel this strip's solve calls, on empty ranges: for Jacobi and red-black
+        SOR their sweeps and the Jacobi radius's Lanczos; for multigrid (whose own kernels
+        :func:`relaxtui.parallel.multigrid.warm` loads) the measurements only (loading a kernel from the
+        cache costs 15-20 ms; multigrid never calls the other eleven). A stop signal skips the rest
+        (:func:`relaxtui.parallel.stop.point` between the kernels; see :func:`~relaxtui.parallel.group.warm_in_turn`)."""
         from relaxtui.kernels import halo, measure, spectral
         from relaxtui.parallel.stop import point
 
         u, cls, segs = self.u, self.cls, self.segments
-        halo.jacobi_range(u, u, cls, self.table, *segs, 1.0, 1, 1, 1)
-        halo.jacobi_range_serial(u, u, cls, self.table, *segs, 1.0, 1, 1)
-        halo.colour_range(u, cls, self.table, *segs, 1.0, 0, 1, 1, 1)
-        halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
-        halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
+        relaxation = self.wide is None  # a multigrid strip has its set-up band
+        if relaxation:
+            halo.jacobi_range(u, u, cls, self.table, *segs, 1.0, 1, 1, 1)
+            halo.jacobi_range_serial(u, u, cls, self.table, *segs, 1.0, 1, 1)
+            halo.colour_range(u, cls, self.table, *segs, 1.0, 0, 1, 1, 1)
+            halo.colour_range_serial(u, cls, self.table, *segs, 1.0, 0, 1, 1, self.row_tmp)
+            halo.copy_segments(u, u, segs[0], segs[1], segs[2], 1, 1)
         halo.largest_bits(np.zeros(1), 0)
         point()  # a stop signal skips the rest
         measure.flows(self.codes[:0], self.up_codes, self.dn_codes, False, False, u, cls, *segs, self.boundary,
@@ -457,11 +441,14 @@ class Strip:
         measure.residual(u[:2], cls[:2], self.table, *segs, np.zeros((1, 1)), False, 1)
         point()  # a stop signal skips the rest
         measure.export_field(self.codes[:0], self.kind, self.value, u, np.empty((0, self.cols)))
+        cond, inherit = np.zeros(self.kind.shape), np.zeros(self.kind.shape, dtype=np.uint8)
+        measure.field_summary(self.codes[:0], self.kind, self.value, cond, inherit, u, 1.0, 1, 0, 0, 1)
         measure.init_field(self.codes[:0], self.kind, self.value, np.zeros((1, 1)), False, 0.0, u)
-        measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
-        point()  # a stop signal skips the rest
-        spectral.start_vector(cls[:0], self.diag, u[:0])
-        spectral.d_dot(u[:0], u[:0], cls[:0], self.diag)
-        spectral.d_orthogonalise(u[:0], u[:0], 0.0, u[:0], 0.0, cls[:0], self.diag)
-        spectral.scale_into(u[:0], 1.0, u[:0])
-        spectral.tridiagonal_extreme(np.zeros(1), np.zeros(1), 1)
+        if relaxation:
+            measure.jacobi_apply(u[:2], u[:2], cls[:2], self.table, *segs, 1)
+            point()  # a stop signal skips the rest
+            spectral.start_vector(cls[:0], self.diag, u[:0])
+            spectral.d_dot(u[:0], u[:0], cls[:0], self.diag)
+            spectral.d_orthogonalise(u[:0], u[:0], 0.0, u[:0], 0.0, cls[:0], self.diag)
+            spectral.scale_into(u[:0], 1.0, u[:0])
+            spectral.tridiagonal_extreme(np.zeros(1), np.zeros(1), 1)

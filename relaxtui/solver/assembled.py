@@ -66,6 +66,32 @@ def _class_dtype(classes: int):
     return np.uint32
 
 
+def summary_conductivities(kind, conductivity, fixed_conductivity) -> tuple[np.ndarray, np.ndarray]:
+    """Per region, the conductivity the field summary's flux uses (interior: its own; fixed: its declared
+    one, NaN without) and whether a fixed region inherits its interior neighbours' (uint8), for
+    ``relaxtui.kernels.measure.field_summary``."""
+    fixed = kind == FIXED
+    cond = np.where(kind == INTERIOR, conductivity, np.where(fixed & (fixed_conductivity > 0.0), fixed_conductivity, np.nan))
+    inherit = (fixed & ~(fixed_conductivity > 0.0)).astype(np.uint8)
+    return cond, inherit
+
+
+def combine_summary_blocks(blocks, row_offset: int = 0):
+    """(minimum, maximum, peak) from ``field_summary``'s block rows, taken in order and kept only when strictly
+    better (the first cell in row-major order wins a tie): (value, row, col) or None for each extreme,
+    (value, qx, qy, row, col) or None for the peak; ``row_offset`` is added to the rows."""
+    low = high = peak = None
+    for row in blocks:
+        if row[0]:
+            if low is None or row[1] < low[0]:
+                low = (float(row[1]), int(row[2]) + row_offset, int(row[3]))
+            if high is None or row[4] > high[0]:
+                high = (float(row[4]), int(row[5]) + row_offset, int(row[6]))
+        if row[7] >= 0.0 and (peak is None or row[7] > peak[0]):
+            peak = (float(row[7]), float(row[8]), float(row[9]), int(row[10]) + row_offset, int(row[11]))
+    return low, high, peak
+
+
 class Operator:
     """The assembled operator of a :class:`~relaxtui.case.model.Case` (see the module docstring).
 
@@ -433,21 +459,11 @@ class Operator:
         from relaxtui.output.report import extremes_and_peak
 
         rows = self.shape[0]
-        fixed = self.kind == FIXED
-        cond = np.where(self.kind == INTERIOR, self.conductivity,
-                        np.where(fixed & (self.fixed_conductivity > 0.0), self.fixed_conductivity, np.nan))
-        inherit = (fixed & ~(self.fixed_conductivity > 0.0)).astype(np.uint8)
+        cond, inherit = summary_conductivities(self.kind, self.conductivity, self.fixed_conductivity)
         nblk = max(1, min(FLOW_BLOCKS, rows))
-        blocks = measure.field_summary(self.codes, self.kind, self.value, cond, inherit, u, float(self.case.cell_size), nblk)
-        low = high = peak = None
-        for row in blocks:  # in row order, strictly better only: the first cell in row-major order wins a tie
-            if row[0]:
-                if low is None or row[1] < low[0]:
-                    low = (float(row[1]), int(row[2]), int(row[3]))
-                if high is None or row[4] > high[0]:
-                    high = (float(row[4]), int(row[5]), int(row[6]))
-            if row[7] >= 0.0 and (peak is None or row[7] > peak[0]):
-                peak = (float(row[7]), float(row[8]), float(row[9]), int(row[10]), int(row[11]))
+        blocks = measure.field_summary(self.codes, self.kind, self.value, cond, inherit, u, float(self.case.cell_size), nblk,
+                                       0, rows, 1)
+        low, high, peak = combine_summary_blocks(blocks)
         return extremes_and_peak(self.case, low, high, peak)
 
     def jacobi_apply(self, x, out) -> None:
