@@ -209,3 +209,93 @@ def test_field_release_keeps_the_shown_and_the_latest_runs():
     assert recs[0].result.field is not None and recs[2].result.field is not None
     assert recs[1].result.field is None and "released" in recs[1].problem
     assert math.isclose(sum(r.field_bytes for r in recs), 256)
+
+
+def wait_events(events, kind, what: str, limit: float = 120.0) -> None:
+    """Until an event of ``kind`` has been posted (a guard against hanging, not a speed check)."""
+    deadline = time.monotonic() + limit
+    while not any(isinstance(e, kind) for e in events):
+        assert time.monotonic() < deadline, what
+        time.sleep(0.02)
+
+
+def test_a_stop_signal_saves_the_active_run_and_the_unexported_ones(tmp_path):
+    import json
+    import signal
+
+    from relaxtui.commands.solve import _Signals
+
+    loaded = load(tmp_path, n=60, method="jacobi", tolerance=1e-10)
+    session = Session()
+    # run 1: finished (converged to a loose tolerance), never exported -> saved, its status kept
+    rec1, run1 = start(session, loaded, method="red-black-sor", tolerance=1e-3)
+    events: list = []
+    w.solve_loop(rec1.id, run1, session.control, loaded.layout, events.append)
+    drive(session, events)
+    # run 2: finished and exported with the e key -> left alone
+    rec2, run2 = start(session, loaded, method="red-black-sor", tolerance=1e-3)
+    events = []
+    w.solve_loop(rec2.id, run2, session.control, loaded.layout, events.append)
+    drive(session, events)
+    session.mark_exported(rec2.id)
+    # an earlier session's export of run 1 sits at the default names: an unattended save never replaces it
+    (tmp_path / "plate.run1.report.json").write_text("earlier", encoding="utf-8")
+    # run 3: Jacobi to 1e-10 on 60 x 60, paused after one chunk: the signal finds it in progress
+    rec3, run3 = start(session, loaded)
+    session.control.pause()
+    session.control.step_once()
+    events = []
+    t = threading.Thread(target=w.solve_loop, args=(rec3.id, run3, session.control, loaded.layout, events.append),
+                         daemon=True)
+    t.start()
+    wait_events(events, w.Progressed, "one chunk")
+    drive(session, list(events))
+    assert session.in_progress()
+
+    signals = _Signals(threading.Event())
+    signals.handler(signal.SIGHUP, None)  # the first stop signal, as the installed handler would take it
+    saved, code = w.save_on_signal(session, signals, tmp_path)
+    t.join(120)
+    assert not t.is_alive() and session.closing
+    assert code == 130  # the latest run was cancelled: relaxtui solve's "interrupted" (solve.exit_code)
+    by_id = {s.run_id: s for s in saved}
+    assert sorted(by_id) == [1, 3] and [s.run_id for s in saved][0] == 3  # the stopped run first
+    assert (tmp_path / "plate.run1.report.json").read_text(encoding="utf-8") == "earlier"
+    assert {p.name for p in by_id[1].paths} == {"plate.run1-2.field.npy", "plate.run1-2.history.csv",
+                                                  "plate.run1-2.report.json"}
+    assert not list(tmp_path.glob("plate.run2*")) and not list(tmp_path.glob(".*.part"))
+
+    stopped = json.loads((tmp_path / "plate.run3.report.json").read_text(encoding="utf-8"))
+    # the headless wording (relaxtui.commands.solve: "... (stopped by SIGHUP)"), status cancelled
+    assert stopped["status"] == "cancelled" and stopped["message"].endswith(" (stopped by SIGHUP)")
+    field = np.load(tmp_path / "plate.run3.field.npy")
+    assert field.shape == (60, 60) and field.dtype == np.float64
+    # the contract: fixed cells hold their values (the hot top row), interior cells a finite value
+    np.testing.assert_array_equal(field[0, 1:-1], HOT)
+    assert np.isfinite(field[1:-1, 1:-1]).all()
+    rows = (tmp_path / "plate.run3.history.csv").read_text(encoding="utf-8").splitlines()
+    assert rows[0] == "sweep,seconds,residual,estimated_error" and int(rows[-1].split(",")[0]) == stopped["sweeps"] > 0
+
+    kept = json.loads((tmp_path / "plate.run1-2.report.json").read_text(encoding="utf-8"))
+    assert kept["status"] == "converged" and "stopped by" not in kept["message"]
+    # superposition (common practice, see tests/test_tui.py): the centre holds a quarter of the hot value
+    assert abs(centre_mean(np.load(tmp_path / "plate.run1-2.field.npy")) - HOT / 4) <= 2e-3
+
+
+def test_a_stop_signal_while_preparing_writes_nothing_and_starts_no_run(tmp_path):
+    import signal
+
+    from relaxtui.commands.solve import _Signals
+
+    loaded = load(tmp_path)
+    session = Session()
+    rec, run = start(session, loaded)  # never prepared: no worker has taken it up yet
+    signals = _Signals(threading.Event())
+    signals.handler(signal.SIGTERM, None)
+    saved, code = w.save_on_signal(session, signals, tmp_path)
+    assert code == 130 and len(saved) == 1 and not saved[0].paths and "preparing" in saved[0].problem
+    assert session.control.stopping and not list(tmp_path.glob("plate.run*"))
+    # a run begun after the save took its picture is stopped before it sweeps
+    session.active = session.control = None
+    late = session.begin(SimpleNamespace(method="sor", tolerance=1e-3, cancel=lambda: None), "the initial guess", False)
+    assert late.status == "stopping" and session.control.quitting

@@ -1,10 +1,34 @@
-"""``relaxtui open CASE.toml``: the terminal UI."""
+"""``relaxtui open CASE.toml``: the terminal UI.
+
+Stop signals. SIGHUP (the terminal or SSH session went away), SIGTERM (a kill, a batch
+system's stop) and SIGINT sent from outside (``kill -INT``; Ctrl-C in the UI is a key, not
+a signal) are caught by ``relaxtui solve``'s handler (:func:`relaxtui.commands.solve._stop_signals_to`)
+and end the session without losing a run: a thread of this command
+(:class:`_StopSaver`) stops the active run at its worker's next chunk boundary and writes it,
+then every finished run never exported, to the export's default names
+(:func:`relaxtui.tui.worker.save_on_signal`), while the app is told to leave. The report of the
+run the signal stopped says ``cancelled``, "... (stopped by SIGHUP)", as the headless solve's does;
+the exit code is the headless solve's for the latest run's status (130 cancelled, 0 converged,
+1 any other end; 130 with no run). Further signals are counted and ignored (a hang-up often
+brings two SIGHUPs, the kernel's and the shell's): the wait is at most a chunk of sweeps. The
+save never needs the screen: a terminal that has hung up is replaced by /dev/null first
+(Textual's writes to it would fail), and if the UI still has not come down a while after the
+files are written (``GONE_GRACE`` seconds with a hung-up terminal, ``UI_GRACE`` with a live
+one it may still be restoring), the process ends itself with the exit code: an output thread
+of Textual's that died on the dead terminal can leave the event loop stuck.
+"""
 
 from __future__ import annotations
 
+import os
+import sys
+import threading
 from pathlib import Path
 
 from relaxtui.errors import CaseError
+
+UI_GRACE = 10.0  # seconds the saved process waits for the UI to restore a live terminal before it ends itself
+GONE_GRACE = 1.0  # the same where the terminal has hung up (there is nothing to restore)
 
 
 def run(args) -> int:
@@ -15,16 +39,134 @@ def run(args) -> int:
     require_regular_file(path, str(args.case), "case file")  # a folder or FIFO: said so, never a hang
     if not path.is_file():
         raise CaseError(f"{args.case}: case file not found")
-    from relaxtui.tui.app import RelaxApp
+    from relaxtui.commands.solve import _stop_signals_to
+    from relaxtui.tui.app import RelaxApp, release_resume_signals
 
-    app = RelaxApp(
-        path,
-        method=getattr(args, "method", None),
-        omega=getattr(args, "omega", None),
-        tolerance=getattr(args, "tolerance", None),
-        max_sweeps=getattr(args, "max_sweeps", None),
-        precision=getattr(args, "precision", None),
-        run=getattr(args, "run", False),
-    )
-    app.run()
-    return 0
+    wake = threading.Event()
+    with _stop_signals_to(wake) as signals:
+        signals.interrupt_on_repeat = False  # a repeat never cuts the save short (see the module docstring)
+        app = RelaxApp(
+            path,
+            method=getattr(args, "method", None),
+            omega=getattr(args, "omega", None),
+            tolerance=getattr(args, "tolerance", None),
+            max_sweeps=getattr(args, "max_sweeps", None),
+            precision=getattr(args, "precision", None),
+            run=getattr(args, "run", False),
+            stop_requested=wake.is_set,
+        )
+        saver = _StopSaver(app.session, signals)
+        saver.start()
+        try:
+            app.run()
+        finally:
+            release_resume_signals()  # Textual leaves its SIGCONT handler, which needs the ended event loop
+            outcome = saver.close()  # waits for a save under way
+    if outcome is None:
+        return 0
+    saved, code = outcome
+    _tell(saved, signals.name)
+    return code
+
+
+class _StopSaver(threading.Thread):
+    """Waits for the first stop signal, then saves the session's runs (see the module docstring)."""
+
+    def __init__(self, session, signals) -> None:
+        super().__init__(name="relaxtui-stop-saver", daemon=True)
+        self.session = session
+        self.signals = signals
+        self._lock = threading.Lock()
+        self._closed = False
+        self._saving = False
+        self.done = threading.Event()
+        self.ui_closed = threading.Event()
+        self.outcome = None
+
+    def run(self) -> None:
+        self.signals.event.wait()
+        with self._lock:
+            if self._closed:  # the UI ended first (q): nothing to save
+                return
+            self._saving = True
+        from relaxtui.commands.solve import EXIT_INTERRUPTED
+        from relaxtui.tui.worker import save_on_signal
+
+        self.signals.writing = True  # from here on a signal is only counted
+        gone = _leave_hung_up_terminal()
+        try:
+            self.outcome = save_on_signal(self.session, self.signals, Path("."))  # the export's relative names
+        except Exception:  # pragma: no cover - save_on_signal reports each run's failure itself
+            self.outcome = ([], EXIT_INTERRUPTED)
+        finally:
+            self.done.set()
+        gone = _leave_hung_up_terminal() or gone  # a hang-up that came after the signal
+        if not self.ui_closed.wait(GONE_GRACE if gone else UI_GRACE):
+            # the UI did not come down (its output thread stuck on a dead terminal): every file is
+            # written and renamed, so end the process here
+            os._exit(self.outcome[1])
+
+    def close(self):
+        """The UI has ended: returns ``(saved, exit code)`` once a save under way is done, else None."""
+        self.ui_closed.set()
+        with self._lock:
+            self._closed = True
+            saving = self._saving
+        if not saving:
+            self.signals.event.set()  # lets the thread end (a later signal is then only counted)
+            return None
+        self.done.wait()
+        return self.outcome
+
+
+def _leave_hung_up_terminal() -> bool:
+    """Point standard input, output and error at /dev/null where they are a terminal that has hung up
+    (a tty whose every call fails with EIO), so that nothing the UI still writes fails; True if one was."""
+    import errno
+    import stat
+    import termios
+
+    dead = []
+    for fd in (0, 1, 2):
+        try:
+            if not stat.S_ISCHR(os.fstat(fd).st_mode):
+                continue
+            termios.tcgetattr(fd)
+        except termios.error as exc:
+            if exc.args and exc.args[0] == errno.EIO:
+                dead.append(fd)
+        except OSError:
+            continue
+    if not dead:
+        return False
+    try:
+        null = os.open(os.devnull, os.O_RDWR)
+    except OSError:
+        return True
+    for fd in dead:
+        try:
+            os.dup2(null, fd)
+        except OSError:
+            pass
+    os.close(null)
+    return True
+
+
+def _tell(saved, name: str) -> None:
+    """One line per run on stderr (where a terminal is left to read it; a failing write is ignored)."""
+    from relaxtui.errors import printable
+
+    lines = []
+    for s in saved:
+        if s.paths:
+            lines.append(f"relaxtui: {name}: run #{s.run_id} ({s.status}) saved to "
+                         + ", ".join(printable(str(p)) for p in s.paths))
+        else:
+            lines.append(f"relaxtui: {name}: run #{s.run_id} ({s.status}): {printable(s.problem)}")
+    if not saved:
+        lines.append(f"relaxtui: {name}: no run to save")
+    try:
+        sys.stderr.write("\n".join(lines) + "\n")
+        sys.stderr.flush()
+    except (OSError, ValueError):
+        pass

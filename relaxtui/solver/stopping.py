@@ -74,6 +74,10 @@ FLOOR_ULPS_SINGLE = 16.0
 STALL_MIN_WINDOW = 500  # sweeps without a new smallest update before "stalled"
 GROWTH_LIMIT = 1e6  # sustained growth by this factor over the best update is divergence
 _EPS = float(np.finfo(float).eps)
+# Above this condition number a stalled run's reason calls the system near-singular (it costs float64
+# six of its sixteen digits: common practice); below it, the tolerance is simply finer than the field's
+# magnitude allows.
+NEAR_SINGULAR_KAPPA = 1e6
 
 
 @dataclass(frozen=True)
@@ -407,10 +411,15 @@ class StoppingRule:
 
     def _floor_reason(self, inv: float, how: str, floor: float) -> str:
         kappa = f"{2.0 * inv:.3g}" if math.isfinite(inv) else "infinite (singular to float64)"
+        if self.eps > _EPS:
+            why = "(a float32 field keeps about 7 digits: use double precision)"
+        elif not math.isfinite(inv) or 2.0 * inv >= NEAR_SINGULAR_KAPPA:
+            why = "(near-singular: the field is held only weakly by its fixed or convection faces)"
+        else:  # a well-conditioned system: the tolerance is below float64's resolution of the field's values
+            why = f"(the tolerance is finer than {self.float_name} resolves in values of size {self.scale:.3g})"
         return (f"{self.float_name} cannot certify the tolerance {self.tolerance:.3g} here: the system's condition number is "
                 f"about {kappa} (norm of the inverse {how}), so rounding alone may leave an error of about "
-                f"{floor:.3g} " + ("(near-singular: the field is held only weakly by its fixed or convection faces)"
-                                   if self.eps <= _EPS else "(a float32 field keeps about 7 digits: use double precision)"))
+                f"{floor:.3g} {why}")
 
     def _status(self, est: Estimate, seconds: float, cancelled: bool) -> str | None:
         n = self._n

@@ -5,6 +5,11 @@ solve worker's loop in :mod:`relaxtui.tui.worker` (both without Textual); the
 app turns keys into session transitions, worker events into panel updates
 (:mod:`relaxtui.tui.refresh`), and owns the worker threads. Solve and load
 threads are daemon threads: quitting never waits for a preparation or a chunk.
+
+A stop signal (SIGHUP, SIGTERM, SIGINT: see :mod:`relaxtui.commands.open`) is not the
+app's business beyond leaving: ``stop_requested()`` turns true, the app exits at its next
+look (every ``STOP_POLL`` seconds) and starts no new run meanwhile, while a thread of the
+command saves the runs without the screen (:func:`relaxtui.tui.worker.save_on_signal`).
 """
 
 from __future__ import annotations
@@ -36,6 +41,7 @@ from relaxtui.tui.status import StatusStrip
 from relaxtui.tui.timing import TimingPanel
 
 PLOT_INTERVAL = 1.0  # seconds between redraws of the history plot while running
+STOP_POLL = 0.1  # seconds between looks at a stop signal's request
 WIDE = (120, 34)  # columns and rows from which every panel is shown at once
 PANELS = ("field", "history", "runs", "omega")
 # Keys that move the focus into a field: run when read (not after the keys queued behind them),
@@ -43,6 +49,16 @@ PANELS = ("field", "history", "runs", "omega")
 FOCUS_KEYS = {"m": "focus_param('method')", "o": "focus_param('omega')", "t": "focus_param('tolerance')",
               "p": "focus_param('precision')",
               "r": "focus_study('scan')", "l": "focus_study('csv')"}
+
+
+def release_resume_signals() -> None:
+    """SIGCONT and SIGTSTP back to their default actions: the UI is leaving, nothing to suspend or resume
+    (main thread only)."""
+    import signal
+
+    for name in ("SIGCONT", "SIGTSTP"):
+        if hasattr(signal, name):
+            signal.signal(getattr(signal, name), signal.SIG_DFL)
 
 
 class RelaxApp(Controls, Refresher, App):
@@ -72,8 +88,9 @@ class RelaxApp(Controls, Refresher, App):
     )
 
     def __init__(self, case_path, *, method=None, omega=None, tolerance=None, max_sweeps=None, precision=None,
-                 run=False) -> None:
+                 run=False, stop_requested=None) -> None:
         super().__init__()
+        self.stop_requested = stop_requested  # callable: a stop signal has come (the command saves the runs)
         self.case_path = Path(case_path)
         self.cli = {"method": method, "omega": omega, "tolerance": tolerance, "max_sweeps": max_sweeps,
                     "precision": precision}
@@ -146,7 +163,16 @@ class RelaxApp(Controls, Refresher, App):
         self.main.query_one(HistoryPanel).show(None)
         self.main.query_one(FieldView).focus()
         self.set_interval(PLOT_INTERVAL, self.refresh_plot)
+        if self.stop_requested is not None:
+            self.set_interval(STOP_POLL, self._leave_on_stop_signal)
         self._thread(w.load_case, self.case_path, self._post)
+
+    def _leave_on_stop_signal(self) -> None:
+        if not self._exit_requested and self.stop_requested():
+            # Textual's SIGCONT handler resumes the screen and needs the event loop: one that came after
+            # the loop has ended (a stopped and continued save) would raise in the main thread
+            release_resume_signals()
+            self.exit()
 
     async def on_event(self, event) -> None:
         if (isinstance(event, events.Key) and not event.is_forwarded and event.key in FOCUS_KEYS
@@ -220,7 +246,9 @@ class RelaxApp(Controls, Refresher, App):
 
     # -- starting runs --------------------------------------------------------------------------
     def _ready_for_run(self) -> bool:
-        if self.phase == "loading":
+        if self.session.closing:
+            self._refuse("a stop signal came: the runs are being saved and the program ends")
+        elif self.phase == "loading":
             self._refuse("the case is still loading")
         elif self.phase == "load-failed":
             self._refuse(f"the case could not be loaded: {self.problem}")
@@ -319,6 +347,7 @@ class RelaxApp(Controls, Refresher, App):
             self._refuse(f"export failed: {ev.text}")
             return
         self._ok()
+        self.session.mark_exported(ev.run_id)
         self.last_export = list(ev.paths)
         self._tell(f"wrote {', '.join(str(p) for p in ev.paths)}", title="exported", timeout=8)
 

@@ -3,18 +3,15 @@
 The default names are the ones ``relaxtui solve`` writes for the case
 (``<case>.field.npy``, ``<case>.report.json``, ``<case>.history.csv``) with the
 run number added (``<case>.run2.field.npy``, ...), so that two runs of one
-session never overwrite each other.
+session never overwrite each other. A stop signal (SIGHUP, SIGTERM, SIGINT) writes every
+run not exported yet to these names (:func:`relaxtui.tui.worker.save_on_signal`).
 """
 
 from __future__ import annotations
 
 from relaxtui.tui import worker as w
 from relaxtui.tui.dialogs import ExportScreen
-
-
-def default_names(case_name: str, run_id: int) -> dict[str, str]:
-    base = f"{case_name}.run{run_id}"
-    return {"out": f"{base}.field.npy", "report": f"{base}.report.json", "history": f"{base}.history.csv"}
+from relaxtui.tui.worker import default_names
 
 
 def ask_export(app) -> None:
@@ -36,6 +33,6 @@ def ask_export(app) -> None:
 
     def done(paths):
         if paths:
-            app._thread(w.export, rec.result, paths, app._post)
+            app._thread(w.export, rec.result, paths, app._post, rec.id)
 
     app.push_screen(ExportScreen(f"run #{rec.id}", default_names(app.case.name, rec.id), check), done)

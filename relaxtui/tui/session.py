@@ -12,7 +12,10 @@ Nothing here imports Textual: the app routes keys and worker events to a
   built) and then the run's final status (``converged``, ``cancelled``, ...) or
   ``failed``;
 * :class:`Session` -- the runs of one case, which one is active and which one is
-  shown, and the transitions between states.
+  shown, and the transitions between states. A stop signal's save
+  (:func:`relaxtui.tui.worker.save_on_signal`) runs in a thread of its own: it
+  takes its picture of the session with :meth:`Session.close` under the
+  session's lock, which the transitions that change what it reads hold too.
 """
 
 from __future__ import annotations
@@ -46,6 +49,8 @@ class SolveControl:
         self.stopping = False
         self.quitting = False
         self.run = None  # the Run, for cancel() (thread-safe) from the UI thread
+        self.ended = threading.Event()  # set by the worker when its loop has returned, however it ended
+        self.result = None  # the SolveResult the worker built (set before it posts Finished)
 
     def _poke(self) -> None:
         self.wake.set()
@@ -212,6 +217,7 @@ class RunRecord:
         self.omega_changes: list[int] = [0]
         self._last_omega: float | None = None
         self.result = None  # SolveResult once finished
+        self.exported = False  # written by the export (e) at least once: a stop signal's save skips it
         self.run = None  # the finished Run (kept for the latest run only: "continue" reuses its working array)
         self.frame = None
         self.frames: dict[str, object] = {}  # the latest frame per field view
@@ -287,6 +293,18 @@ class RunRecord:
         return 0 if f is None else int(f.nbytes)
 
 
+@dataclass(frozen=True)
+class Closing:
+    """What :meth:`Session.close` found: the active run (its state then, its control) and the
+    finished runs whose results were never exported, oldest first; ``latest`` is the session's last run."""
+
+    active: RunRecord | None
+    active_status: str
+    control: SolveControl | None
+    finished: list
+    latest: RunRecord | None
+
+
 class Session:
     """The runs of one case: which one sweeps (``active``), which one is shown (``selected``)."""
 
@@ -296,6 +314,10 @@ class Session:
         self.control: SolveControl | None = None
         self.selected: int | None = None
         self.field_budget = field_budget
+        # held by the transitions a stop signal's save reads (begin, finished, failed, exported) and by
+        # close(), which that save calls from its own thread
+        self.lock = threading.Lock()
+        self.closing = False  # a stop signal is saving the runs: no new run may start
 
     # -- looking up -------------------------------------------------------------
     def record(self, run_id: int | None) -> RunRecord | None:
@@ -320,15 +342,19 @@ class Session:
               source: RunRecord | None = None, view: str = "solution") -> RunRecord:
         if self.active is not None:
             raise RuntimeError("a run is already active")
-        rec = RunRecord(len(self.records) + 1, run, start, omega_auto)
-        rec.source = source
-        self.records.append(rec)
-        control = SolveControl(viewport, paused=paused, view=view)
-        if one_step:
-            control.step_once()
-        control.run = run
-        self.active, self.control = rec, control
-        self.selected = rec.id
+        with self.lock:
+            rec = RunRecord(len(self.records) + 1, run, start, omega_auto)
+            rec.source = source
+            self.records.append(rec)
+            control = SolveControl(viewport, paused=paused, view=view)
+            if one_step:
+                control.step_once()
+            control.run = run
+            self.active, self.control = rec, control
+            self.selected = rec.id
+            if self.closing:  # begun as a stop signal's save took its picture: it ends before it sweeps
+                control.stop(quitting=True)
+                rec.status = "stopping"
         return rec
 
     def preparing(self, run_id: int, text: str) -> RunRecord | None:
@@ -374,27 +400,49 @@ class Session:
         rec = self.record(run_id)
         if rec is None:
             return None
-        rec.result = result
-        rec.run = run
-        rec.progress = run.progress
-        rec.status = result.report.get("status") or run.status
-        for other in self.records:
-            if other is not rec:
-                other.run = None  # only the latest run keeps its working array
-        self.release_fields()
-        if rec is self.active:
-            self.active, self.control = None, None
+        with self.lock:
+            rec.result = result
+            rec.run = run
+            rec.progress = run.progress
+            rec.status = result.report.get("status") or run.status
+            for other in self.records:
+                if other is not rec:
+                    other.run = None  # only the latest run keeps its working array
+            self.release_fields()
+            if rec is self.active:
+                self.active, self.control = None, None
         return rec
 
     def failed(self, run_id: int, text: str) -> RunRecord | None:
         rec = self.record(run_id)
         if rec is None:
             return None
-        rec.status = "failed"
-        rec.problem = text
-        if rec is self.active:
-            self.active, self.control = None, None
+        with self.lock:
+            rec.status = "failed"
+            rec.problem = text
+            if rec is self.active:
+                self.active, self.control = None, None
         return rec
+
+    def mark_exported(self, run_id: int | None) -> None:
+        """The export wrote run ``run_id``'s files: a stop signal's save leaves it alone."""
+        rec = self.record(run_id)
+        if rec is not None:
+            with self.lock:
+                rec.exported = True
+
+    def close(self) -> "Closing":
+        """Refuse new runs from now on and say what a stop signal's save has to write (thread-safe)."""
+        with self.lock:
+            self.closing = True
+            active = self.active
+            return Closing(
+                active=active,
+                active_status="" if active is None else active.status,
+                control=None if active is None else self.control,
+                finished=[r for r in self.records if r is not active and r.result is not None and not r.exported],
+                latest=self.records[-1] if self.records else None,
+            )
 
     def toggle_pause(self) -> str:
         """Pause or resume the active run; returns its state afterwards."""

@@ -18,8 +18,10 @@ message; the tests collect the events in a list).
 from __future__ import annotations
 
 import math
+import os
 import time
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 
@@ -146,7 +148,17 @@ class Snapshots:
 
 
 def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False) -> None:
-    """Prepare and advance ``run`` until it ends, posting events; see the module docstring."""
+    """Prepare and advance ``run`` until it ends, posting events; see the module docstring.
+
+    ``control.ended`` is set when the loop returns, however it returns (a stop signal's save
+    waits for it before it reads the run)."""
+    try:
+        _solve_loop(run_id, run, control, layout, post, cancelled)
+    finally:
+        control.ended.set()
+
+
+def _solve_loop(run_id: int, run, control, layout, post, cancelled) -> None:
     t0 = time.perf_counter()
     last = [-math.inf, ""]
 
@@ -214,6 +226,7 @@ def solve_loop(run_id: int, run, control, layout, post, cancelled=lambda: False)
     if control.quitting or cancelled():
         return
     result = run.result()
+    control.result = result  # before the post: a stop signal's save that comes now takes this one
     post(Finished(run_id, result, run, snaps.update))
 
 
@@ -238,6 +251,7 @@ class LoadFailed:
 class Exported:
     paths: list | None
     text: str = ""
+    run_id: int | None = None
 
 
 def load_case(path, post) -> None:
@@ -258,16 +272,108 @@ def load_case(path, post) -> None:
     post(Loaded(case, operator, layout, initial, time.perf_counter() - t0))
 
 
-def export(result, paths: dict, post) -> None:
+def export(result, paths: dict, post, run_id: int | None = None) -> None:
     """Write a finished run's field, report and history; post :class:`Exported`."""
     from relaxtui.solver.driver import write_outputs
 
     try:
         written = write_outputs(result, out=paths.get("out"), report=paths.get("report"), history=paths.get("history"))
     except (RelaxError, OSError) as exc:
-        post(Exported(None, str(exc)))
+        post(Exported(None, str(exc), run_id))
         return
-    post(Exported(written))
+    post(Exported(written, "", run_id))
+
+
+def default_names(case_name: str, run_id) -> dict[str, str]:
+    """The export's default file names of run ``run_id`` (``<case>.run<id>.field.npy``, ...)."""
+    base = f"{case_name}.run{run_id}"
+    return {"out": f"{base}.field.npy", "report": f"{base}.report.json", "history": f"{base}.history.csv"}
+
+
+# -- a stop signal's save ------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Saved:
+    """What a stop signal's save did with one run: the files written, or why there are none."""
+
+    run_id: int
+    status: str
+    paths: tuple = ()
+    problem: str = ""
+
+
+def free_names(case_name: str, run_id: int, folder=".") -> dict[str, Path]:
+    """The export's default names of a run in ``folder``; when a file of that name is already there
+    (an earlier session's export), ``<case>.run<id>-2...``, ``-3``, ...: an unattended save never
+    replaces a file."""
+    folder = Path(folder)
+    k = 1
+    while True:
+        names = default_names(case_name, run_id if k == 1 else f"{run_id}-{k}")
+        paths = {key: folder / name for key, name in names.items()}
+        if not any(os.path.lexists(p) for p in paths.values()):
+            return paths
+        k += 1
+
+
+def save_on_signal(session, signals, folder=".") -> tuple[list[Saved], int]:
+    """Write what a stop signal would otherwise lose; returns what was saved and the exit code.
+
+    ``signals`` is the stop-signal state of :func:`relaxtui.commands.solve._stop_signals_to` (its
+    ``note`` names the signal in a cancelled report's message, as ``relaxtui solve`` does). The
+    session is closed to new runs; the active run is stopped at its worker's next chunk boundary
+    and written first (its report: status ``cancelled``, "... (stopped by SIGHUP)"; a run that
+    reached its end in that chunk keeps its status), then every finished run whose results were
+    never exported. Each goes to the export's default names in ``folder`` (:func:`free_names`),
+    as one output set through relaxtui.output.atomic. A run still preparing has swept nothing and
+    is not waited for; a run whose field was released to save memory cannot be written whole and
+    is skipped (the export refuses it too). The exit code is ``relaxtui solve``'s for the status
+    of the session's latest run (0 converged, 130 cancelled, 1 any other end); 130 with no run.
+    Called from a thread of its own: it never touches the screen.
+    """
+    from relaxtui.commands.solve import EXIT_INTERRUPTED, exit_code
+    from relaxtui.solver.driver import write_outputs
+
+    closing = session.close()
+    jobs = []  # (run id, result or None, status, why nothing is written)
+    latest_status = closing.latest.status if closing.latest is not None else None
+    if closing.active is not None:
+        rec, control = closing.active, closing.control
+        control.stop(quitting=True)  # thread-safe: the worker cancels the run at its next chunk boundary
+        if closing.active_status == "preparing":
+            jobs.append((rec.id, None, "cancelled", "stopped while preparing: nothing swept yet, nothing to write"))
+            latest_status = "cancelled"
+        else:
+            control.ended.wait()
+            try:
+                result = control.result if control.result is not None else control.run.result()
+                if closing.active_status != "stopping":  # else the user's x stopped it, not the signal
+                    signals.note(result.report)
+                latest_status = result.report["status"]
+                jobs.append((rec.id, result, latest_status, ""))
+            except Exception as exc:  # a run whose worker died: say so, save the others
+                jobs.append((rec.id, None, "failed", f"its results could not be built: {exc}"))
+                latest_status = "failed"
+    for rec in closing.finished:
+        result = rec.result
+        if result.field_shape is None:  # released (made on access otherwise: not here, the writing streams it)
+            jobs.append((rec.id, None, rec.status, "field released to save memory: not written"))
+        else:
+            jobs.append((rec.id, result, rec.status, ""))
+    saved = []
+    for run_id, result, status, problem in jobs:
+        if result is None:
+            saved.append(Saved(run_id, status, (), problem))
+            continue
+        try:
+            paths = free_names(result.case.name, run_id, folder)
+            written = write_outputs(result, out=paths["out"], report=paths["report"], history=paths["history"])
+            saved.append(Saved(run_id, status, tuple(written)))
+        except (RelaxError, OSError) as exc:
+            saved.append(Saved(run_id, status, (), f"not written: {exc}"))
+    code = EXIT_INTERRUPTED if latest_status is None else exit_code(latest_status)
+    return saved, code
 
 
 def boundary_range(case, initial: np.ndarray) -> tuple[float, float] | None:
