@@ -63,7 +63,7 @@ def colour_range(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, c
     blk = np.zeros(nblk, dtype=np.int64)
     for b in prange(nblk):
         tmp = np.empty(width)
-        mu = 0
+        mu = np.int64(0)  # not a literal 0: one build of _colour_row for every caller
         for i in range(r0 + b * n // nblk, r0 + (b + 1) * n // nblk):
             mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, colour, tmp, mu)
         blk[b] = mu
@@ -73,7 +73,7 @@ def colour_range(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, c
 @kernel
 def colour_range_serial(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, colour, r0, r1, tmp):
     """:func:`colour_range` on one thread (``tmp``: a scratch row of u's width)."""
-    mu = 0
+    mu = np.int64(0)
     for i in range(r0, r1):
         mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, i, colour, tmp, mu)
     return mu

@@ -185,22 +185,24 @@ def _rb_block_inner(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega
     The order is red r0, red r0+1, red r0+2, black r0+1, red r0+3, black r0+2, ...: red row
     i + 1 and then black row i, both colours in one pass over the rows.
     """
-    mu = 0
+    mu = np.int64(0)
     for t in range(2 * (r1 - r0)):
         if t % 2 == 0:
-            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2, RED, tmp, mu)
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2, np.int64(RED), tmp, mu)
         elif r0 < r0 + t // 2 - 1 < r1 - 1:
-            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2 - 1, BLACK, tmp, mu)
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 + t // 2 - 1, np.int64(BLACK), tmp,
+                             mu)
     return mu
 
 
 @kernel(inline=True)
 def _rb_block_edges(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0, r1, tmp):
     """Phase 2: the black rows at the block's edges (r0 and r1 - 1), once every red row is done."""
-    mu = 0
+    mu = np.int64(0)
     for t in range(2):
         if t == 0 or r1 - 1 > r0:
-            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 if t == 0 else r1 - 1, BLACK, tmp, mu)
+            mu = _colour_row(u, cls, table, row_ptr, seg_start, seg_end, seg_class, omega, r0 if t == 0 else r1 - 1, np.int64(BLACK),
+                             tmp, mu)
     return mu
 
 
