@@ -13,6 +13,9 @@ Each check names what it is checked against: the contract (docs/case-format.md),
 
 from __future__ import annotations
 
+import os
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -70,3 +73,35 @@ def test_render_of_a_field_with_one_finite_value_still_draws(tmp_path, capsys, m
     np.save("f.npy", field)
     assert main(["render", "f.npy", "--case", "case.toml", "-o", "f.png"]) == 0
     assert Image.open("f.png").size[0] >= 8
+
+
+# --- open without a terminal ---------------------------------------------------------------------------
+
+
+def _relaxtui():
+    exe = Path(sys.executable).with_name("relaxtui")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "relaxtui"]
+
+
+@pytest.mark.parametrize("picture", ["corrupt", "good"])
+def test_open_without_a_terminal_ends_with_one_line(tmp_path, picture):
+    # `relaxtui open case.toml < /dev/null > out.txt` with a corrupt picture showed the error inside the
+    # UI until q, which could never come: the process spun for ever. Bad input -> one line, exit 2, at
+    # once (common practice); a case that loads is refused the same way, since no key can come.
+    write_case(tmp_path)
+    if picture == "corrupt":
+        data = (tmp_path / "plate.png").read_bytes()
+        (tmp_path / "plate.png").write_bytes(data[: len(data) // 2])  # cut inside the image data
+    with open(os.devnull, "rb") as null:
+        try:
+            proc = subprocess.run([*_relaxtui(), "open", "case.toml"], cwd=tmp_path, stdin=null, capture_output=True,
+                                  text=True, timeout=60)
+        except subprocess.TimeoutExpired:
+            pytest.fail("relaxtui open without a terminal did not end")
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.count("\n") == 1 and "error:" in proc.stderr and "Traceback" not in proc.stderr, proc.stderr
+    if picture == "corrupt":
+        assert "plate.png" in proc.stderr and "broken PNG" in proc.stderr
+    else:
+        assert "not a terminal" in proc.stderr
+    assert proc.stdout == ""

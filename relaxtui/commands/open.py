@@ -17,6 +17,11 @@ save never needs the screen: a terminal that has hung up is replaced by /dev/nul
 files are written (``GONE_GRACE`` seconds with a hung-up terminal, ``UI_GRACE`` with a live
 one it may still be restoring), the process ends itself with the exit code: an output thread
 of Textual's that died on the dead terminal can leave the event loop stuck.
+
+No terminal. The UI reads its keys from standard input; where that is not a terminal
+(``< /dev/null``, a file, a pipe) no key can come, so the command does not start the UI: a case
+that cannot be loaded is its one-line error (exit 2), any other is refused on one line (exit 2)
+with a pointer to ``relaxtui solve``.
 """
 
 from __future__ import annotations
@@ -40,6 +45,17 @@ def run(args) -> int:
     require_regular_file(path, str(args.case), "case file")  # a folder or FIFO: said so, never a hang
     if not path.is_file():
         raise CaseError(f"{args.case}: case file not found")
+    if not _reads_a_terminal():
+        # The UI takes its keys from standard input: from /dev/null, a file or a drained pipe none
+        # ever comes (Textual's reader then spins on end-of-file and q can never be pressed), so a
+        # case that fails to load, shown in the UI until q, never let the process end. Without a
+        # terminal: the case's own error first, on one line, else the reason the UI cannot run.
+        from relaxtui.case import load_case
+        from relaxtui.errors import UsageError
+
+        load_case(path)
+        raise UsageError("standard input is not a terminal, and the UI reads its keys from one; "
+                         "`relaxtui solve` runs a case without one")
     from relaxtui.commands.solve import _stop_signals_to
     from relaxtui.tui.app import RelaxApp, release_resume_signals
 
@@ -68,6 +84,14 @@ def run(args) -> int:
     saved, code = outcome
     _tell(saved, signals.name)
     return code
+
+
+def _reads_a_terminal() -> bool:
+    """Whether standard input is a terminal (where the UI's keys come from)."""
+    try:
+        return os.isatty(0)
+    except OSError:  # pragma: no cover - a closed descriptor 0
+        return False
 
 
 class _StopSaver(threading.Thread):
