@@ -544,6 +544,32 @@ def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
 
 
 @needs_mpi
+def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
+    # the command's quick exit (relaxtui.cli.entry) under mpiexec: each rank runs its atexit
+    # handlers, finalises MPI itself (MPI_Finalize is collective: every rank reaches it) and ends
+    # without the interpreter's tear-down. Python's documentation: os._exit skips object
+    # finalisation, so the __del__ below runs only on a normal exit.
+    script = tmp_path / "leave.py"
+    script.write_text(
+        "import atexit, sys\n"
+        "from relaxtui import cli\n"
+        "from relaxtui.parallel.comm import mpi\n"
+        "MPI = mpi()\n"
+        "rank = MPI.COMM_WORLD.Get_rank()\n"
+        "class Teardown:\n"
+        "    def __del__(self):\n"
+        "        print(f'teardown {rank}', flush=True)\n"
+        "keep = Teardown()\n"
+        "atexit.register(lambda: print(f'atexit {rank} finalized={MPI.Is_finalized()}', flush=True))\n"
+        "print(f'rank {rank}', flush=True)\n"
+        "cli._exit(3)\n", encoding="utf-8")
+    code, out, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
+    assert code == 3, err
+    assert sorted(out.splitlines()) == ["atexit 0 finalized=False", "atexit 1 finalized=False", "rank 0", "rank 1"], out
+    assert "teardown" not in out and not err.strip(), err
+
+
+@needs_mpi
 def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
     # Rank 0 stops itself after the first chunk of sweeps (RELAXTUI_TEST_PAUSE_AT=solving; no timing: the
     # run is then past its preparation); SIGTERM to mpiexec is forwarded to both ranks, and the run ends
