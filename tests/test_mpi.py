@@ -593,6 +593,9 @@ def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
 
 @needs_mpi
 def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
+    # Rank 0 stops itself after the first chunk of sweeps (RELAXTUI_TEST_PAUSE_AT=solving; no timing: the
+    # run is then past its preparation); SIGTERM to mpiexec is forwarded to both ranks, and the run ends
+    # with the field of the sweeps done, as one process writes it (tests/test_signals.py).
     rows, cols = 240, 200
     c = np.zeros((rows, cols), dtype=np.uint8)
     c[0, :] = 1
@@ -600,13 +603,16 @@ def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
     c[:, 0] = c[:, -1] = 2
     case = write_case(tmp_path, "slab", c, ['name = "slab"\nkind = "interior"', 'name = "hot"\nkind = "fixed"\nvalue = 1.0',
                                             'name = "cold"\nkind = "fixed"\nvalue = 0.0'])
-    # SIGTERM one second after the first progress line: the solve is then past its preparation
-    code, _, err = _launch([_mpiexec(), "-n", "2", sys.executable, "-m", "relaxtui", "solve", str(case), "--method", "jacobi",
-                            "--tolerance", "1e-13", "--max-sweeps", "100000000", "--out", "f.npy", "--report", "r.json",
-                            "--history", "h.csv"], tmp_path, term_after=1.0, ready="relaxtui: sweep")
+    job = PausedJob(2, ["solve", case, "--method", "jacobi", "--tolerance", "1e-13", "--max-sweeps", "100000000",
+                        "--out", "f.npy", "--report", "r.json", "--history", "h.csv"], tmp_path, "solving")
+    job.wait_stopped(0)
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    code, _, err = job.finish()
     assert code == 130, err
     report = json.loads((tmp_path / "r.json").read_text())
     assert report["status"] == "cancelled" and report["sweeps"] > 0
+    assert report["message"].endswith("(stopped by SIGTERM)"), report["message"]
     field = np.load(tmp_path / "f.npy")
     assert field.shape == (rows, cols) and np.isfinite(field).all()
     assert "Traceback" not in err
