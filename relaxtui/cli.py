@@ -200,9 +200,13 @@ def entry() -> None:
     every file was already written and closed. Here the streams are flushed and the ``atexit``
     handlers run as usual, then the process ends with ``os._exit``. It exits the normal way
     instead when something else may need the tear-down: a thread that is not a daemon still
-    alive (or one registered to be joined at exit), mpi4py loaded (MPI must be finalised), a
-    tracer or profiler installed, a stream that cannot be flushed, or ``RELAXTUI_NORMAL_EXIT``
-    set.
+    alive (or one registered to be joined at exit), a tracer or profiler installed, a stream that
+    cannot be flushed, or ``RELAXTUI_NORMAL_EXIT`` set.
+
+    Under mpiexec the rank finalises MPI itself (``MPI.Finalize``, collective: it returns when
+    every rank has reached it) before ``os._exit``; mpi4py's own finalisation runs in the
+    interpreter's tear-down, which the quick exit skips. The tear-down of two ranks at once took
+    0.3-0.5 s of a 7 s solve of the 4096² aquifer demo (measured, load about 1).
     """
     code = main()
     _exit(code)
@@ -220,6 +224,8 @@ def _exit(code) -> None:
     if not _flushed():  # what the atexit handlers printed
         raise SystemExit(code)
     _flush_c_streams()
+    if not _finalize_mpi():
+        raise SystemExit(code)
     os._exit(int(code) & 0xFF if isinstance(code, int) else 1)
 
 
@@ -239,7 +245,7 @@ def _quick_exit_safe() -> bool:
     """Whether nothing in the process needs the interpreter's normal shutdown (see :func:`entry`)."""
     if os.environ.get("RELAXTUI_NORMAL_EXIT"):
         return False
-    if "mpi4py" in sys.modules or sys.gettrace() is not None or sys.getprofile() is not None:
+    if sys.gettrace() is not None or sys.getprofile() is not None:
         return False
     import threading
 
@@ -251,6 +257,19 @@ def _quick_exit_safe() -> bool:
     if getattr(threading, "_threading_atexits", None):  # concurrent.futures pools join their workers there
         return False
     return True
+
+
+def _finalize_mpi() -> bool:
+    """Finalise MPI if mpi4py started it (True when nothing of MPI is left for the normal exit to do)."""
+    if "mpi4py.MPI" not in sys.modules:
+        return True
+    try:
+        MPI = sys.modules["mpi4py.MPI"]
+        if MPI.Is_initialized() and not MPI.Is_finalized():
+            MPI.Finalize()
+        return bool(MPI.Is_finalized() or not MPI.Is_initialized())
+    except Exception:  # pragma: no cover - let mpi4py's own exit path finalise
+        return False
 
 
 def _flush_c_streams() -> None:

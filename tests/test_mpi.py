@@ -544,7 +544,58 @@ def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
 
 
 @needs_mpi
+def test_multigrid_across_ranks_solves_a_field_of_tiny_magnitude(tmp_path):
+    # the single-process rescaling of CG's direction where its dot products underflow
+    # (tests/test_edges2.py), by strips: 41 x 12 cells between fixed sides 0 and 1e-300 under an
+    # insulated top row. Rows alike between insulated borders: the closed form is linear in the
+    # column, u_j = 1e-300 j / 11 (the discrete Laplace equation, common practice); before, the
+    # ranks said "stalled" after two cycles (r . z and p . A p were 0)
+    magnitude, rows, cols = 1e-300, 41, 12
+    codes = np.zeros((rows, cols), dtype=np.uint8)
+    codes[:, 0], codes[:, -1], codes[0] = 1, 2, 3
+    case = write_case(tmp_path, "tiny", codes, ['name = "plate"\nkind = "interior"\nconductivity = 1.0',
+                                                'name = "left"\nkind = "fixed"\nvalue = 0.0',
+                                                f'name = "right"\nkind = "fixed"\nvalue = {magnitude!r}',
+                                                'name = "above"\nkind = "outside"'],
+                      f'method = "multigrid"\ntolerance = {1e-6 * magnitude!r}')
+    code, _, err = mpirun(2, ["solve", case, "-q", *outputs("tiny")], tmp_path)
+    field, report, _ = read(tmp_path, "tiny")
+    assert code == 0 and report["status"] == "converged", (report["message"], err)
+    exact = np.tile(magnitude * np.arange(cols) / (cols - 1), (rows - 1, 1))
+    assert np.max(np.abs(field[1:] - exact)) <= 1e-6 * magnitude
+
+
+@needs_mpi
+def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
+    # the command's quick exit (relaxtui.cli.entry) under mpiexec: each rank runs its atexit
+    # handlers, finalises MPI itself (MPI_Finalize is collective: every rank reaches it) and ends
+    # without the interpreter's tear-down. Python's documentation: os._exit skips object
+    # finalisation, so the __del__ below runs only on a normal exit.
+    script = tmp_path / "leave.py"
+    script.write_text(
+        "import atexit, sys\n"
+        "from relaxtui import cli\n"
+        "from relaxtui.parallel.comm import mpi\n"
+        "MPI = mpi()\n"
+        "rank = MPI.COMM_WORLD.Get_rank()\n"
+        "class Teardown:\n"
+        "    def __del__(self):\n"
+        "        print(f'teardown {rank}', flush=True)\n"
+        "keep = Teardown()\n"
+        "atexit.register(lambda: print(f'atexit {rank} finalized={MPI.Is_finalized()}', flush=True))\n"
+        "print(f'rank {rank}', flush=True)\n"
+        "cli._exit(3)\n", encoding="utf-8")
+    code, out, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
+    assert code == 3, err
+    assert sorted(out.splitlines()) == ["atexit 0 finalized=False", "atexit 1 finalized=False", "rank 0", "rank 1"], out
+    assert "teardown" not in out and not err.strip(), err
+
+
+@needs_mpi
 def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
+    # Rank 0 stops itself after the first chunk of sweeps (RELAXTUI_TEST_PAUSE_AT=solving; no timing: the
+    # run is then past its preparation); SIGTERM to mpiexec is forwarded to both ranks, and the run ends
+    # with the field of the sweeps done, as one process writes it (tests/test_signals.py).
     rows, cols = 240, 200
     c = np.zeros((rows, cols), dtype=np.uint8)
     c[0, :] = 1
@@ -552,13 +603,16 @@ def test_sigterm_under_mpiexec_writes_the_current_field(tmp_path):
     c[:, 0] = c[:, -1] = 2
     case = write_case(tmp_path, "slab", c, ['name = "slab"\nkind = "interior"', 'name = "hot"\nkind = "fixed"\nvalue = 1.0',
                                             'name = "cold"\nkind = "fixed"\nvalue = 0.0'])
-    # SIGTERM one second after the first progress line: the solve is then past its preparation
-    code, _, err = _launch([_mpiexec(), "-n", "2", sys.executable, "-m", "relaxtui", "solve", str(case), "--method", "jacobi",
-                            "--tolerance", "1e-13", "--max-sweeps", "100000000", "--out", "f.npy", "--report", "r.json",
-                            "--history", "h.csv"], tmp_path, term_after=1.0, ready="relaxtui: sweep")
+    job = PausedJob(2, ["solve", case, "--method", "jacobi", "--tolerance", "1e-13", "--max-sweeps", "100000000",
+                        "--out", "f.npy", "--report", "r.json", "--history", "h.csv"], tmp_path, "solving")
+    job.wait_stopped(0)
+    job.signal_mpiexec(signal.SIGTERM, 0)
+    job.cont(0)
+    code, _, err = job.finish()
     assert code == 130, err
     report = json.loads((tmp_path / "r.json").read_text())
     assert report["status"] == "cancelled" and report["sweeps"] > 0
+    assert report["message"].endswith("(stopped by SIGTERM)"), report["message"]
     field = np.load(tmp_path / "f.npy")
     assert field.shape == (rows, cols) and np.isfinite(field).all()
     assert "Traceback" not in err
