@@ -105,3 +105,33 @@ def test_open_without_a_terminal_ends_with_one_line(tmp_path, picture):
     else:
         assert "not a terminal" in proc.stderr
     assert proc.stdout == ""
+
+
+# --- multigrid at float64's floor with a 1e8 contrast: stalled, not diverged ------------------------------
+
+
+@pytest.mark.parametrize("tolerance", [1e-10, 1e-14])
+def test_multigrid_in_rounding_noise_at_a_1e8_contrast_is_stalled_not_diverged(tolerance):
+    """16 x 16: fixed 0 and 100 on the left and right columns, a k = 1e8 block in the middle of k = 1.
+    The condition number is about 6e9, so float64 resolves the field to about 1e-5 only; multigrid's
+    updates then wander in rounding noise and rose 100-fold from their best, which the rule called
+    "diverged ... grows without bound" while the field was within 2e-6 of spsolve's answer."""
+    from cases import fixed, interior, make_case
+    from exact import exact_solution
+
+    from relaxtui.solver.driver import solve
+
+    n = 16
+    g = np.full((n, n), ".")
+    g[n // 4 : 3 * n // 4, n // 4 : 3 * n // 4] = "k"
+    g[:, 0], g[:, -1] = "L", "R"
+    legend = {".": interior("low", 1.0), "k": interior("high", 1e8), "L": fixed("l", 0.0), "R": fixed("r", 100.0)}
+    case = make_case(["".join(r) for r in g], legend)
+    exact = exact_solution(case)  # scipy's spsolve on the independent assembly (tests/exact.py)
+    mask = np.isfinite(exact)
+    result = solve(case, method="multigrid", tolerance=tolerance, max_sweeps=2000)
+    err = float(np.max(np.abs(result.field[mask] - exact[mask])))
+    assert err < 1e-4 * 100.0  # the field is fine (spsolve)
+    assert result.report["status"] == "stalled", result.report["message"]
+    assert "cannot certify" in result.report["message"]
+    assert result.report["estimated_error"] >= err  # the floor in the estimate covers the true error
