@@ -544,6 +544,28 @@ def test_an_exception_on_one_rank_aborts_the_job(tmp_path):
 
 
 @needs_mpi
+def test_multigrid_across_ranks_solves_a_field_of_tiny_magnitude(tmp_path):
+    # the single-process rescaling of CG's direction where its dot products underflow
+    # (tests/test_edges2.py), by strips: 41 x 12 cells between fixed sides 0 and 1e-300 under an
+    # insulated top row. Rows alike between insulated borders: the closed form is linear in the
+    # column, u_j = 1e-300 j / 11 (the discrete Laplace equation, common practice); before, the
+    # ranks said "stalled" after two cycles (r . z and p . A p were 0)
+    magnitude, rows, cols = 1e-300, 41, 12
+    codes = np.zeros((rows, cols), dtype=np.uint8)
+    codes[:, 0], codes[:, -1], codes[0] = 1, 2, 3
+    case = write_case(tmp_path, "tiny", codes, ['name = "plate"\nkind = "interior"\nconductivity = 1.0',
+                                                'name = "left"\nkind = "fixed"\nvalue = 0.0',
+                                                f'name = "right"\nkind = "fixed"\nvalue = {magnitude!r}',
+                                                'name = "above"\nkind = "outside"'],
+                      f'method = "multigrid"\ntolerance = {1e-6 * magnitude!r}')
+    code, _, err = mpirun(2, ["solve", case, "-q", *outputs("tiny")], tmp_path)
+    field, report, _ = read(tmp_path, "tiny")
+    assert code == 0 and report["status"] == "converged", (report["message"], err)
+    exact = np.tile(magnitude * np.arange(cols) / (cols - 1), (rows - 1, 1))
+    assert np.max(np.abs(field[1:] - exact)) <= 1e-6 * magnitude
+
+
+@needs_mpi
 def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
     # the command's quick exit (relaxtui.cli.entry) under mpiexec: each rank runs its atexit
     # handlers, finalises MPI itself (MPI_Finalize is collective: every rank reaches it) and ends

@@ -252,12 +252,28 @@ def test_unmatched_colours_are_listed(tmp_path):
     assert "snap = true" in msg
 
 
-def test_many_unmatched_colours_keep_one_line(tmp_path):
-    rgb = np.zeros((10, 10, 3), np.uint8)
-    rgb[:, :, 0] = np.arange(100).reshape(10, 10) + 1
+def test_many_unmatched_colours_are_each_listed_on_one_line(tmp_path):
+    # docs/case-format.md section 1: the error "lists each such colour, its pixel count and one pixel
+    # where it occurs"; no cap, however many colours (here 5000, each counted against a numpy tally)
+    rows, cols = 50, 120
+    rgb = np.zeros((rows, cols, 3), np.uint8)
+    n = np.arange(rows * cols).reshape(rows, cols) % 5000 + 1  # colour k at flat pixels k-1 and k-1+5000 (k <= 1000)
+    rgb[:, :, 0] = n & 255
+    rgb[:, :, 1] = n >> 8
     msg = unmatched_message(tmp_path, rgb)
-    assert "100 colours match no region" in msg
-    assert f"and {100 - picture.LIST_LIMIT} more colours in {100 - picture.LIST_LIMIT} pixels" in msg
+    assert "5000 colours match no region" in msg
+    assert "more colours" not in msg
+    listed = msg.split("): ", 1)[1].split("; ")
+    assert len(listed) == 5000
+    flat = n.reshape(-1)
+    for k in (1, 999, 1000, 1001, 4999, 5000):
+        first = int(np.flatnonzero(flat == k)[0])
+        count = int((flat == k).sum())
+        name = f"#{k & 255:02x}{k >> 8:02x}00"
+        assert f"{name} in {count} pixels (first at row {first // cols}, column {first % cols})" in listed
+    # most pixels first, then by packed colour (the existing order)
+    assert all(" in 2 pixels " in p for p in listed[:1000])
+    assert all(" in 1 pixels " in p for p in listed[1000:])
 
 
 def test_transparent_pixels_need_a_transparent_region_even_with_snap(tmp_path):

@@ -222,3 +222,47 @@ def test_a_signal_after_the_run_converged_keeps_its_status_and_exit_code(tmp_pat
     assert check_set(tmp_path) == "complete"
     report = json.loads((tmp_path / "r.json").read_text())
     assert report["status"] == "converged" and "stopped by" not in report["message"]
+
+
+def test_a_hang_up_ignored_at_start_stays_ignored(tmp_path):
+    # POSIX nohup: the utility starts the program with SIGHUP ignored, and a signal ignored when a
+    # process starts stays ignored (common practice; relaxtui.commands.solve._stop_signals_to). The
+    # run is stopped after its first step (not yet converged), hung up, continued: it must run to
+    # its end as if nothing came, not cancel.
+    write_case(tmp_path, n=80)  # Gauss-Seidel to 1e-7: some 20 000 sweeps, many steps
+    env = dict(os.environ, RELAXTUI_TEST_PAUSE_AT="solving")
+    # SIGHUP ignored, then exec: the same process (pid) runs relaxtui with the disposition inherited
+    ignore_then_exec = ("import os, signal, sys; signal.signal(signal.SIGHUP, signal.SIG_IGN); "
+                        "os.execvp(sys.argv[1], sys.argv[1:])")
+    args = ["solve", "case.toml", "--method", "gauss-seidel", "--tolerance", "1e-7", "--out", "f.npy", "--report", "r.json",
+            "--history", "h.csv", "-q"]
+    proc = subprocess.Popen([sys.executable, "-c", ignore_then_exec, *command(), *args], cwd=tmp_path, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    wait_stopped(proc)
+    os.kill(proc.pid, signal.SIGHUP)
+    cont(proc)
+    out, err = proc.communicate(timeout=120)
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["status"] == "converged", report["message"]
+    assert proc.returncode == 0, err
+    assert check_set(tmp_path) == "complete"
+
+
+def test_the_stop_handler_leaves_ignored_signals_ignored():
+    # the handler that solve, open and every MPI rank install (relaxtui.commands.solve._stop_signals_to):
+    # an ignored signal keeps SIG_IGN inside it, the others get the handler and are restored after
+    # (POSIX nohup semantics, common practice)
+    import threading
+
+    from relaxtui.commands.solve import _stop_signals_to
+
+    before = {s: signal.getsignal(s) for s in (signal.SIGHUP, signal.SIGTERM)}
+    signal.signal(signal.SIGHUP, signal.SIG_IGN)
+    try:
+        with _stop_signals_to(threading.Event()) as state:
+            assert signal.getsignal(signal.SIGHUP) == signal.SIG_IGN
+            assert signal.getsignal(signal.SIGTERM) == state.handler
+        assert signal.getsignal(signal.SIGHUP) == signal.SIG_IGN
+        assert signal.getsignal(signal.SIGTERM) == before[signal.SIGTERM]
+    finally:
+        signal.signal(signal.SIGHUP, before[signal.SIGHUP])

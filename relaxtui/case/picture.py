@@ -44,7 +44,6 @@ TRANSPARENT = np.uint32(1 << 24)
 UNMATCHED = 255  # code of a pixel no region claims (regions are 0..254)
 MAX_REGIONS = 255
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
-LIST_LIMIT = 20  # unmatched colours listed one by one in an error message
 _SNAP_CHUNK = 4096  # unmatched colours compared with the declared ones per step (U x R x 3 int64)
 PILLOW_DEFAULT_LIMIT = 1024 * 1024 * 1024 // 4 // 3  # PIL.Image.MAX_IMAGE_PIXELS unless someone changed it
 DEFLATE_RATIO = 1032  # the most bytes one byte of a deflate stream can expand to (common practice, from memory)
@@ -448,16 +447,13 @@ def match(decoded: Decoded, declared: list[int], *, snap: bool = False, label: s
         )
     opaque_declared = [(i, int(c)) for i, c in enumerate(declared) if not int(c) & int(TRANSPARENT)]
     if not snap or not opaque_declared:
+        # every unmatched colour, most pixels first (the contract lists each one); one pass
+        # over the unique colours, whose counts and first pixels np.unique gave above
         order = np.lexsort((colours, -counts))
-        shown = order[:LIST_LIMIT]
-        parts = [f"{color_name(colours[j])} in {int(counts[j])} pixels (first at {_pixel(positions[first[j]], cols)})" for j in shown]
-        rest = ""
-        if len(order) > LIST_LIMIT:
-            hidden = order[LIST_LIMIT:]
-            rest = f"; and {len(hidden)} more colours in {int(counts[hidden].sum())} pixels"
+        parts = [f"{color_name(colours[j])} in {int(counts[j])} pixels (first at {_pixel(positions[first[j]], cols)})" for j in order]
         hint = "declare them in [[region]] tables or set snap = true" if not snap else "snap needs at least one declared colour other than \"transparent\""
         noun = "colour matches" if len(colours) == 1 else "colours match"
-        raise CaseError(f"{label}: {len(colours)} {noun} no region ({hint}): " + "; ".join(parts) + rest)
+        raise CaseError(f"{label}: {len(colours)} {noun} no region ({hint}): " + "; ".join(parts))
 
     target_index = np.array([i for i, _ in opaque_declared], np.uint8)
     tc = np.array([c for _, c in opaque_declared], np.int64)

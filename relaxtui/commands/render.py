@@ -6,7 +6,7 @@ import os
 
 from relaxtui.output.atomic import check_target
 from relaxtui.output.fields import load_field
-from relaxtui.output.pictures import write_picture
+from relaxtui.output.pictures import has_finite_value, write_picture
 
 
 def run(args) -> int:
@@ -29,6 +29,9 @@ def run(args) -> int:
         raise UsageError(str(exc)) from None
     field = load_field(args.field, case.shape, what="field")
     warn_if_mismatched(args.field)  # a report beside it that describes another field: a broken output set
+    if not has_finite_value(field, case):  # an all-NaN field (a diverged run's, say) draws no picture
+        raise UsageError(f"field {str(args.field)!r}: no cell of the domain holds a finite value "
+                         "(all NaN or infinite): nothing to draw, no picture written")
     write_picture(target, field, case, scale=getattr(args, "scale", 1) or 1, isolines=getattr(args, "isolines", None))
     print(os.fspath(target))
     return 0

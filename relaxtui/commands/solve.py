@@ -8,7 +8,8 @@ that wrote its outputs exits with the code of its report's status
 status ``converged`` and exit code 0.
 
 Interruption: Ctrl-C (SIGINT), SIGTERM (a batch system's stop) and SIGHUP (a
-closed terminal or SSH session) all end the run the same way: the current
+closed terminal or SSH session) all end the run the same way (a signal the
+process was started with ignored, as ``nohup`` does with SIGHUP, stays ignored): the current
 chunk of sweeps finishes, field, report (status ``cancelled``, the message
 names the signal) and history are written, and the exit status is 130 for
 each of them (the contract's "interrupted"). A second signal while solving
@@ -74,11 +75,18 @@ class _Signals:
 @contextmanager
 def _stop_signals_to(event: threading.Event):
     """SIGINT, SIGTERM and SIGHUP set ``event`` (the run ends cleanly); a second one interrupts,
-    except while the outputs are being written (``state.writing``)."""
+    except while the outputs are being written (``state.writing``).
+
+    A stop signal that is ignored (``SIG_IGN``) when this is entered stays ignored: ``nohup``
+    starts a program with SIGHUP ignored, a shell starts a background job with SIGINT ignored,
+    and the program keeps that (POSIX ``nohup``; common practice). Python leaves a signal ignored
+    at start-up ignored, so what is ignored here is what the process was started with."""
     state = _Signals(event)
     previous = {}
     try:
         for sig in STOP_SIGNALS:
+            if signal.getsignal(sig) == signal.SIG_IGN:
+                continue
             previous[sig] = signal.signal(sig, state.handler)
     except ValueError:  # not in the main thread
         for sig, old in previous.items():

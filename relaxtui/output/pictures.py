@@ -310,6 +310,20 @@ def _crossings(a, b, band_a, band_b, pair, levels):
         yield rr[sel], cc[sel], np.clip(frac, 0.0, 1.0)
 
 
+def has_finite_value(field, case: Case) -> bool:
+    """Whether any cell of the domain holds a finite value (a field that has none has nothing to draw).
+
+    Looked at in row strips, so the temporaries are a strip's, and it stops at the first strip with one."""
+    u = np.asarray(field)
+    dom = domain_mask(case)
+    rows, cols = dom.shape
+    step = max(1, (1 << 20) // max(cols, 1))
+    for r in range(0, rows, step):
+        if np.isfinite(u[r : r + step][dom[r : r + step]]).any():
+            return True
+    return False
+
+
 def write_picture(path, field, case: Case, *, scale: int = 1, isolines=None, vmin=None, vmax=None) -> Path:
     """Write :func:`render_picture`'s image as a PNG, atomically; return the path.
 

@@ -453,6 +453,7 @@ class StripMultigrid:
     def iterate(self, omega: float, count: int) -> tuple[np.ndarray, np.ndarray, int]:
         """``count`` CG iterations; (largest updates, largest residuals, iterations done), the same on every rank."""
         from relaxtui.kernels import multigrid as mg
+        from relaxtui.solver.multigrid import _exact_dot
 
         st = self.strip
         x, w, p = st.u, self.view, self.p
@@ -465,14 +466,27 @@ class StripMultigrid:
             self.cycle_symmetric(omega)  # w = x + B r(x)
             rz_l, res_l = mg.pcg_rz(x, w, st.cls, self.table, self.diag, *st.segments, st.nblk)
             rz = float(self._sum([rz_l])[0])
-            beta = rz / self.rz if (self.k > 0 and self.rz != 0.0) else 0.0
+            # as one process (MultigridStepper._cg_step): beta only from dot products float64 holds to
+            # full precision (a field near 1e-150 or below has subnormal or zero ones: CG restarts)
+            beta = rz / self.rz if (self.k > 0 and _exact_dot(self.rz) and _exact_dot(rz)) else 0.0
             mg.fcg_direction(w, x, p, beta, st.nblk)
             pap_l, pr_l, _ = mg.fcg_dots(x, p, st.cls, self.table, self.diag, *st.segments, st.nblk)
             pap, pr = self._sum([pap_l, pr_l])
-            alpha = pr / pap if pap > 0.0 else 0.0
+            scaled = False
+            if not (_exact_dot(pap) and math.isfinite(pr)):
+                # p . A p under- or overflowed: scale p (halo rows too) by the power of two that brings
+                # the largest |p| over the ranks to magnitude 1 (exact; the line search is invariant
+                # under it) and take the dot products again; CG restarts at the next step
+                top = float(self._max_bits([float(np.max(np.abs(p)))])[0])
+                if 0.0 < top < math.inf:
+                    p *= 2.0 ** -math.frexp(top)[1]
+                    pap_l, pr_l, _ = mg.fcg_dots(x, p, st.cls, self.table, self.diag, *st.segments, st.nblk)
+                    pap, pr = self._sum([pap_l, pr_l])
+                    scaled = True
+            alpha = pr / pap if (pap > 0.0 and math.isfinite(pap)) else 0.0
             du_l = mg.fcg_update(x, p, alpha, w, st.nblk)
             du, r = self._max_bits([du_l, res_l])
-            self.rz = rz
+            self.rz = 0.0 if scaled else rz
             self.k += 1
             upd[it], res[it] = du, r
             done = it + 1
