@@ -41,6 +41,20 @@ LATE = ("test_cli.py", "test_edges.py", "test_edges2.py", "test_edges3.py", "tes
         "test_tui_study.py", "test_precision.py", "test_coarse_radius.py", "test_mpi.py")
 
 
+def _ignore(signum, frame) -> None:
+    """A stop signal pytest was started with ignored: still ignored by pytest, not by the commands it starts."""
+
+
+def pytest_configure(config) -> None:
+    # A script's background job starts with SIGINT ignored, nohup with SIGHUP (POSIX); an ignored signal
+    # stays ignored across exec, and relaxtui keeps a stop signal it was started with ignored
+    # (relaxtui.commands.solve._stop_signals_to), so the tests that send Ctrl-C would watch it ignored. A
+    # handler that does nothing leaves pytest as it was, and exec gives the commands the default action.
+    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
+        if signal.getsignal(sig) == signal.SIG_IGN:
+            signal.signal(sig, _ignore)
+
+
 def _warming(items) -> bool:
     return (not os.environ.get("RELAXTUI_TEST_NO_WARM") and not os.environ.get("NUMBA_DISABLE_JIT")
             and len(items) >= WARM_FROM_ITEMS)

@@ -565,17 +565,19 @@ def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
     # finalisation, so the __del__ below runs only on a normal exit.
     script = tmp_path / "leave.py"
     script.write_text(
-        "import atexit, sys\n"
+        "import atexit, os, sys\n"
         "from relaxtui import cli\n"
         "from relaxtui.parallel.comm import mpi\n"
+        "def say(text):\n"
+        "    os.write(1, (text + '\\n').encode())  # one write a line: the ranks' lines cannot interleave\n"
         "MPI = mpi()\n"
         "rank = MPI.COMM_WORLD.Get_rank()\n"
         "class Teardown:\n"
         "    def __del__(self):\n"
-        "        print(f'teardown {rank}', flush=True)\n"
+        "        say(f'teardown {rank}')\n"
         "keep = Teardown()\n"
-        "atexit.register(lambda: print(f'atexit {rank} finalized={MPI.Is_finalized()}', flush=True))\n"
-        "print(f'rank {rank}', flush=True)\n"
+        "atexit.register(lambda: say(f'atexit {rank} finalized={MPI.Is_finalized()}'))\n"
+        "say(f'rank {rank}')\n"
         "cli._exit(3)\n", encoding="utf-8")
     code, out, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
     assert code == 3, err
