@@ -248,21 +248,27 @@ def test_a_hang_up_ignored_at_start_stays_ignored(tmp_path):
     assert check_set(tmp_path) == "complete"
 
 
-def test_the_stop_handler_leaves_ignored_signals_ignored():
+def test_the_stop_handler_leaves_an_ignored_hang_up_ignored():
     # the handler that solve, open and every MPI rank install (relaxtui.commands.solve._stop_signals_to):
-    # an ignored signal keeps SIG_IGN inside it, the others get the handler and are restored after
+    # an ignored SIGHUP keeps SIG_IGN inside it, the others get the handler and are restored after
     # (POSIX nohup semantics, common practice)
     import threading
 
     from relaxtui.commands.solve import _stop_signals_to
 
-    before = {s: signal.getsignal(s) for s in (signal.SIGHUP, signal.SIGTERM)}
+    # SIGINT ignored at start is a non-interactive shell's background job (POSIX sh, common
+    # practice): a script's explicit ``kill -INT`` must still stop the run, so it gets the handler
+    before = {s: signal.getsignal(s) for s in (signal.SIGHUP, signal.SIGTERM, signal.SIGINT)}
     signal.signal(signal.SIGHUP, signal.SIG_IGN)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     try:
         with _stop_signals_to(threading.Event()) as state:
             assert signal.getsignal(signal.SIGHUP) == signal.SIG_IGN
             assert signal.getsignal(signal.SIGTERM) == state.handler
+            assert signal.getsignal(signal.SIGINT) == state.handler
         assert signal.getsignal(signal.SIGHUP) == signal.SIG_IGN
         assert signal.getsignal(signal.SIGTERM) == before[signal.SIGTERM]
+        assert signal.getsignal(signal.SIGINT) == signal.SIG_IGN
     finally:
         signal.signal(signal.SIGHUP, before[signal.SIGHUP])
+        signal.signal(signal.SIGINT, before[signal.SIGINT])

@@ -3,7 +3,7 @@
 Stop signals. SIGHUP (the terminal or SSH session went away), SIGTERM (a kill, a batch
 system's stop) and SIGINT sent from outside (``kill -INT``; Ctrl-C in the UI is a key, not
 a signal) are caught by ``relaxtui solve``'s handler (:func:`relaxtui.commands.solve._stop_signals_to`)
-(a signal the process was started with ignored, as under ``nohup``, stays ignored)
+(a hang-up ignored at start, as under ``nohup``, stays ignored)
 and end the session without losing a run: a thread of this command
 (:class:`_StopSaver`) stops the active run at its worker's next chunk boundary and writes it,
 then every finished run never exported, to the export's default names

@@ -9,7 +9,7 @@ status ``converged`` and exit code 0.
 
 Interruption: Ctrl-C (SIGINT), SIGTERM (a batch system's stop) and SIGHUP (a
 closed terminal or SSH session) all end the run the same way (a signal the
-process was started with ignored, as ``nohup`` does with SIGHUP, stays ignored): the current
+process was started with SIGHUP ignored, as under ``nohup``, keeps it ignored): the current
 chunk of sweeps finishes, field, report (status ``cancelled``, the message
 names the signal) and history are written, and the exit status is 130 for
 each of them (the contract's "interrupted"). A second signal while solving
@@ -77,15 +77,15 @@ def _stop_signals_to(event: threading.Event):
     """SIGINT, SIGTERM and SIGHUP set ``event`` (the run ends cleanly); a second one interrupts,
     except while the outputs are being written (``state.writing``).
 
-    A stop signal that is ignored (``SIG_IGN``) when this is entered stays ignored: ``nohup``
-    starts a program with SIGHUP ignored, a shell starts a background job with SIGINT ignored,
-    and the program keeps that (POSIX ``nohup``; common practice). Python leaves a signal ignored
-    at start-up ignored, so what is ignored here is what the process was started with."""
+    A hang-up that is ignored (``SIG_IGN``) when this is entered stays ignored: ``nohup`` starts a
+    program with SIGHUP ignored so that it outlives its terminal (POSIX ``nohup``; common
+    practice). SIGINT and SIGTERM always stop the run: a non-interactive shell starts a
+    background job with SIGINT ignored, and a script that sends ``kill -INT`` to it means it."""
     state = _Signals(event)
     previous = {}
     try:
         for sig in STOP_SIGNALS:
-            if signal.getsignal(sig) == signal.SIG_IGN:
+            if sig == getattr(signal, "SIGHUP", None) and signal.getsignal(sig) == signal.SIG_IGN:
                 continue
             previous[sig] = signal.signal(sig, state.handler)
     except ValueError:  # not in the main thread

@@ -13,8 +13,8 @@ symmetric SOR are refused with a one-line message and exit code 2.
 
 Signals: every rank handles SIGINT (Ctrl-C; mpiexec forwards it to every
 rank), SIGTERM (also forwarded) and SIGHUP with the single-process handler
-(:func:`relaxtui.commands.solve._stop_signals_to`; one a rank was started with
-ignored stays ignored there, as under ``nohup``); the ranks agree on them
+(:func:`relaxtui.commands.solve._stop_signals_to`; a hang-up a rank was started
+with ignored stays ignored there, as under ``nohup``); the ranks agree on them
 (:mod:`relaxtui.parallel.stop`) between steps and between the phases of the
 set-up, and the run ends as a single-process run does: status ``cancelled``
 ("(stopped by SIGTERM)"), the current field and report written, the exit
