@@ -12,6 +12,7 @@ the operator's working layout.
 
 import math
 
+import numpy as np
 from numba import prange
 from relaxtui.kernels._jit import kernel
 
@@ -79,7 +80,7 @@ def tridiagonal_extreme(alpha, beta, n):
             r += abs(beta[i])
         bound = max(bound, r)
     top = _bisect(alpha, beta, n, -bound, bound, n - 1)
-    bottom = _bisect(alpha, beta, n, -bound, bound, 0)
+    bottom = _bisect(alpha, beta, n, -bound, bound, np.int64(0))  # not the literal 0: one build of _bisect, not two
     return max(abs(top), abs(bottom))
 
 

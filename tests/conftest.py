@@ -30,15 +30,31 @@ EARLY = ("test_case.py", "test_case_v11.py", "test_colormap.py", "test_domain_st
 # Files that reach multigrid (tests/test_physics.py: with the uint16 class codes of coefficient maps; in the
 # middle group it met the warmer compiling the same 30-37 s restriction, load 2-3; tests/test_edges2.py: in the
 # middle group its first multigrid solve compiled the whole family, 79 s at load 2-2.8, while the warmer compiled
-# the same kernels), the uint16 and float32 builds (tests/test_tui_study.py switches a run to single precision: in
-# the middle group it compiled the float32 builds 13 s before the warmer reached them), the two-level radius
-# estimate and the MPI ranks' strip kernels: last, in the order the warmer compiles those (tests/test_edges3.py,
-# the next file of edge cases, beside tests/test_edges2.py). Every other file (new ones too) runs between EARLY
-# and LATE, in pytest's order, and compiles the float64 relaxation sweeps and measures itself.
-LATE = ("test_cli.py", "test_edges.py", "test_edges2.py", "test_edges3.py", "test_operator.py", "test_weak_anchoring.py",
-        "test_hostile_input.py",
+# the same kernels; tests/test_methods.py: a multigrid step of its protocol test compiled the conjugate-gradient
+# kernels, 15 s at load 2.5, 100-114 s into the session, where the warmer's multigrid lane compiles them too),
+# the uint16 and float32 builds (tests/test_tui_study.py switches a run to single precision: in the middle group
+# it compiled the float32 builds 13 s before the warmer reached them), the two-level radius estimate and the MPI
+# ranks' strip kernels: last, in the order the warmer compiles those (tests/test_edges3.py, the next file of edge
+# cases, beside tests/test_edges2.py). Every other file (new ones too) runs between EARLY and LATE, in pytest's
+# order, and compiles the float64 relaxation sweeps and measures itself.
+LATE = ("test_cli.py", "test_edges.py", "test_edges2.py", "test_edges3.py", "test_methods.py", "test_operator.py",
+        "test_weak_anchoring.py", "test_hostile_input.py",
         "test_fuzz.py", "test_barrier.py", "test_multigrid.py", "test_physics.py", "test_kernels.py", "test_field_output.py",
         "test_tui_study.py", "test_precision.py", "test_coarse_radius.py", "test_mpi.py")
+
+
+def _ignore(signum, frame) -> None:
+    """A stop signal pytest was started with ignored: still ignored by pytest, not by the commands it starts."""
+
+
+def pytest_configure(config) -> None:
+    # A script's background job starts with SIGINT ignored, nohup with SIGHUP (POSIX); an ignored signal
+    # stays ignored across exec, and relaxtui keeps a stop signal it was started with ignored
+    # (relaxtui.commands.solve._stop_signals_to), so the tests that send Ctrl-C would watch it ignored. A
+    # handler that does nothing leaves pytest as it was, and exec gives the commands the default action.
+    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
+        if signal.getsignal(sig) == signal.SIG_IGN:
+            signal.signal(sig, _ignore)
 
 
 def _warming(items) -> bool:

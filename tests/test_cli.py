@@ -10,10 +10,10 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -197,24 +197,24 @@ def test_time_limit(tmp_path, capsys):
 
 
 def test_ctrl_c_writes_outputs_and_exits_130(tmp_path):
+    # SIGINT to the installed command while it sweeps: the process stops itself after its first chunk of
+    # sweeps (RELAXTUI_TEST_PAUSE_AT=solving, as in tests/test_signals.py), so no sleep has to outlast the
+    # preparation; Jacobi to 1e-13 on 400 x 400 cells is far from done after one chunk
+    from test_signals import command, cont, wait_stopped
+
     big = write_plate(tmp_path, rows=400, cols=400)
-    exe = Path(sys.executable).with_name("relaxtui")
-    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "relaxtui"]
-    proc = subprocess.Popen(cmd + ["solve", str(big), "--method", "jacobi", "--tolerance", "1e-13", "--out", "f.npy",
-                                   "--report", "r.json", "--history", "h.csv", "-q"],
-                            cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    deadline = time.time() + 60
-    while not (tmp_path / "f.npy").exists() and time.time() < deadline:
-        time.sleep(0.5)
-        if proc.poll() is None:
-            # wait until the solve is surely sweeping (preparation may take a few seconds)
-            time.sleep(2.0)
-            proc.send_signal(signal.SIGINT)
-            break
+    proc = subprocess.Popen(command() + ["solve", str(big), "--method", "jacobi", "--tolerance", "1e-13", "--out", "f.npy",
+                                         "--report", "r.json", "--history", "h.csv", "-q"],
+                            cwd=tmp_path, env=dict(os.environ, RELAXTUI_TEST_PAUSE_AT="solving"), stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    wait_stopped(proc)
+    proc.send_signal(signal.SIGINT)
+    cont(proc)
     out, err = proc.communicate(timeout=120)
     assert proc.returncode == 130, err
     report = json.loads((tmp_path / "r.json").read_text())
-    assert report["status"] == "cancelled"
+    assert report["status"] == "cancelled" and report["sweeps"] > 0
+    assert "SIGINT" in report["message"]
     assert np.load(tmp_path / "f.npy").shape == (400, 400)
     assert "Traceback" not in err
 

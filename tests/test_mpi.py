@@ -73,18 +73,16 @@ def clean_env(extra: dict | None = None) -> dict:
     return env
 
 
-def mpirun(ranks: int, args, cwd: Path, *, term_after: float | None = None, timeout: float = LAUNCH_TIMEOUT,
-           env: dict | None = None):
+def mpirun(ranks: int, args, cwd: Path, *, timeout: float = LAUNCH_TIMEOUT, env: dict | None = None):
     """Run ``mpiexec -n ranks python -m relaxtui ARGS`` in ``cwd``; returns (code, stdout, stderr)."""
     exe = _mpiexec()
     assert exe is not None, "mpi4py is installed but no mpiexec was found next to the interpreter or on PATH"
     cmd = [exe, "-n", str(ranks), sys.executable, "-m", "relaxtui", *[str(a) for a in args]]
-    return _launch(cmd, cwd, term_after=term_after, timeout=timeout, env=env)
+    return _launch(cmd, cwd, timeout=timeout, env=env)
 
 
-def _launch(cmd, cwd, *, term_after=None, timeout=LAUNCH_TIMEOUT, ready=None, env=None):
-    """Run ``cmd`` in its own session; with ``term_after``, send SIGTERM that many seconds after
-    stderr first contains ``ready``. Returns (code, stdout, stderr)."""
+def _launch(cmd, cwd, *, timeout=LAUNCH_TIMEOUT, env=None):
+    """Run ``cmd`` in its own session (signals at exact moments: PausedJob). Returns (code, stdout, stderr)."""
     proc = subprocess.Popen(cmd, cwd=cwd, env=clean_env(env), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
     chunks = {"out": [], "err": []}
@@ -94,12 +92,6 @@ def _launch(cmd, cwd, *, term_after=None, timeout=LAUNCH_TIMEOUT, ready=None, en
         t.start()
     deadline = time.time() + timeout
     try:
-        if term_after is not None:
-            while proc.poll() is None and time.time() < deadline and not any(ready in line for line in chunks["err"]):
-                time.sleep(0.1)
-            time.sleep(term_after)
-            if proc.poll() is None:
-                proc.send_signal(signal.SIGTERM)  # mpiexec forwards it to every rank
         proc.wait(timeout=max(1.0, deadline - time.time()))
     except subprocess.TimeoutExpired:
         os.killpg(proc.pid, signal.SIGKILL)
@@ -573,17 +565,19 @@ def test_ranks_finalise_mpi_and_take_the_quick_exit(tmp_path):
     # finalisation, so the __del__ below runs only on a normal exit.
     script = tmp_path / "leave.py"
     script.write_text(
-        "import atexit, sys\n"
+        "import atexit, os, sys\n"
         "from relaxtui import cli\n"
         "from relaxtui.parallel.comm import mpi\n"
+        "def say(text):\n"
+        "    os.write(1, (text + '\\n').encode())  # one write a line: the ranks' lines cannot interleave\n"
         "MPI = mpi()\n"
         "rank = MPI.COMM_WORLD.Get_rank()\n"
         "class Teardown:\n"
         "    def __del__(self):\n"
-        "        print(f'teardown {rank}', flush=True)\n"
+        "        say(f'teardown {rank}')\n"
         "keep = Teardown()\n"
-        "atexit.register(lambda: print(f'atexit {rank} finalized={MPI.Is_finalized()}', flush=True))\n"
-        "print(f'rank {rank}', flush=True)\n"
+        "atexit.register(lambda: say(f'atexit {rank} finalized={MPI.Is_finalized()}'))\n"
+        "say(f'rank {rank}')\n"
         "cli._exit(3)\n", encoding="utf-8")
     code, out, err = _launch([_mpiexec(), "-n", "2", sys.executable, str(script)], tmp_path, timeout=120)
     assert code == 3, err

@@ -18,8 +18,11 @@ the test files to match, see ``EARLY`` and ``LATE`` there):
    ones (``--precision single``), the strip kernels the MPI ranks load and the
    two-level radius estimate: what the late test files need;
 3. meanwhile the test process compiles the float64 relaxation sweeps and
-   measures itself, in the default group of files; this script runs those
-   paths last, where they are mostly loads of what the tests compiled.
+   measures itself, in the default group of files. This script no longer
+   runs every method and output on the demos after lane 2: what those 30
+   solves compile on their own (the float64 sweeps) the tests compiled 70 to
+   145 s into a cold session (2026-12-03, load 1-2.5), long before the
+   warmer got there, so they only loaded kernels beside tests/test_mpi.py.
 
 This file asserts nothing: it is a cache warmer, not a test.
 """
@@ -134,19 +137,6 @@ def main() -> int:
             cli(["solve", GRIDS / f"{case}.toml", "--method", "red-black-sor", "--max-sweeps", "1", "-q",
                  "--report", out / f"two-level-{case}.json", "--out", out / f"two-level-{case}.npy"])
         del os.environ["RELAXTUI_COARSE_UNKNOWNS"]
-        # last: every method and output on the demos (mostly loads by now: the tests compiled these themselves)
-        for case in ("electrodes", "composite", "power-module", "well-drawdown", "heat-spreader"):
-            toml = GRIDS / f"{case}.toml"
-            if not toml.exists():
-                continue
-            for method in METHODS:
-                stem = out / f"{case}-{method}"
-                argv = ["solve", toml, "--method", method, "--max-sweeps", "3", "-q",
-                        "--out", f"{stem}.npy", "--report", f"{stem}.json", "--history", f"{stem}.csv",
-                        "--picture", f"{stem}.png", "--isolines", "4", "--bundle", f"{stem}.npz"]
-                if method == "red-black-sor":  # the starting-field check
-                    argv += ["--initial", out / f"{case}-multigrid.npy"]
-                cli(argv)
     return 0
 
 
