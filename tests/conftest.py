@@ -49,9 +49,9 @@ def _ignore(signum, frame) -> None:
 
 def pytest_configure(config) -> None:
     # A script's background job starts with SIGINT ignored, nohup with SIGHUP (POSIX); an ignored signal
-    # stays ignored across exec, and relaxtui keeps a stop signal it was started with ignored
-    # (relaxtui.commands.solve._stop_signals_to), so the tests that send Ctrl-C would watch it ignored. A
-    # handler that does nothing leaves pytest as it was, and exec gives the commands the default action.
+    # stays ignored across exec into the commands the tests start (relaxtui itself keeps only an ignored
+    # SIGHUP, relaxtui.commands.solve._stop_signals_to, but a test's own helper processes keep them all).
+    # A handler that does nothing leaves pytest as it was, and exec gives the commands the default action.
     for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
         if signal.getsignal(sig) == signal.SIG_IGN:
             signal.signal(sig, _ignore)
