@@ -500,8 +500,9 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
 
 @needs_mpi
 def test_probes_are_read_on_the_ranks_that_hold_them(tmp_path, capsys):
-    # The well-drawdown demo's probes lie in rows of every strip of 3; rank 0 holds only its own
-    # strip, so each chunk's probe values are read on their ranks (this once failed with an
+    # The well-drawdown demo's probes (y = 12.5 m on 40 rows of 1 m) interpolate between rows 27
+    # and 28, which 3 strips cut between ranks 1 and 2; rank 0 holds only its own strip, so each
+    # chunk's probe values are read on the ranks that hold them (this once failed with an
     # IndexError on rank 0). Red-black SOR gives the single-process field for the same sweeps,
     # so the probe log matches it number for number (the times differ).
     case = GRIDS / "well-drawdown.toml"
