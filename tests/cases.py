@@ -200,6 +200,19 @@ def hot_cold_toml(mask: str, *, head: str = "", interior: str = "", void: bool =
         parts.append('[[region]]\nname = "void"\ncolor = "#000000"\nkind = "outside"\n')
     return "".join(p if p.endswith("\n") else p + "\n" for p in parts)
 
+def write_plate_case(folder: Path) -> Path:
+    """An 8 x 8 plate on disk (plate.png, case.toml): top row outside, cold left column, hot right column."""
+    from PIL import Image
+
+    img = np.full((8, 8, 3), 255, dtype=np.uint8)
+    img[0, :] = 0
+    img[1:, 0] = (0, 0, 255)
+    img[1:, -1] = (255, 0, 0)
+    Image.fromarray(img, "RGB").save(folder / "plate.png")
+    path = folder / "case.toml"
+    path.write_text(hot_cold_toml("plate.png"), encoding="utf-8")
+    return path
+
 
 def toml_value(value) -> str:
     """A TOML literal for a test value: strings quoted, booleans in lower case, lists bracketed."""

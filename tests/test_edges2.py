@@ -24,9 +24,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from cases import convection, fixed, hot_cold_toml, interior, make_case, outside
+from cases import convection, fixed, interior, make_case, outside, write_plate_case
 from exact_fraction import exact_fraction_solution
-from PIL import Image
 
 from relaxtui.cli import main
 from relaxtui.solver.driver import solve
@@ -133,16 +132,6 @@ def test_a_huge_initial_field_comes_down_to_the_answer(method):
 # --- writes the system refuses: one line, exit 2, nothing written -------------------------------------
 
 
-def write_case(folder: Path) -> Path:
-    img = np.full((8, 8, 3), 255, dtype=np.uint8)
-    img[0, :] = 0
-    img[1:, 0] = (0, 0, 255)
-    img[1:, -1] = (255, 0, 0)
-    Image.fromarray(img, "RGB").save(folder / "plate.png")
-    path = folder / "case.toml"
-    path.write_text(hot_cold_toml("plate.png"), encoding="utf-8")
-    return path
-
 
 def one_line_error(err: str) -> str:
     assert err.count("\n") == 1 and "error:" in err and "Traceback" not in err, err
@@ -154,7 +143,7 @@ def listing(folder: Path):
 
 
 def test_a_full_disk_is_one_line_and_leaves_nothing(tmp_path, capsys, monkeypatch):
-    case = write_case(tmp_path)
+    case = write_plate_case(tmp_path)
     before = listing(tmp_path)
 
     def full(fd):
@@ -170,7 +159,7 @@ def test_a_full_disk_is_one_line_and_leaves_nothing(tmp_path, capsys, monkeypatc
 
 
 def test_a_folder_where_no_file_can_be_made_is_one_line(tmp_path, capsys, monkeypatch):
-    case = write_case(tmp_path)
+    case = write_plate_case(tmp_path)
     before = listing(tmp_path)
     import tempfile
 
@@ -187,7 +176,7 @@ def test_a_folder_where_no_file_can_be_made_is_one_line(tmp_path, capsys, monkey
 @pytest.mark.skipif(not os.path.isdir("/proc/self"), reason="needs Linux's /proc")
 def test_an_output_in_a_pseudo_file_system_is_one_line(tmp_path, capsys):
     """/proc takes no new files, whoever asks (root included): common practice on Linux."""
-    case = write_case(tmp_path)
+    case = write_plate_case(tmp_path)
     code = main(["solve", str(case), "-q", "--out", "/proc/relaxtui-field.npy", "--report", str(tmp_path / "r.json")])
     err = capsys.readouterr().err
     assert code == 2 and "relaxtui-field.npy" in one_line_error(err)
@@ -236,7 +225,7 @@ def test_a_source_lifting_the_field_far_above_its_boundary_sets_the_floor():
 def test_render_never_writes_over_an_input(tmp_path, capsys, monkeypatch, victim):
     """`relaxtui render f.npy --case case.toml -o case.toml` wrote a PNG over the case file (exit 0)."""
     monkeypatch.chdir(tmp_path)
-    write_case(tmp_path)
+    write_plate_case(tmp_path)
     np.save("f.npy", np.zeros((8, 8)))
     before = {p: Path(p).read_bytes() for p in ("case.toml", "plate.png", "f.npy")}
     code = main(["render", "f.npy", "--case", "case.toml", "-o", victim])
@@ -249,7 +238,7 @@ def test_render_never_writes_over_an_input(tmp_path, capsys, monkeypatch, victim
 def test_sweep_never_writes_its_table_over_an_input(tmp_path, capsys, monkeypatch, victim):
     """`relaxtui sweep case.toml --csv case.toml` wrote the table over the case file (exit 0)."""
     monkeypatch.chdir(tmp_path)
-    write_case(tmp_path)
+    write_plate_case(tmp_path)
     before = listing(tmp_path), Path("case.toml").read_bytes(), Path("plate.png").read_bytes()
     code = main(["sweep", "case.toml", "--omega", "1.1:1.3:0.1", "-q", "--csv", victim])
     err = capsys.readouterr().err

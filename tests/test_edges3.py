@@ -20,22 +20,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from cases import hot_cold_toml
+from cases import write_plate_case
 from PIL import Image
 
 from relaxtui.cli import main
-
-
-def write_case(folder: Path) -> Path:
-    """An 8 x 8 plate: top row outside, cold left column, hot right column."""
-    img = np.full((8, 8, 3), 255, dtype=np.uint8)
-    img[0, :] = 0
-    img[1:, 0] = (0, 0, 255)
-    img[1:, -1] = (255, 0, 0)
-    Image.fromarray(img, "RGB").save(folder / "plate.png")
-    path = folder / "case.toml"
-    path.write_text(hot_cold_toml("plate.png"), encoding="utf-8")
-    return path
 
 
 def listing(folder: Path):
@@ -49,7 +37,7 @@ def listing(folder: Path):
 def test_render_of_a_field_without_finite_values_is_one_line_and_writes_nothing(tmp_path, capsys, monkeypatch, fill):
     # bad input -> one line, exit 2, no file (common practice; DEVELOPERS.md's conventions)
     monkeypatch.chdir(tmp_path)
-    write_case(tmp_path)
+    write_plate_case(tmp_path)
     field = np.full((8, 8), np.nan)
     if fill == "inf":
         field[1:] = np.inf  # every domain cell infinite
@@ -67,7 +55,7 @@ def test_render_of_a_field_without_finite_values_is_one_line_and_writes_nothing(
 def test_render_of_a_field_with_one_finite_value_still_draws(tmp_path, capsys, monkeypatch):
     # the refusal is for no finite value at all: one finite cell is a picture (mid-scale colour there)
     monkeypatch.chdir(tmp_path)
-    write_case(tmp_path)
+    write_plate_case(tmp_path)
     field = np.full((8, 8), np.nan)
     field[4, 4] = 1.0
     np.save("f.npy", field)
@@ -88,7 +76,7 @@ def test_open_without_a_terminal_ends_with_one_line(tmp_path, picture):
     # `relaxtui open case.toml < /dev/null > out.txt` with a corrupt picture showed the error inside the
     # UI until q, which could never come: the process spun for ever. Bad input -> one line, exit 2, at
     # once (common practice); a case that loads is refused the same way, since no key can come.
-    write_case(tmp_path)
+    write_plate_case(tmp_path)
     if picture == "corrupt":
         data = (tmp_path / "plate.png").read_bytes()
         (tmp_path / "plate.png").write_bytes(data[: len(data) // 2])  # cut inside the image data
