@@ -58,6 +58,20 @@ def quiet_wait(request) -> None:
             time.sleep(POLL_SLEEP)
 
 
+def wait_yielding(requests) -> None:
+    """Complete ``requests``, polling and yielding the core between polls.
+
+    A rank whose partner lags gives its core away instead of spinning on it in a blocking call
+    (measured at 1024², 4 ranks on 2 busy cores: Jacobi 5.9 against 8.6 ms a sweep with a
+    blocking Waitall; no loss at 2 ranks). Used for the halo exchanges and the small reductions
+    of the sweeps, the Lanczos steps and multigrid's conjugate gradients (3 ranks on 2 cores: a
+    40 x 400 red-black run with its 600-step radius estimate took 7.5 s with blocking Reduce and
+    Bcast, 2.6 s with these)."""
+    Request = mpi().Request
+    while not Request.Testall(requests):
+        os.sched_yield()
+
+
 def quiet_barrier(comm) -> None:
     """A barrier that sleeps while it waits (see :func:`quiet_wait`)."""
     quiet_wait(comm.Ibarrier())

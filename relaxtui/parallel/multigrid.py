@@ -45,7 +45,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from relaxtui.output.atomic import pause_for_tests
-from relaxtui.parallel.comm import mpi, quiet_wait
+from relaxtui.parallel.comm import mpi, quiet_wait, wait_yielding
 
 GATHER_CELLS = 1 << 16  # a level with fewer cells is gathered onto rank 0
 MIN_ROWS = 8  # a level stays split while every rank owns at least this many of its rows
@@ -437,7 +437,7 @@ class StripMultigrid:
         """Partial sums of every rank added in rank order: the same numbers on every rank."""
         mine = np.asarray(values, dtype=np.float64)
         parts = np.empty((self.size, mine.size))
-        self.comm.Allgather(mine, parts)
+        wait_yielding([self.comm.Iallgather(mine, parts)])
         total = np.zeros(mine.size)
         for r in range(self.size):
             total += parts[r]
@@ -447,7 +447,7 @@ class StripMultigrid:
         MPI = mpi()
         bits = np.abs(np.asarray(values, dtype=np.float64)).view(np.int64).copy()
         out = np.empty_like(bits)
-        self.comm.Allreduce(bits, out, op=MPI.MAX)
+        wait_yielding([self.comm.Iallreduce(bits, out, op=MPI.MAX)])
         return out.view(np.float64)
 
     def iterate(self, omega: float, count: int) -> tuple[np.ndarray, np.ndarray, int]:
@@ -552,7 +552,7 @@ class StripMultigrid:
         # NaN as infinity: MAX of a NaN depends on the operands' order, and every rank must decide alike
         mine = np.array([math.inf if math.isnan(du_l) else abs(du_l), math.inf if math.isnan(top) else top])
         out = np.empty(2)
-        self.comm.Allreduce(mine, out, op=MPI.MAX)
+        wait_yielding([self.comm.Iallreduce(mine, out, op=MPI.MAX)])
         return float(out[0]), float(out[1])
 
 
