@@ -30,11 +30,10 @@ from __future__ import annotations
 import functools
 import inspect
 import math
-import os
 
 import numpy as np
 
-from relaxtui.parallel.comm import mpi
+from relaxtui.parallel.comm import mpi, wait_yielding
 from relaxtui.solver.coarse import CoarseLanczos, coarse_shape, row_sum
 from relaxtui.solver.radius import RadiusEstimate, RitzRule
 
@@ -58,12 +57,6 @@ def coarse_defaults() -> dict:
 def block_rows(a: int, b: int) -> tuple[int, int]:
     """The coarse rows [ka, kb) owned by the strip of grid rows [a, b): those whose first grid row 2k is in it."""
     return (a + 1) // 2, (b + 1) // 2
-
-
-def _testall(requests) -> None:
-    Request = mpi().Request
-    while not Request.Testall(requests):  # yield the core to a neighbour that is still computing
-        os.sched_yield()
 
 
 class StripCoarse:
@@ -137,13 +130,13 @@ class StripCoarse:
         if m == 0:
             return
         c = self.comm
-        _testall([c.Irecv(arr[0], source=self.up, tag=TAG_C_DOWN), c.Irecv(arr[m + 1], source=self.dn, tag=TAG_C_UP),
+        wait_yielding([c.Irecv(arr[0], source=self.up, tag=TAG_C_DOWN), c.Irecv(arr[m + 1], source=self.dn, tag=TAG_C_UP),
                   c.Isend(arr[1], dest=self.up, tag=TAG_C_UP), c.Isend(arr[m], dest=self.dn, tag=TAG_C_DOWN)])
 
     def all_sum(self) -> float:
         """The row sums in ``rows`` of every rank, gathered in row order and added exactly rounded (on every rank)."""
         MPI = mpi()
-        self.comm.Allgatherv(self.rows[1 : self.m + 1], [self.gathered, (self.counts, self.displs), MPI.DOUBLE])
+        wait_yielding([self.comm.Iallgatherv(self.rows[1 : self.m + 1], [self.gathered, (self.counts, self.displs), MPI.DOUBLE])])
         return row_sum(self.gathered)
 
     def _scale(self, arr, factor: float) -> None:
@@ -188,7 +181,7 @@ class StripCoarse:
         if b % 2 == 1 and b < strip.rows:
             reqs += [c.Isend(y[self.m], dest=self.rank + 1, tag=TAG_Y), c.Isend(sq[self.m], dest=self.rank + 1, tag=TAG_SQ)]
         if reqs:
-            _testall(reqs)
+            wait_yielding(reqs)
         x = np.zeros((n + 2, strip.cols + 2), dtype=np.float32)
         k.prolong(y, sq, strip.cls, x, a % 2, 1, n + 1)
         self.y = self.sq = y = sq = None
@@ -253,13 +246,13 @@ class StripCoarse:
             if self.rank == 0:
                 go_on, coarse_done, ritz = decide(stage, info)
                 msg[:] = (float(go_on), float(coarse_done))
-            self.comm.Bcast(msg, root=0)
+            wait_yielding([self.comm.Ibcast(msg, root=0)])
             go_on, coarse_done = bool(msg[0]), bool(msg[1])
             if stage == "coarse":
                 if coarse_done:
                     if self.rank != 0:
                         ritz = np.empty(self.steps)
-                    self.comm.Bcast([ritz, MPI.DOUBLE], root=0)
+                    wait_yielding([self.comm.Ibcast([ritz, MPI.DOUBLE], root=0)])
                     self._begin_replay(ritz)
                 else:
                     self._shift(beta)
