@@ -260,16 +260,20 @@ def _quick_exit_safe() -> bool:
 
 
 def _finalize_mpi() -> bool:
-    """Finalise MPI if mpi4py started it (True when nothing of MPI is left for the normal exit to do)."""
+    """Finalise MPI if mpi4py started it (True when nothing of MPI is left for the normal exit to do);
+    rank 0 then outlives the other ranks' processes (see :func:`relaxtui.parallel.comm.outlive_peers`)."""
     if "mpi4py.MPI" not in sys.modules:
         return True
     try:
         MPI = sys.modules["mpi4py.MPI"]
         if MPI.Is_initialized() and not MPI.Is_finalized():
             MPI.Finalize()
-        return bool(MPI.Is_finalized() or not MPI.Is_initialized())
+        done = bool(MPI.Is_finalized() or not MPI.Is_initialized())
     except Exception:  # pragma: no cover - let mpi4py's own exit path finalise
         return False
+    if done and "relaxtui.parallel.comm" in sys.modules:
+        sys.modules["relaxtui.parallel.comm"].outlive_peers()
+    return done
 
 
 def _flush_c_streams() -> None:

@@ -50,6 +50,55 @@ def mpi():
     return _MPI
 
 
+_PEERS: list[tuple[str, int]] = []  # rank 0: (host, pid) of the other ranks, for its exit (note_peers)
+PEER_EXIT_SECONDS = 5.0  # longest wait of rank 0 for the other ranks' processes to end
+REMOTE_PEER_SECONDS = 0.2  # rank 0's pause for ranks on other machines, whose processes it cannot see
+
+
+def note_peers(comm) -> None:
+    """Collective: rank 0 learns every other rank's host and process id (see :func:`outlive_peers`)."""
+    import socket
+
+    peers = comm.gather((socket.gethostname(), os.getpid()), root=0)
+    if comm.Get_rank() == 0:
+        _PEERS[:] = peers[1:]
+
+
+def outlive_peers() -> None:
+    """Rank 0, after ``MPI.Finalize`` and before it exits: wait until the other ranks' processes have ended.
+
+    MPICH's launcher (hydra) takes rank 0 leaving while other ranks still run for a failed job,
+    whatever rank 0's exit code: it kills the rest and reports signal 9 as the job's exit code
+    (measured: rank 0 exiting right after ``MPI_Finalize`` while two finalised ranks slept 1 s gave
+    exit code 9; other ranks leaving first do not trigger it). Every rank has finalised by now,
+    but the others may not yet have reached their ``os._exit`` (seen: a 3-rank job on 2 loaded
+    cores exited 9 instead of 2). Processes on this machine are watched until they are gone (at
+    most :data:`PEER_EXIT_SECONDS`); for ranks on other machines rank 0 pauses
+    :data:`REMOTE_PEER_SECONDS`."""
+    if not _PEERS:
+        return
+    import socket
+
+    host = socket.gethostname()
+    local = [pid for h, pid in _PEERS if h == host]
+    deadline = time.monotonic() + PEER_EXIT_SECONDS
+    while local and time.monotonic() < deadline:
+        alive = []
+        for pid in local:
+            try:
+                os.kill(pid, 0)
+                alive.append(pid)
+            except ProcessLookupError:
+                pass
+            except OSError:  # not ours to signal: cannot watch it
+                pass
+        local = alive
+        if local:
+            time.sleep(0.005)
+    if len(local) < len(_PEERS) and any(h != host for h, _ in _PEERS):
+        time.sleep(REMOTE_PEER_SECONDS)
+
+
 def quiet_wait(request) -> None:
     """Complete ``request`` without holding a core: poll, then poll with short sleeps."""
     t0 = time.perf_counter()
