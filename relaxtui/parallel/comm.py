@@ -51,7 +51,7 @@ def mpi():
 
 
 _PEERS: list[tuple[str, int]] = []  # rank 0: (host, pid) of the other ranks, for its exit (note_peers)
-PEER_EXIT_SECONDS = 5.0  # longest wait of rank 0 for the other ranks' processes to end
+PEER_EXIT_SECONDS = 60.0  # longest wait of rank 0 for the other ranks' processes to end
 REMOTE_PEER_SECONDS = 0.2  # rank 0's pause for ranks on other machines, whose processes it cannot see
 
 
@@ -64,17 +64,34 @@ def note_peers(comm) -> None:
         _PEERS[:] = peers[1:]
 
 
+def _running(pid: int) -> bool:
+    """Whether process ``pid`` still runs: it exists and is no zombie (an ended process its launcher
+    has not yet reaped counts as ended)."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            state = f.read().rsplit(b")", 1)[1].split()[0]
+        return state not in (b"Z", b"X")
+    except (OSError, IndexError):  # gone, or no /proc: ask the kernel
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except OSError:  # not ours to signal: cannot watch it
+            return False
+        return not os.path.isdir("/proc")
+
+
 def outlive_peers() -> None:
     """Rank 0, after ``MPI.Finalize`` and before it exits: wait until the other ranks' processes have ended.
 
-    MPICH's launcher (hydra) takes rank 0 leaving while other ranks still run for a failed job,
-    whatever rank 0's exit code: it kills the rest and reports signal 9 as the job's exit code
-    (measured: rank 0 exiting right after ``MPI_Finalize`` while two finalised ranks slept 1 s gave
-    exit code 9; other ranks leaving first do not trigger it). Every rank has finalised by now,
-    but the others may not yet have reached their ``os._exit`` (seen: a 3-rank job on 2 loaded
-    cores exited 9 instead of 2). Processes on this machine are watched until they are gone (at
-    most :data:`PEER_EXIT_SECONDS`); for ranks on other machines rank 0 pauses
-    :data:`REMOTE_PEER_SECONDS`."""
+    MPICH's launcher (hydra), once a rank has left with a non-zero exit code, kills the ranks still
+    running after a grace of about a second and reports signal 9 as the job's exit code (measured:
+    finalised ranks lingering 3 s after ``MPI_Finalize`` and then exiting 2 gave 9; exiting 0 never
+    does). ``MPI_Finalize`` is no barrier there: rank 0 could leave with an error while another rank
+    was still starting numba (seen: a 3-rank job on 2 loaded cores exited 9 instead of 2). Processes
+    on this machine are watched until they have ended or are zombies (at most
+    :data:`PEER_EXIT_SECONDS`); for ranks on other machines rank 0 pauses
+    :data:`REMOTE_PEER_SECONDS`, which narrows the race but cannot close it."""
     if not _PEERS:
         return
     import socket
@@ -83,16 +100,7 @@ def outlive_peers() -> None:
     local = [pid for h, pid in _PEERS if h == host]
     deadline = time.monotonic() + PEER_EXIT_SECONDS
     while local and time.monotonic() < deadline:
-        alive = []
-        for pid in local:
-            try:
-                os.kill(pid, 0)
-                alive.append(pid)
-            except ProcessLookupError:
-                pass
-            except OSError:  # not ours to signal: cannot watch it
-                pass
-        local = alive
+        local = [pid for pid in local if _running(pid)]
         if local:
             time.sleep(0.005)
     if len(local) < len(_PEERS) and any(h != host for h, _ in _PEERS):
