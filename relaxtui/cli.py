@@ -271,8 +271,10 @@ def _finalize_mpi() -> bool:
         done = bool(MPI.Is_finalized() or not MPI.Is_initialized())
     except Exception:  # pragma: no cover - let mpi4py's own exit path finalise
         return False
-    if done and "relaxtui.parallel.comm" in sys.modules:
-        sys.modules["relaxtui.parallel.comm"].outlive_peers()
+    if done:
+        from relaxtui.parallel.comm import outlive_peers  # the standard library only
+
+        outlive_peers()
     return done
 
 

@@ -69,16 +69,15 @@ def _running(pid: int) -> bool:
     has not yet reaped counts as ended)."""
     try:
         with open(f"/proc/{pid}/stat", "rb") as f:
-            state = f.read().rsplit(b")", 1)[1].split()[0]
-        return state not in (b"Z", b"X")
-    except (OSError, IndexError):  # gone, or no /proc: ask the kernel
+            return f.read().rsplit(b")", 1)[1].split()[0] not in (b"Z", b"X")
+    except FileNotFoundError:  # gone
+        return False
+    except (OSError, IndexError):  # no /proc to read: whether the kernel still knows it
         try:
             os.kill(pid, 0)
-        except ProcessLookupError:
+        except OSError:  # gone, or not ours to watch
             return False
-        except OSError:  # not ours to signal: cannot watch it
-            return False
-        return not os.path.isdir("/proc")
+        return True
 
 
 def outlive_peers() -> None:
@@ -103,7 +102,7 @@ def outlive_peers() -> None:
         local = [pid for pid in local if _running(pid)]
         if local:
             time.sleep(0.005)
-    if len(local) < len(_PEERS) and any(h != host for h, _ in _PEERS):
+    if any(h != host for h, _ in _PEERS):
         time.sleep(REMOTE_PEER_SECONDS)
 
 
