@@ -50,62 +50,6 @@ def mpi():
     return _MPI
 
 
-_PEERS: list[tuple[str, int]] = []  # rank 0: (host, pid) of the other ranks, for its exit (note_peers)
-PEER_EXIT_SECONDS = 60.0  # longest wait of rank 0 for the other ranks' processes to end
-REMOTE_PEER_SECONDS = 0.2  # rank 0's pause for ranks on other machines, whose processes it cannot see
-
-
-def note_peers(comm) -> None:
-    """Collective: rank 0 learns every other rank's host and process id (see :func:`outlive_peers`)."""
-    import socket
-
-    peers = comm.gather((socket.gethostname(), os.getpid()), root=0)
-    if comm.Get_rank() == 0:
-        _PEERS[:] = peers[1:]
-
-
-def _running(pid: int) -> bool:
-    """Whether process ``pid`` still runs: it exists and is no zombie (an ended process its launcher
-    has not yet reaped counts as ended)."""
-    try:
-        with open(f"/proc/{pid}/stat", "rb") as f:
-            return f.read().rsplit(b")", 1)[1].split()[0] not in (b"Z", b"X")
-    except FileNotFoundError:  # gone
-        return False
-    except (OSError, IndexError):  # no /proc to read: whether the kernel still knows it
-        try:
-            os.kill(pid, 0)
-        except OSError:  # gone, or not ours to watch
-            return False
-        return True
-
-
-def outlive_peers() -> None:
-    """Rank 0, after ``MPI.Finalize`` and before it exits: wait until the other ranks' processes have ended.
-
-    MPICH's launcher (hydra), once a rank has left with a non-zero exit code, kills the ranks still
-    running after a grace of about a second and reports signal 9 as the job's exit code (measured:
-    finalised ranks lingering 3 s after ``MPI_Finalize`` and then exiting 2 gave 9; exiting 0 never
-    does). ``MPI_Finalize`` is no barrier there: rank 0 could leave with an error while another rank
-    was still starting numba (seen: a 3-rank job on 2 loaded cores exited 9 instead of 2). Processes
-    on this machine are watched until they have ended or are zombies (at most
-    :data:`PEER_EXIT_SECONDS`); for ranks on other machines rank 0 pauses
-    :data:`REMOTE_PEER_SECONDS`, which narrows the race but cannot close it."""
-    if not _PEERS:
-        return
-    import socket
-
-    host = socket.gethostname()
-    local = [pid for h, pid in _PEERS if h == host]
-    deadline = time.monotonic() + PEER_EXIT_SECONDS
-    while local and time.monotonic() < deadline:
-        local = [pid for pid in local if _running(pid)]
-        if local:
-            time.sleep(0.005)
-    if any(h != host for h, _ in _PEERS):
-        time.sleep(REMOTE_PEER_SECONDS)
-
-
 def quiet_wait(request) -> None:
     """Complete ``request`` without holding a core: poll, then poll with short sleeps."""
     t0 = time.perf_counter()

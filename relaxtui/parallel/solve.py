@@ -33,7 +33,7 @@ from relaxtui.errors import RelaxError, UsageError
 
 def run(args) -> int | None:
     """Run ``relaxtui solve`` as one rank of an MPI job; None if the job has one rank (solve as usual)."""
-    from relaxtui.parallel.comm import install_guard, mpi, note_peers, set_threads
+    from relaxtui.parallel.comm import install_guard, mpi, set_threads
 
     try:
         MPI = mpi()
@@ -44,7 +44,6 @@ def run(args) -> int | None:
     if comm.Get_size() == 1:
         return None
     install_guard(comm, "solve")
-    note_peers(comm)  # rank 0 outlives the others at a non-zero exit (relaxtui.parallel.comm.outlive_peers)
     threads = set_threads(comm)
     from relaxtui.commands.solve import _stop_signals_to
     from relaxtui.parallel import stop
