@@ -495,51 +495,53 @@ class StripMultigrid:
         return upd, res, done
 
     def inverse_norm(self, omega: float) -> float | None:
-        """``MultigridStepper.inverse_norm`` by strips: ``max w`` for ``(I - W) w = 1``, the same on every rank.
+        """``MultigridStepper.inverse_norm`` by strips: ``||(I - W)^-1||_inf`` from ``(I - W) w = 1``, the same on every rank.
 
-        The single-process steps (steepest descent preconditioned by the symmetric cycle, every
-        right-hand side 1 and every fixed value 0, the iterate in CG's direction buffer), with the
-        same kernels on the same values; per step the cycle's own exchanges plus two collectives:
-        the partial sums of (z . A z, z . r) gathered and added in rank order, and one MAX
-        reduction of the step's largest change (with the iterate's largest value on the first
-        step). Every rank takes the same decisions from the same numbers, so no rank 0 broadcast
-        is needed. The CG state is dropped: the next :meth:`iterate` restarts CG from its field.
+        The single-process steps (conjugate gradients preconditioned by the symmetric cycle, every
+        right-hand side 1 and every fixed value 0, from zero; the iterate in an array of the call's
+        own, the direction in CG's) with the same kernels on the same values, and the same decision
+        after each step (relaxtui.solver.multigrid.inverse_norm_found) from the same numbers: per
+        step the cycle's own exchanges plus three collectives, the partial sums of r . z and of
+        (p . A p, p . r) gathered and added in rank order, and one MAX reduction of the largest
+        residual and the iterate's largest value. The CG state is dropped: the next :meth:`iterate`
+        restarts CG from its field.
         """
         from relaxtui.kernels import multigrid as mg
-        from relaxtui.solver.multigrid import INVERSE_NORM_RTOL, INVERSE_NORM_STEPS
+        from relaxtui.solver.multigrid import INVERSE_NORM_STEPS, _exact_dot, inverse_norm_found
 
         st = self.strip
         nb = st.nblk
-        x, w = self.p, self.view
+        x, w, p = np.zeros_like(self.p), self.view, self.p
         table = self.table
         ones = table.copy()
         ones[1:, 4] = 1.0  # row 0 is no unknown's class
         self.synced, self.k, self.rz = False, 0, 0.0  # w and p are taken over
         found = None
+        tops = []
         try:
             self.table = ones  # the cycle's level-0 kernels read this table (right-hand sides in column 4)
-            mg.zero_fill(x, nb)
-            mg.copy_into(x, w, nb)
-            top = prev = None
-            for _ in range(INVERSE_NORM_STEPS):
+            mg.zero_fill(w, nb)
+            mg.zero_fill(p, nb)
+            rz_prev = 0.0
+            for k in range(INVERSE_NORM_STEPS):
                 self.cycle_symmetric(omega)  # w = x + B r(x)
-                mg.fcg_direction(w, x, w, 0.0, nb)  # the preconditioned residual z = w - x, in w
-                pap_l, pz_l, _ = mg.fcg_dots(x, w, st.cls, ones, self.diag, *st.segments, nb)
-                pap, pz = self._sum([pap_l, pz_l])
-                alpha = pz / pap if pap > 0.0 else 0.0  # exact line search along z
-                du_l = mg.fcg_update(x, w, alpha, w, nb)  # x += alpha z; w = x
-                if top is None:
-                    du, top = self._largest(du_l, x)
-                else:
-                    du = float(self._max_bits([du_l])[0])
-                if not math.isfinite(du):
+                rz_l, res_l = mg.pcg_rz(x, w, st.cls, ones, self.diag, *st.segments, nb)
+                rz = float(self._sum([rz_l])[0])
+                rho, top = self._largest(res_l, x)
+                if k > 0:
+                    tops.append(top)
+                found = inverse_norm_found(rho, tops)
+                if found is not None or not math.isfinite(rho):
                     break
-                if prev is not None and du <= 0.5 * prev and du <= INVERSE_NORM_RTOL * top:
-                    _, top = self._largest(0.0, x)
-                    if math.isfinite(top) and top > 0.0:
-                        found = max(top + du, 1.0)
+                beta = rz / rz_prev if (k > 0 and _exact_dot(rz_prev) and _exact_dot(rz)) else 0.0
+                mg.fcg_direction(w, x, p, beta, nb)  # p = z + beta p
+                pap_l, pr_l, _ = mg.fcg_dots(x, p, st.cls, ones, self.diag, *st.segments, nb)
+                pap, pr = self._sum([pap_l, pr_l])
+                alpha = pr / pap if (pap > 0.0 and math.isfinite(pap)) else 0.0
+                if alpha == 0.0:
                     break
-                prev = du
+                mg.fcg_update(x, p, alpha, w, nb)  # x += alpha p; w = x
+                rz_prev = rz
         finally:
             self.table = table
             mg.zero_fill(self.p, nb)
