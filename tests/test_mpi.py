@@ -458,6 +458,28 @@ group.stop(0)
 """
 
 
+def _norm_across_ranks(ranks: int, case: Path, tmp_path: Path, env: dict | None = None):
+    """NORM_PROBE on ``ranks`` ranks: (its JSON line, the single-process MultigridStepper.inverse_norm,
+    max w of scipy's spsolve of A w = diag(A) on tests/exact.py's matrix)."""
+    import scipy.sparse.linalg
+    from exact import assemble
+
+    from relaxtui.solver.assembled import Operator
+    from relaxtui.solver.multigrid import MultigridStepper
+
+    script = tmp_path / "norm_probe.py"
+    script.write_text(NORM_PROBE, encoding="utf-8")
+    code, out, err = _launch([_mpiexec(), "-n", str(ranks), sys.executable, "-m", "mpi4py", str(script), str(case)],
+                             tmp_path, env=env)
+    assert code == 0, err
+    got = json.loads([ln for ln in out.splitlines() if ln.startswith("{")][-1])
+    loaded = load_case(case)
+    one = MultigridStepper(Operator(loaded)).inverse_norm()
+    matrix, _, _ = assemble(loaded)
+    want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
+    return got, one, want
+
+
 @needs_mpi
 @pytest.mark.parametrize("ranks", [2, 3])
 def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path):
@@ -465,34 +487,20 @@ def test_multigrid_norm_of_the_inverse_is_the_single_process_one(ranks, tmp_path
     # an M-matrix's inverse is non-negative, common practice) is solved for with the distributed hierarchy,
     # by the single-process steps on the same values: the single-process MultigridStepper.inverse_norm to
     # 1e-7 (inner products added in another order), and scipy's spsolve on tests/exact.py's matrix
-    # within the method's 1 % (INVERSE_NORM_RTOL, the last step added on top: an upper estimate). The CG
+    # within the method's 1 % (the bound max w / (1 - rho) at a residual rho <= 5e-3: from above). The CG
     # iteration it interrupted restarts and still reaches the spsolve solution. 2 ranks: the electrodes
     # demo with levels 0-2 split; 3 ranks: the masked case (uneven strips, every boundary kind).
-    import scipy.sparse.linalg
-    from exact import assemble
-
-    from relaxtui.solver.assembled import Operator
-    from relaxtui.solver.multigrid import MultigridStepper
-
     if ranks == 2:
         case, env = GRIDS / "electrodes.toml", {"RELAXTUI_MPI_GATHER_CELLS": "500"}
     else:
         case, env = masked_case(tmp_path), {}
-    script = tmp_path / "norm_probe.py"
-    script.write_text(NORM_PROBE, encoding="utf-8")
-    cmd = [_mpiexec(), "-n", str(ranks), sys.executable, "-m", "mpi4py", str(script), str(case)]
-    code, out, err = _launch(cmd, tmp_path, env=env)
-    assert code == 0, err
-    got = json.loads([ln for ln in out.splitlines() if ln.startswith("{")][-1])
+    got, one, want = _norm_across_ranks(ranks, case, tmp_path, env)
     assert got["how"] == "solved for with the multigrid hierarchy" and got["status"] == "converged"
-    loaded = load_case(case)
-    one = MultigridStepper(Operator(loaded)).inverse_norm()
     # rel 1e-7: the same steps on the same float32 interpolation weights, inner products added in
     # another order (the solve's own 1 % tolerance dwarfs that)
     assert one is not None and got["norm"] == pytest.approx(one, rel=1e-7)
-    matrix, _, _ = assemble(loaded)
-    want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
     assert 1.0 - 1e-3 <= got["norm"] / want <= 1.02
+    loaded = load_case(case)
     field, exact = np.load(tmp_path / "field.npy"), exact_solution(loaded)
     assert np.array_equal(np.isnan(field), np.isnan(exact))
     assert np.nanmax(np.abs(field - exact)) <= 1e-9 * np.nanmax(np.abs(exact)) + 1e-9
@@ -504,12 +512,6 @@ def test_multigrid_norm_of_the_inverse_on_a_high_contrast_mix_across_ranks(tmp_p
     # case): float64 keeps the residual of (I - W) w = 1 from falling, so the norm is the settled max w
     # with its margin (relaxtui.solver.multigrid.inverse_norm_found); 3 ranks take the same decisions
     # from the same numbers: the single-process value to 1e-6, spsolve's within the method's 5 %.
-    import scipy.sparse.linalg
-    from exact import assemble
-
-    from relaxtui.solver.assembled import Operator
-    from relaxtui.solver.multigrid import MultigridStepper
-
     n = 64
     codes = np.full((n, n), 2, dtype=np.uint8)  # 2 cold frame
     codes[0, :] = 3  # hot top
@@ -519,17 +521,9 @@ def test_multigrid_norm_of_the_inverse_on_a_high_contrast_mix_across_ranks(tmp_p
                'name = "cold"\nkind = "fixed"\nvalue = 0.0',
                'name = "hot"\nkind = "fixed"\nvalue = 100.0']
     case = write_case(tmp_path, "mix", codes, regions)
-    script = tmp_path / "norm_probe.py"
-    script.write_text(NORM_PROBE, encoding="utf-8")
-    code, out, err = _launch([_mpiexec(), "-n", "3", sys.executable, "-m", "mpi4py", str(script), str(case)], tmp_path)
-    assert code == 0, err
-    got = json.loads([ln for ln in out.splitlines() if ln.startswith("{")][-1])
+    got, one, want = _norm_across_ranks(3, case, tmp_path)
     assert got["how"] == "solved for with the multigrid hierarchy" and got["status"] != "converged", got
-    loaded = load_case(case)
-    one = MultigridStepper(Operator(loaded)).inverse_norm()
     assert one is not None and got["norm"] == pytest.approx(one, rel=1e-6)
-    matrix, _, _ = assemble(loaded)
-    want = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
     assert 1.0 - 1e-3 <= got["norm"] / want <= 1.05
 
 

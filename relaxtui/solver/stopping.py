@@ -78,6 +78,9 @@ _EPS = float(np.finfo(float).eps)
 # six of its sixteen digits: common practice); below it, the tolerance is simply finer than the field's
 # magnitude allows.
 NEAR_SINGULAR_KAPPA = 1e6
+# How a norm of the inverse was found when it bounds the norm (relaxtui.solver.conditioning): only these
+# may grant "converged" on the residual bound alone at a stall
+TRUSTED_NORMS = ("exact", "bounded above by a quadratic barrier", "solved for with the multigrid hierarchy")
 
 
 @dataclass(frozen=True)
@@ -420,6 +423,21 @@ class StoppingRule:
                 self.reason = (f"the updates are at {self.float_name}'s rounding floor while the residual bound "
                                f"{bound:.3g} > {self.tolerance:.3g} (the tolerance is below what this grid resolves)")
             return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
+        if status == STALLED and self.residual_certified and self.field_residual is not None:
+            # the updates' estimate is not trusted here (residual_certified), so a stall is judged on the
+            # residual bound: converged where it certifies the tolerance with a norm of the inverse that is
+            # a bound (not the Lanczos estimate, which lies below the norm), else stalled with the bound
+            r = float(self.field_residual())
+            bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+            if bound <= self.tolerance and how in TRUSTED_NORMS:
+                return CONVERGED, Estimate(bound, est.factor, est.measured, True)
+            if math.isfinite(bound):
+                if floor > self.tolerance:
+                    self.reason = self._floor_reason(inv, how, floor)
+                else:
+                    self.reason = (f"no progress over a long window; the largest residual {r:.3g} with the norm of the "
+                                   f"inverse {inv:.3g} ({how}) certifies only an error below {bound:.3g} > {self.tolerance:.3g}")
+                return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
         if status == CONVERGED:
             error = max(est.error, floor)
             if floor > self.tolerance:
