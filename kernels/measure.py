@@ -338,3 +338,21 @@ def field_summary(codes, kind, value, cond, inherit, u, h, nblk, r0, r1, du):
         out[b, 4], out[b, 5], out[b, 6] = vmax, imax, jmax
         out[b, 7], out[b, 8], out[b, 9], out[b, 10], out[b, 11] = best, bqx, bqy, ib, jb
     return out
+
+
+@kernel
+def class_residual_max(u, cls, table, out):
+    """out[c] = max(out[c], largest |contract residual| over the unknowns of class c) (serial: one pass).
+
+    The per-class maxima feed the sharper residual certificate (``MultigridStepper.residual_bound``):
+    ``|u - u_exact| <= (I - W)^-1 rho`` cell by cell, with rho the class's largest residual."""
+    n = u.shape[0] - 2
+    m = u.shape[1] - 2
+    for i in range(1, n + 1):
+        up, mid, dn, crow = u[i - 1, 1 : m + 1], u[i], u[i + 1, 1 : m + 1], cls[i, 1 : m + 1]
+        for k in range(m):
+            c = crow[k]
+            if c != 0:
+                r = abs(wsum_of(up, mid, dn, k, table, c) - mid[k + 1])
+                if r > out[c] or r != r:
+                    out[c] = r

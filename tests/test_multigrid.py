@@ -330,6 +330,29 @@ def test_norm_of_the_inverse_on_a_high_contrast_mix(contrast):
     assert got is not None and 1.0 - 1e-3 <= got / want <= 1.05, (got, want)
 
 
+@pytest.mark.parametrize("steps", [6, 20])
+def test_weighted_residual_bound_bounds_the_error(steps):
+    # |u - u_exact| <= (I - W)^-1 rho cell by cell (rho: each class's largest |residual|; an M-matrix's
+    # inverse is non-negative, common practice). On a 64 x 64 random 1:1e5 mix after a few CG steps the
+    # weighted bound must lie above the true error (reference: spsolve, tests/exact.py) and well below
+    # the plain certificate ||(I - W)^-1|| max|r| (the norm: spsolve of A w = diag(A), as above).
+    case = _half_and_half(64, 1e5, 3)
+    matrix, _, _ = exact.assemble(case)
+    inv = float(np.max(scipy.sparse.linalg.spsolve(matrix.tocsc(), matrix.diagonal())))
+    want = exact.exact_solution(case)
+    op = Operator(case)
+    st = MultigridStepper(op)
+    u = op.new_field()
+    upd, res = np.zeros(steps), np.zeros(steps)
+    st.sweep(u, DEFAULT_OMEGA, steps, upd, res)
+    mask = np.isfinite(want)
+    error = float(np.max(np.abs(op.view(u)[mask] - want[mask])))
+    plain = inv * op.residual(u)
+    bound = st.residual_bound(u, inv)
+    assert bound is not None and error <= bound <= plain, (error, bound, plain)
+    assert bound <= 0.1 * plain, (bound, plain)
+
+
 def test_multigrid_on_a_high_contrast_mix_keeps_the_converged_promise():
     # 96 x 96 cells, contrast 1e7: the condition number (about 3e9) puts float64's rounding floor above the
     # tolerance 1e-6. With the Lanczos estimate of the norm of the inverse (1e3 times too small here) the

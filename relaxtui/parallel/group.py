@@ -37,6 +37,7 @@ STEPPED_METHODS = ("multigrid",)  # methods with a stepper of their own across r
 MG_NORM = 40  # multigrid's norm of the inverse (numbered apart from the list above)
 TAG_META, TAG_CLS, TAG_CODES, TAG_INITIAL, TAG_WIDE = 31, 32, 33, 34, 35
 COARSE_BEGIN, COARSE_ADVANCE, COARSE_RELEASE = 41, 42, 43  # the two-level radius estimate (relaxtui.parallel.coarse)
+MG_BOUND = 44  # multigrid's weighted residual bound (a command code of its own: tests/test_mpi.py checks they differ)
 STOP_CHECK = 64  # the stop-signal agreement (relaxtui.parallel.stop), numbered apart from the commands above
 
 
@@ -711,6 +712,8 @@ def follow(comm, threads: int) -> int:
             strip.mg = None
         elif code == MG_NORM:
             strip.mg.inverse_norm(float(cmd[1]))
+        elif code == MG_BOUND:
+            strip.mg.residual_bound(float(cmd[2]), float(cmd[1]))
         else:  # pragma: no cover - rank 0 sends only the codes above
             raise RuntimeError(f"unknown command {code} from rank 0")
 

@@ -495,47 +495,80 @@ class StripMultigrid:
         return upd, res, done
 
     def inverse_norm(self, omega: float) -> float | None:
-        """``MultigridStepper.inverse_norm`` by strips: ``||(I - W)^-1||_inf`` from ``(I - W) w = 1``, the same on every rank.
+        """``MultigridStepper.inverse_norm`` by strips: ``||(I - W)^-1||_inf`` from ``(I - W) w = 1``, the same on every rank."""
+        from relaxtui.solver.multigrid import inverse_norm_found
 
-        The single-process steps (conjugate gradients preconditioned by the symmetric cycle, every
-        right-hand side 1 and every fixed value 0, from zero; the iterate in an array of the call's
-        own, the direction in CG's) with the same kernels on the same values, and the same decision
-        after each step (relaxtui.solver.multigrid.inverse_norm_found) from the same numbers: per
-        step the cycle's own exchanges plus three collectives, the partial sums of r . z and of
-        (p . A p, p . r) gathered and added in rank order, and one MAX reduction of the largest
-        residual and the iterate's largest value. The CG state is dropped: the next :meth:`iterate`
-        restarts CG from its field.
-        """
+        return self._solve_classes(np.ones(self.table.shape[0]), omega, inverse_norm_found)[0]
+
+    def residual_bound(self, inv: float, omega: float) -> float | None:
+        """``MultigridStepper.residual_bound`` by strips (the same on every rank): each class's largest
+        residual over the ranks (one MAX reduction of the per-class maxima of each rank's own rows),
+        then the same CG steps."""
+        from relaxtui.kernels import measure
+        from relaxtui.solver.multigrid import RESIDUAL_BOUND_SLACK
+
+        if not (0.0 < inv < math.inf):
+            return None
+        st = self.strip
+        mine = np.zeros(self.table.shape[0])
+        measure.class_residual_max(st.u, st.cls, self.table, mine)
+        rho = self._max_bits(mine)  # NaN's bits beat every number's: a NaN anywhere stays NaN
+        rho[0] = 0.0
+        if not np.all(np.isfinite(rho)):
+            return None
+        if not rho.any():
+            return 0.0
+
+        def settled(res, tops):
+            top = tops[-1] if tops else 0.0
+            if top > 0.0 and inv * res <= RESIDUAL_BOUND_SLACK * top:
+                return top + inv * res
+            return None
+
+        found, res, top = self._solve_classes(rho, omega, settled)
+        if found is None and math.isfinite(res) and math.isfinite(top):
+            found = max(top, 0.0) + inv * res
+        return found if found is not None and math.isfinite(found) else None
+
+    def _solve_classes(self, rhs, omega: float, decide):
+        """``MultigridStepper._solve_classes`` by strips: the single-process steps (CG preconditioned by
+        the symmetric cycle on ``(I - W) x = rhs[class]``, every fixed value 0, from zero; the iterate in
+        an array of the call's own, the direction in CG's) with the same kernels on the same values, and
+        the same decision after each step from the same numbers: per step the cycle's own exchanges plus
+        three collectives, the partial sums of r . z and of (p . A p, p . r) gathered and added in rank
+        order, and one MAX reduction of the largest residual and the iterate's largest value. The CG
+        state is dropped: the next :meth:`iterate` restarts CG from its field."""
         from relaxtui.kernels import multigrid as mg
-        from relaxtui.solver.multigrid import INVERSE_NORM_STEPS, _exact_dot, inverse_norm_found
+        from relaxtui.solver.multigrid import INVERSE_NORM_STEPS, _exact_dot
 
         st = self.strip
         nb = st.nblk
         x, w, p = np.zeros_like(self.p), self.view, self.p
         table = self.table
-        ones = table.copy()
-        ones[1:, 4] = 1.0  # row 0 is no unknown's class
+        system = table.copy()
+        system[1:, 4] = rhs[1:]  # row 0 is no unknown's class
         self.synced, self.k, self.rz = False, 0, 0.0  # w and p are taken over
         found = None
         tops = []
+        rho = math.inf
         try:
-            self.table = ones  # the cycle's level-0 kernels read this table (right-hand sides in column 4)
+            self.table = system  # the cycle's level-0 kernels read this table (right-hand sides in column 4)
             mg.zero_fill(w, nb)
             mg.zero_fill(p, nb)
             rz_prev = 0.0
-            for k in range(INVERSE_NORM_STEPS):
+            for k in range(INVERSE_NORM_STEPS + 1):
                 self.cycle_symmetric(omega)  # w = x + B r(x)
-                rz_l, res_l = mg.pcg_rz(x, w, st.cls, ones, self.diag, *st.segments, nb)
+                rz_l, res_l = mg.pcg_rz(x, w, st.cls, system, self.diag, *st.segments, nb)
                 rz = float(self._sum([rz_l])[0])
                 rho, top = self._largest(res_l, x)
                 if k > 0:
                     tops.append(top)
-                found = inverse_norm_found(rho, tops)
-                if found is not None or not math.isfinite(rho):
+                found = decide(rho, tops)
+                if found is not None or not math.isfinite(rho) or k == INVERSE_NORM_STEPS:
                     break
                 beta = rz / rz_prev if (k > 0 and _exact_dot(rz_prev) and _exact_dot(rz)) else 0.0
                 mg.fcg_direction(w, x, p, beta, nb)  # p = z + beta p
-                pap_l, pr_l, _ = mg.fcg_dots(x, p, st.cls, ones, self.diag, *st.segments, nb)
+                pap_l, pr_l, _ = mg.fcg_dots(x, p, st.cls, system, self.diag, *st.segments, nb)
                 pap, pr = self._sum([pap_l, pr_l])
                 alpha = pr / pap if (pap > 0.0 and math.isfinite(pap)) else 0.0
                 if alpha == 0.0:
@@ -545,7 +578,7 @@ class StripMultigrid:
         finally:
             self.table = table
             mg.zero_fill(self.p, nb)
-        return found
+        return found, rho, (tops[-1] if tops else 0.0)
 
     def _largest(self, du_l: float, x) -> tuple[float, float]:
         """(largest change over the ranks, largest value of x over the ranks' own rows): one collective."""
@@ -648,6 +681,19 @@ class DistributedMultigrid:
         omega = DEFAULT_OMEGA if omega is None else float(omega)
         with op.group.collective(MG_NORM, omega):
             return op.strip.mg.inverse_norm(omega)
+
+    def residual_bound(self, u, inv: float, omega: float | None = None) -> float | None:
+        """:meth:`relaxtui.solver.multigrid.MultigridStepper.residual_bound` on the distributed field (one
+        collective command; ``u`` is rank 0's view, the ranks read their own strips); None after :meth:`release`."""
+        from relaxtui.parallel.group import MG_BOUND
+        from relaxtui.solver.multigrid import DEFAULT_OMEGA
+
+        op = self.operator
+        if op.strip.mg is None or op.unknowns == 0:
+            return None
+        omega = DEFAULT_OMEGA if omega is None else float(omega)
+        with op.group.collective(MG_BOUND, omega, float(inv)):
+            return op.strip.mg.residual_bound(float(inv), omega)
 
     def release(self) -> None:
         from relaxtui.parallel.group import MG_RELEASE

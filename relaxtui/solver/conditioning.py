@@ -277,6 +277,26 @@ def attach(rule, run) -> None:
     rule.convergent_by_theory = run.method in CONVERGENT_METHODS
     rule.residual_certified = run.method in RESIDUAL_CERTIFIED_METHODS or (
         run.method == "multigrid" and weight_contrast(op.table) >= CERTIFIED_CONTRAST)
+    rule.residual_bound = _weighted_bound(run) if rule.residual_certified else None
+
+
+def _weighted_bound(run):
+    """The rule's ``residual_bound(inv, r, sweeps, final)``: the run's stepper's weighted residual bound
+    (multigrid: ``MultigridStepper.residual_bound``; None for other methods). It costs a solve, so before
+    the stop (``final``) it is computed again only once the largest residual has halved or the sweeps have
+    doubled since the last time (None between: the plain certificate stands)."""
+    last = {"r": math.inf, "sweeps": 0}
+
+    def bound(inv: float, r: float, sweeps: int, final: bool = False):
+        solver = getattr(getattr(run, "_stepper", None), "residual_bound", None)
+        if not callable(solver) or getattr(run, "_u", None) is None:
+            return None
+        if not (final or r <= 0.5 * last["r"] or sweeps >= 2 * last["sweeps"]):
+            return None
+        last["r"], last["sweeps"] = r, max(int(sweeps), 1)
+        return solver(run._u, inv)
+
+    return bound
 
 
 def _label(case) -> str:

@@ -275,6 +275,9 @@ class StoppingRule:
         # True when a converged estimate must also pass the residual certificate ||(I - W)^-1|| max |r| <= tolerance
         # (symmetric SOR, whose updates can understate the error: relaxtui.solver.conditioning.RESIDUAL_CERTIFIED_METHODS)
         self.residual_certified = False
+        # residual_bound(inv, r, sweeps, final) -> a sharper bound of the error than inv * r (each residual weighed by
+        # where it lies: relaxtui.solver.multigrid.MultigridStepper.residual_bound), or None
+        self.residual_bound = None
 
     def rescale(self, scale: float) -> None:
         """Raise the field's magnitude (sources can lift the field above its boundary values); the
@@ -405,7 +408,7 @@ class StoppingRule:
         updates_silent = frozen or est.error == 0.0 or (status == STALLED and self.at_floor())
         if updates_silent and self.field_residual is not None:
             r = float(self.field_residual())
-            bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+            bound = self._residual_bound(inv, r, floor)
             if bound <= self.tolerance:
                 return CONVERGED, Estimate(bound, est.factor, est.measured, True)
             if floor > self.tolerance:
@@ -428,15 +431,15 @@ class StoppingRule:
             # residual bound: converged where it certifies the tolerance with a norm of the inverse that is
             # a bound (not the Lanczos estimate, which lies below the norm), else stalled with the bound
             r = float(self.field_residual())
-            bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+            bound = self._residual_bound(inv, r, floor, final=True)
             if bound <= self.tolerance and how in TRUSTED_NORMS:
                 return CONVERGED, Estimate(bound, est.factor, est.measured, True)
             if math.isfinite(bound):
                 if floor > self.tolerance:
                     self.reason = self._floor_reason(inv, how, floor)
                 else:
-                    self.reason = (f"no progress over a long window; the largest residual {r:.3g} with the norm of the "
-                                   f"inverse {inv:.3g} ({how}) certifies only an error below {bound:.3g} > {self.tolerance:.3g}")
+                    self.reason = (f"no progress over a long window; the residual (largest {r:.3g}, norm of the inverse "
+                                   f"{inv:.3g}, {how}) certifies only an error below {bound:.3g} > {self.tolerance:.3g}")
                 return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
         if status == CONVERGED:
             error = max(est.error, floor)
@@ -445,13 +448,25 @@ class StoppingRule:
                 return STALLED, Estimate(error, est.factor, est.measured, est.mature)
             if self.residual_certified and self.field_residual is not None:
                 r = float(self.field_residual())
-                bound = max(inv * r, floor) if math.isfinite(r) else math.inf
+                bound = self._residual_bound(inv, r, floor)
                 if bound > self.tolerance:
                     # the updates say converged, the residual does not certify it: go on, and report the
                     # certified bound (the updates' estimate is known to understate the error here)
                     return None, Estimate(max(error, bound), est.factor, est.measured, est.mature)
+                error = max(error, bound)  # the certified bound, not only the estimate known to understate
             return CONVERGED, Estimate(error, est.factor, est.measured, est.mature)
         return status, est
+
+    def _residual_bound(self, inv: float, r: float, floor: float, final: bool = False) -> float:
+        """The residual certificate: ``max(inv * r, floor)``, or the sharper weighted bound where the plain
+        one misses the tolerance and the run offers one (:attr:`residual_bound`; ``final``: for the stop
+        itself, computed whatever its rate limit says)."""
+        plain = inv * r if math.isfinite(r) else math.inf
+        if plain > self.tolerance and math.isfinite(plain) and self.residual_bound is not None:
+            sharp = self.residual_bound(inv, r, self._n, final)
+            if sharp is not None and math.isfinite(sharp):
+                plain = min(plain, sharp)
+        return max(plain, floor)
 
     def _growth_within_floor(self, est: Estimate) -> tuple[str, Estimate]:
         """A growth of the updates that stays within float64's rounding floor is not divergence.
