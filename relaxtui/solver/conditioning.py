@@ -47,13 +47,12 @@ EXACT_WORK = 4e7  # unknowns * bandwidth^2 of a banded Cholesky worth doing for 
 ESTIMATE_SAFETY = 2.0  # D-norm 1/(1 - mu) to infinity-norm estimate
 NORM_OF_OPERATOR = 2.0  # ||I - W||_inf <= 2 (weights sum to at most 1 per row)
 FLOOR_SAFETY = 4.0  # on the random-sign estimate of the rounding floor (see rounding_floor)
-LANCZOS_STEPS = 120
+LANCZOS_STEPS = 120  # most Lanczos steps spent when nothing else gives the radius (multigrid, large grids)
 # SOR-type sweeps, which converge for every omega in (0, 2) on a symmetric positive definite system
-# (Ostrowski-Reich; the stopping rule then never calls growing updates divergence)
-# (most Lanczos steps spent when nothing else gives the radius: multigrid, large grids)
-# Multigrid too: conjugate gradients with a symmetric positive definite preconditioner (the symmetric
-# cycle: SOR smoothing with omega in (0, 2), Galerkin coarse operators, an exact coarsest solve) lower
-# the error's energy norm at every step, while their residuals and updates need not fall (measured on a
+# (Ostrowski-Reich; the stopping rule then never calls growing updates divergence). Multigrid too:
+# conjugate gradients with a symmetric positive definite preconditioner (the symmetric cycle: SOR
+# smoothing with omega in (0, 2), Galerkin coarse operators, an exact coarsest solve) lower the error's
+# energy norm at every step, while their residuals and updates need not fall (measured on a
 # 96 x 96 random 1:1e6 mix: the updates rose 1000-fold over 10 steps while the error fell from 4.1 to
 # 0.68; the growth test had called that divergence).
 CONVERGENT_METHODS = ("gauss-seidel", "sor", "red-black-sor", "symmetric-sor", "multigrid")
