@@ -78,9 +78,6 @@ _EPS = float(np.finfo(float).eps)
 # six of its sixteen digits: common practice); below it, the tolerance is simply finer than the field's
 # magnitude allows.
 NEAR_SINGULAR_KAPPA = 1e6
-# How a norm of the inverse was found when it bounds the norm (relaxtui.solver.conditioning): only these
-# may grant "converged" on the residual bound alone at a stall
-TRUSTED_NORMS = ("exact", "bounded above by a quadratic barrier", "solved for with the multigrid hierarchy")
 
 
 @dataclass(frozen=True)
@@ -430,6 +427,8 @@ class StoppingRule:
             # the updates' estimate is not trusted here (residual_certified), so a stall is judged on the
             # residual bound: converged where it certifies the tolerance with a norm of the inverse that is
             # a bound (not the Lanczos estimate, which lies below the norm), else stalled with the bound
+            from relaxtui.solver.conditioning import TRUSTED_NORMS
+
             r = float(self.field_residual())
             bound = self._residual_bound(inv, r, floor, final=True)
             if bound <= self.tolerance and how in TRUSTED_NORMS:
