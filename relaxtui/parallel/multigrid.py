@@ -505,7 +505,7 @@ class StripMultigrid:
         residual over the ranks (one MAX reduction of the per-class maxima of each rank's own rows),
         then the same CG steps."""
         from relaxtui.kernels import measure
-        from relaxtui.solver.multigrid import RESIDUAL_BOUND_SLACK
+        from relaxtui.solver.multigrid import weighted_bound
 
         if not (0.0 < inv < math.inf):
             return None
@@ -513,22 +513,7 @@ class StripMultigrid:
         mine = np.zeros(self.table.shape[0])
         measure.class_residual_max(st.u, st.cls, self.table, mine)
         rho = self._max_bits(mine)  # NaN's bits beat every number's: a NaN anywhere stays NaN
-        rho[0] = 0.0
-        if not np.all(np.isfinite(rho)):
-            return None
-        if not rho.any():
-            return 0.0
-
-        def settled(res, tops):
-            top = tops[-1] if tops else 0.0
-            if top > 0.0 and inv * res <= RESIDUAL_BOUND_SLACK * top:
-                return top + inv * res
-            return None
-
-        found, res, top = self._solve_classes(rho, omega, settled)
-        if found is None and math.isfinite(res) and math.isfinite(top):
-            found = max(top, 0.0) + inv * res
-        return found if found is not None and math.isfinite(found) else None
+        return weighted_bound(rho, inv, lambda decide: self._solve_classes(rho, omega, decide))
 
     def _solve_classes(self, rhs, omega: float, decide):
         """``MultigridStepper._solve_classes`` by strips: the single-process steps (CG preconditioned by

@@ -576,22 +576,7 @@ class MultigridStepper:
             return None
         rho = np.zeros(op.table.shape[0])
         measure.class_residual_max(u, op.cls, op.table, rho)
-        rho[0] = 0.0
-        if not np.all(np.isfinite(rho)):
-            return None
-        if not rho.any():
-            return 0.0
-
-        def settled(res, tops):
-            top = tops[-1] if tops else 0.0
-            if top > 0.0 and inv * res <= RESIDUAL_BOUND_SLACK * top:
-                return top + inv * res
-            return None
-
-        found, res, top = self._solve_classes(rho, omega, settled)
-        if found is None and math.isfinite(res) and math.isfinite(top):
-            found = max(top, 0.0) + inv * res  # the steps ran out: still a bound, a looser one
-        return found if found is not None and math.isfinite(found) else None
+        return weighted_bound(rho, inv, lambda decide: self._solve_classes(rho, omega, decide))
 
     def _solve_classes(self, rhs, omega, decide):
         """CG preconditioned by the symmetric cycle on ``(I - W) x = rhs[class]`` (every fixed value 0) from
@@ -722,6 +707,29 @@ def inverse_norm_found(rho: float, tops: list) -> float | None:
     if not (math.isfinite(c) and c > 0.0 and abs(c - b) <= INVERSE_NORM_SETTLE * c and abs(b - a) <= INVERSE_NORM_SETTLE * b):
         return None
     return max(max(tops[-1 - 2 * n :]) * (1.0 + 2.0 * INVERSE_NORM_SETTLE), 1.0)
+
+
+def weighted_bound(rho: np.ndarray, inv: float, solve) -> float | None:
+    """:meth:`MultigridStepper.residual_bound` from each class's largest residual ``rho`` (row 0 ignored)
+    and a ``solve(decide)`` of ``(I - W) x = rho`` (``_solve_classes``): ``max x + inv * max|s|`` once
+    ``inv * max|s|`` is ``RESIDUAL_BOUND_SLACK`` of ``max x`` or the steps run out (then looser, still a
+    bound); None for a non-finite residual. Shared by the single-process and the distributed solve."""
+    rho[0] = 0.0
+    if not np.all(np.isfinite(rho)):
+        return None
+    if not rho.any():
+        return 0.0
+
+    def settled(res, tops):
+        top = tops[-1] if tops else 0.0
+        if top > 0.0 and inv * res <= RESIDUAL_BOUND_SLACK * top:
+            return top + inv * res
+        return None
+
+    found, res, top = solve(settled)
+    if found is None and math.isfinite(res) and math.isfinite(top):
+        found = max(top, 0.0) + inv * res
+    return found if found is not None and math.isfinite(found) else None
 
 
 def _shifted_classes(operator) -> np.ndarray:
