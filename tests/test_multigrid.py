@@ -306,10 +306,10 @@ HONESTY_CASES = {"model": lambda: model_problem(63, hot=100.0), "two-materials":
                  "random": lambda: random_case(8, n=48, contrast=1e3), "heat-spreader": lambda: demo("heat-spreader")}
 
 
-def _half_and_half(n: int, contrast: float, seed: int, low: float = 0.5):
+def _half_and_half(n: int, contrast: float, draw: int, low: float = 0.5):
     """n x n cells: a random mix of conductivities 1 and 1 / contrast (the fraction ``low`` of the cells),
     held at 100 on top and 0 on the other sides (a stress case: conductor and insulator grains)."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(draw)
     mix = rng.random((n - 2, n - 2)) < low
     rows = ["H" * n] + ["C" + "".join("a" if m else "." for m in row) + "C" for row in mix] + ["C" * n]
     return make_case(rows, {"C": fixed("cold", 0.0), ".": interior("plate"), "a": interior("low", conductivity=1.0 / contrast),
@@ -374,14 +374,14 @@ def test_multigrid_on_a_high_contrast_mix_keeps_the_converged_promise():
     assert run.report["estimated_error"] >= 0.25 * error  # the floor it reports is of the error's size
 
 
-@pytest.mark.parametrize("seed, low, tolerance", [(5, 0.7, 1e-3), (5, 0.3, 1e-6)])
-def test_multigrid_on_jumps_of_a_million_keeps_the_converged_promise(seed, low, tolerance):
+@pytest.mark.parametrize("draw, low, tolerance", [(5, 0.7, 1e-3), (5, 0.3, 1e-6)])
+def test_multigrid_on_jumps_of_a_million_keeps_the_converged_promise(draw, low, tolerance):
     # 96 x 96 random mixes with a conductivity jump of 1e6 (reference: spsolve's LU with two steps of
     # iterative refinement, as above). Before the residual certificate was asked of multigrid at such
     # jumps (relaxtui.solver.conditioning.CERTIFIED_CONTRAST) the first said converged, claimed 6.6e-4,
     # true error 1.6e-3; the second said diverged after 21 steps (its updates rose 1000-fold while the
     # error fell from 4.1 to 0.68: CG's residuals need not fall, multigrid now counts as convergent).
-    case = _half_and_half(96, 1e6, seed, low)
+    case = _half_and_half(96, 1e6, draw, low)
     matrix, b, index = exact.assemble(case)
     lu = scipy.sparse.linalg.splu(matrix.tocsc())
     x = lu.solve(b)

@@ -69,7 +69,7 @@ RESIDUAL_CERTIFIED_METHODS = ("symmetric-sor",)
 # cycle leaves to CG (about one per island of the other material) until CG has found them, so its
 # converged estimate needs the residual certificate too where a cell's neighbour weights differ by this
 # ratio or more (a jump of conductivity by c gives a ratio of about c / 2). Measured on random mixes of
-# 96 x 96 and 160 x 160 cells (two seeds, 30/50/70 % of the low conductivity, tolerances 1e-3, 1e-6 and
+# 96 x 96 and 160 x 160 cells (two random draws, 30/50/70 % of the low conductivity, tolerances 1e-3, 1e-6 and
 # 1e-8, against spsolve): at a jump of 1e3 the true error at most 0.2 times the claimed one; at 1e4
 # within the tolerance but up to 2.6 times the claim; at 3e4 3 of 36 runs said converged up to 1.2
 # times the tolerance away; at 1e5 and 1e6 12 of 72, up to 10 times the tolerance (77 times their own
