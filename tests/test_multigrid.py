@@ -396,6 +396,26 @@ def test_multigrid_on_jumps_of_a_million_keeps_the_converged_promise(draw, low, 
     assert run.report["estimated_error"] >= error, (error, run.report["message"])  # the certified bound
 
 
+def test_multigrid_at_jumps_stalls_once_its_updates_are_rounding_noise():
+    # A 96 x 96 1:1e6 mix at 1e-6: float64's attainable accuracy (about 3e-7 here) lies above every update
+    # once CG's residual has reached its plateau. The run stalls then, with the certified bound (above
+    # the true error, against spsolve with two refinement steps) and the reason; before, it ran on until
+    # the no-progress window, which doubles with each noise minimum of the updates, gave up: 4 511
+    # iterations (measured), 799 now.
+    case = _half_and_half(96, 1e6, 5, 0.5)
+    matrix, b, index = exact.assemble(case)
+    lu = scipy.sparse.linalg.splu(matrix.tocsc())
+    x = lu.solve(b)
+    for _ in range(2):
+        x = x + lu.solve(b - matrix @ x)
+    run = solve(case, method="multigrid", tolerance=1e-6)
+    mask = index >= 0
+    error = float(np.max(np.abs(run.field[mask] - x[index[mask]])))
+    assert run.report["status"] == "stalled" and run.report["sweeps"] <= 1500, (run.report["sweeps"], run.report["message"])
+    assert "attainable accuracy" in run.report["message"], run.report["message"]
+    assert run.report["estimated_error"] >= error
+
+
 @pytest.mark.parametrize("name", list(HONESTY_CASES))
 @pytest.mark.parametrize("tol", [1e-2, 1e-4, 1e-6, 1e-8])
 def test_converged_means_within_tolerance(name, tol):
