@@ -316,6 +316,18 @@ def _half_and_half(n: int, contrast: float, draw: int, low: float = 0.5):
                             "H": fixed("hot", 100.0)})
 
 
+def _refined(case, steps: int):
+    """The exact discrete solution by scipy's sparse LU (tests/exact.py's matrix) with ``steps`` steps of
+    iterative refinement (common practice; plain spsolve is itself 3e-7 off on a 1:1e7 mix), and the
+    unknowns' index."""
+    matrix, b, index = exact.assemble(case)
+    lu = scipy.sparse.linalg.splu(matrix.tocsc())
+    x = lu.solve(b)
+    for _ in range(steps):
+        x = x + lu.solve(b - matrix @ x)
+    return x, index
+
+
 @pytest.mark.parametrize("contrast", [1e4, 1e8])
 def test_norm_of_the_inverse_on_a_high_contrast_mix(contrast):
     # The hierarchy's CG for (I - W) w = 1 against scipy's spsolve of A w = diag(A) (as above). Its first
@@ -360,11 +372,7 @@ def test_multigrid_on_a_high_contrast_mix_keeps_the_converged_promise():
     # Reference: spsolve's LU with three steps of iterative refinement (scipy.sparse.linalg.splu;
     # refinement is common practice: plain spsolve is itself 3e-7 off here).
     case = _half_and_half(96, 1e7, 2)
-    matrix, b, index = exact.assemble(case)
-    lu = scipy.sparse.linalg.splu(matrix.tocsc())
-    x = lu.solve(b)
-    for _ in range(3):
-        x = x + lu.solve(b - matrix @ x)
+    x, index = _refined(case, 3)
     run = solve(case, method="multigrid", tolerance=1e-6)
     mask = index >= 0
     error = float(np.max(np.abs(run.field[mask] - x[index[mask]])))
@@ -382,11 +390,7 @@ def test_multigrid_on_jumps_of_a_million_keeps_the_converged_promise(draw, low, 
     # true error 1.6e-3; the second said diverged after 21 steps (its updates rose 1000-fold while the
     # error fell from 4.1 to 0.68: CG's residuals need not fall, multigrid now counts as convergent).
     case = _half_and_half(96, 1e6, draw, low)
-    matrix, b, index = exact.assemble(case)
-    lu = scipy.sparse.linalg.splu(matrix.tocsc())
-    x = lu.solve(b)
-    for _ in range(2):
-        x = x + lu.solve(b - matrix @ x)
+    x, index = _refined(case, 2)
     run = solve(case, method="multigrid", tolerance=tolerance)
     mask = index >= 0
     error = float(np.max(np.abs(run.field[mask] - x[index[mask]])))
@@ -403,11 +407,7 @@ def test_multigrid_at_jumps_stalls_once_its_updates_are_rounding_noise():
     # the no-progress window, which doubles with each noise minimum of the updates, gave up: 4 511
     # iterations (measured), 799 now.
     case = _half_and_half(96, 1e6, 5, 0.5)
-    matrix, b, index = exact.assemble(case)
-    lu = scipy.sparse.linalg.splu(matrix.tocsc())
-    x = lu.solve(b)
-    for _ in range(2):
-        x = x + lu.solve(b - matrix @ x)
+    x, index = _refined(case, 2)
     run = solve(case, method="multigrid", tolerance=1e-6)
     mask = index >= 0
     error = float(np.max(np.abs(run.field[mask] - x[index[mask]])))
