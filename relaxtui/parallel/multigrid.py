@@ -507,13 +507,11 @@ class StripMultigrid:
         from relaxtui.kernels import measure
         from relaxtui.solver.multigrid import weighted_bound
 
-        if not (0.0 < inv < math.inf):
-            return None
         st = self.strip
         mine = np.zeros(self.table.shape[0])
         measure.class_residual_max(st.u, st.cls, self.table, mine)
         rho = self._max_bits(mine)  # NaN's bits beat every number's: a NaN anywhere stays NaN
-        return weighted_bound(rho, inv, lambda decide: self._solve_classes(rho, omega, decide))
+        return weighted_bound(rho, inv, lambda rhs, decide: self._solve_classes(rhs, omega, decide))
 
     def _solve_classes(self, rhs, omega: float, decide):
         """``MultigridStepper._solve_classes`` by strips: the single-process steps (CG preconditioned by

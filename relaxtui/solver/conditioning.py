@@ -86,13 +86,9 @@ def weight_contrast(table) -> float:
     the conductivity jumps of a picture, as the operator sees them (a harmonic-mean face conductance
     between k and c k, c << 1, is about 2 c k)."""
     t = np.asarray(table, dtype=np.float64)[1:, :4]  # row 0 is no unknown's class
-    if t.size == 0:
-        return 1.0
-    positive = t > 0.0
-    top = np.where(positive, t, 0.0).max(axis=1)
-    low = np.where(positive, t, np.inf).min(axis=1)
-    ratio = np.where(np.isfinite(low) & (low > 0.0), top / np.where(np.isfinite(low), low, 1.0), 1.0)
-    return float(max(1.0, ratio.max()))
+    low = np.where(t > 0.0, t, np.inf).min(axis=1, initial=np.inf)
+    some = np.isfinite(low)  # classes with a neighbour
+    return float((t[some].max(axis=1) / low[some]).max(initial=1.0))
 
 
 def exact_inverse_norm(operator) -> float | None:

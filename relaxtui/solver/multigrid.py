@@ -572,11 +572,11 @@ class MultigridStepper:
         from relaxtui.kernels import measure
 
         op = self.operator
-        if self.h is None or self.direct or not self.krylov or op.unknowns == 0 or not (0.0 < inv < math.inf):
+        if self.h is None or self.direct or not self.krylov or op.unknowns == 0:
             return None
         rho = np.zeros(op.table.shape[0])
         measure.class_residual_max(u, op.cls, op.table, rho)
-        return weighted_bound(rho, inv, lambda decide: self._solve_classes(rho, omega, decide))
+        return weighted_bound(rho, inv, lambda rhs, decide: self._solve_classes(rhs, omega, decide))
 
     def _solve_classes(self, rhs, omega, decide):
         """CG preconditioned by the symmetric cycle on ``(I - W) x = rhs[class]`` (every fixed value 0) from
@@ -711,9 +711,12 @@ def inverse_norm_found(rho: float, tops: list) -> float | None:
 
 def weighted_bound(rho: np.ndarray, inv: float, solve) -> float | None:
     """:meth:`MultigridStepper.residual_bound` from each class's largest residual ``rho`` (row 0 ignored)
-    and a ``solve(decide)`` of ``(I - W) x = rho`` (``_solve_classes``): ``max x + inv * max|s|`` once
+    and a ``solve(rhs, decide)`` of ``(I - W) x = rhs`` (``_solve_classes``): ``max x + inv * max|s|`` once
     ``inv * max|s|`` is ``RESIDUAL_BOUND_SLACK`` of ``max x`` or the steps run out (then looser, still a
-    bound); None for a non-finite residual. Shared by the single-process and the distributed solve."""
+    bound); None for a non-finite residual or norm. Shared by the single-process and the distributed solve."""
+    if not 0.0 < inv < math.inf:
+        return None
+    rho = rho.copy()
     rho[0] = 0.0
     if not np.all(np.isfinite(rho)):
         return None
@@ -726,7 +729,7 @@ def weighted_bound(rho: np.ndarray, inv: float, solve) -> float | None:
             return top + inv * res
         return None
 
-    found, res, top = solve(settled)
+    found, res, top = solve(rho, settled)
     if found is None and math.isfinite(res) and math.isfinite(top):
         found = max(top, 0.0) + inv * res
     return found if found is not None and math.isfinite(found) else None

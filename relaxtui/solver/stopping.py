@@ -438,11 +438,8 @@ class StoppingRule:
                 if floor > self.tolerance:
                     self.reason = self._floor_reason(inv, how, floor)
                 else:
-                    n = self._n
-                    noise = n - self._segment >= 2 * CERTIFIED_STALL_WINDOW and float(
-                        self._updates[n - max(CERTIFIED_STALL_WINDOW, (n - self._segment) // 2) : n].max()) <= floor
-                    why = (f"the updates are below {self.float_name}'s attainable accuracy {floor:.3g}" if noise
-                           else "no progress over a long window")
+                    why = (f"the updates are below {self.float_name}'s attainable accuracy {floor:.3g}"
+                           if self._updates_are_noise() else "no progress over a long window")
                     self.reason = (f"{why}; the residual (largest {r:.3g}, norm of the inverse "
                                    f"{inv:.3g}, {how}) certifies only an error below {bound:.3g} > {self.tolerance:.3g}")
                 return STALLED, Estimate(bound, est.factor, est.measured, est.mature)
@@ -563,10 +560,14 @@ class StoppingRule:
         floor = self.floor_ulps * self.eps * self.scale
         return float(self._updates[self._n - self.min_window : self._n].max()) <= floor
 
-    def _below_attainable(self, window: np.ndarray) -> bool:
-        """Whether every update of ``window`` lies below the rounding floor of the field as it is now (the
-        floor found at an earlier certificate may belong to a larger field: a huge start comes down)."""
-        top = float(window.max())
+    def _updates_are_noise(self) -> bool:
+        """Whether every update of the later half of the run (``CERTIFIED_STALL_WINDOW`` at least; the run
+        twice that long) lies below the rounding floor of the field as it is now: the floor found at an
+        earlier certificate may belong to a larger field (a huge start comes down)."""
+        seg = self._updates[self._segment : self._n]
+        if self.floor is None or len(seg) < 2 * CERTIFIED_STALL_WINDOW:
+            return False
+        top = float(seg[-max(CERTIFIED_STALL_WINDOW, len(seg) // 2) :].max())
         if not top <= self.floor:  # the earlier floor is at least the present one (the scale only grows)
             return False
         if self.field_magnitude is None or self.inverse_norm is None:
@@ -581,9 +582,7 @@ class StoppingRule:
             return False
         if self.at_floor() and est.error > self.tolerance:
             return True  # rounding noise: no further progress is possible
-        quiet = max(CERTIFIED_STALL_WINDOW, len(seg) // 2)
-        if (self.residual_bound is not None and self.floor is not None and est.error > self.tolerance
-                and len(seg) >= 2 * CERTIFIED_STALL_WINDOW and self._below_attainable(seg[-quiet:])):
+        if self.residual_bound is not None and est.error > self.tolerance and self._updates_are_noise():
             # multigrid at conductivity jumps (its certificate is asked for): every update of the later half
             # of the run lies below float64's attainable accuracy, so the changes are rounding noise, far
             # above FLOOR_ULPS (measured: a 160 x 160 1:1e6 mix ran 24 000 iterations, 80 s, past its
