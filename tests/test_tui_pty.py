@@ -2,7 +2,8 @@
 
 The screen must reach the converged status of the run, and ``q`` must quit
 cleanly with exit status 0. A stop signal (a hang-up of the terminal, SIGTERM)
-must leave the session's runs on disk, whole, with the headless solve's exit code.
+must leave the session's runs on disk, whole, with the headless solve's exit code. The headless
+``relaxtui solve`` too must write its set when its terminal hangs up under its progress display.
 """
 
 from __future__ import annotations
@@ -91,8 +92,8 @@ def test_study_flow_at_80x24_lands_no_key_in_a_field(tmp_path):
 
 
 @contextlib.contextmanager
-def relaxtui_in_terminal(tmp_path, case, *options, env_extra=None):
-    """``relaxtui open OPTIONS CASE`` as the leader of its own session on a new 80 x 24 pseudo-terminal
+def relaxtui_in_terminal(tmp_path, case, *options, env_extra=None, command="open"):
+    """``relaxtui COMMAND OPTIONS CASE`` as the leader of its own session on a new 80 x 24 pseudo-terminal
     (its controlling terminal, as under sshd or tmux), so that closing the terminal's master side
     hangs it up: the kernel then sends the session SIGHUP. Yields (process, pexpect reader of the screen)."""
     import fcntl
@@ -109,7 +110,7 @@ def relaxtui_in_terminal(tmp_path, case, *options, env_extra=None):
     env.update(TERM="xterm-256color", COLUMNS="80", LINES="24", **(env_extra or {}))
     master, slave = pty.openpty()
     fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 80, 0, 0))
-    proc = subprocess.Popen([str(exe), "open", *options, str(case)], stdin=slave, stdout=slave, stderr=slave,
+    proc = subprocess.Popen([str(exe), command, *options, str(case)], stdin=slave, stdout=slave, stderr=slave,
                             cwd=str(tmp_path), env=env, start_new_session=True,
                             preexec_fn=lambda: fcntl.ioctl(0, termios.TIOCSCTTY, 0))
     os.close(slave)
@@ -176,6 +177,28 @@ def test_a_hang_up_saves_the_run_in_progress_even_through_a_second_signal(tmp_pa
     # the headless solve's wording for a run a signal stopped (tests/test_signals.py)
     assert report["status"] == "cancelled" and report["message"].endswith(" (stopped by SIGHUP)")
     assert report["sweeps"] > 0
+
+
+def test_a_hang_up_during_a_headless_solve_still_writes_its_set(tmp_path):
+    # relaxtui solve with its progress display on the terminal, which then goes away (an SSH drop): the
+    # display's last frame failed on the hung-up terminal (EIO) and no output was written (seen in tmux,
+    # kill-session); the set must be written, cancelled, with the exit code of a stop signal
+    import hashlib
+
+    # Jacobi to 1e-8 on 200 x 200: about 150 000 sweeps, many chunks after the hang-up (a run that ends
+    # within the chunk the signal lands in keeps what it reached: relaxtui.commands.solve.exit_code)
+    case = make_plate(tmp_path, n=200, method="jacobi", tolerance=1e-8)
+    options = ("--out", "f.npy", "--report", "r.json", "--history", "h.csv")
+    pause = {"RELAXTUI_TEST_PAUSE_AT": "solving"}  # stopped after its first chunk, the display showing it
+    with relaxtui_in_terminal(tmp_path, case, *options, env_extra=pause, command="solve") as (proc, screen):
+        wait_stopped(proc)
+        screen.close()  # the kernel hangs the terminal up: it sends the session SIGHUP and SIGCONT
+        code = proc.wait(120)
+    assert code == 130  # relaxtui.commands.solve.exit_code: "interrupted"
+    report = json.loads((tmp_path / "r.json").read_text(encoding="utf-8"))
+    assert report["status"] == "cancelled" and report["message"].endswith(" (stopped by SIGHUP)"), report["message"]
+    for entry in report["outputs"].values():
+        assert hashlib.sha256((tmp_path / entry["path"]).read_bytes()).hexdigest() == entry["sha256"], entry["path"]
 
 
 def test_sigterm_saves_the_running_run_and_says_so(tmp_path):

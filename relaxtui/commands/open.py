@@ -114,18 +114,18 @@ class _StopSaver(threading.Thread):
             if self._closed:  # the UI ended first (q): nothing to save
                 return
             self._saving = True
-        from relaxtui.commands.solve import EXIT_INTERRUPTED
+        from relaxtui.commands.solve import EXIT_INTERRUPTED, leave_hung_up_terminal
         from relaxtui.tui.worker import save_on_signal
 
         self.signals.writing = True  # from here on a signal is only counted
-        gone = _leave_hung_up_terminal()
+        gone = leave_hung_up_terminal()
         try:
             self.outcome = save_on_signal(self.session, self.signals, Path("."))  # the export's relative names
         except Exception:  # pragma: no cover - save_on_signal reports each run's failure itself
             self.outcome = ([], EXIT_INTERRUPTED)
         finally:
             self.done.set()
-        gone = _leave_hung_up_terminal() or gone  # a hang-up that came after the signal
+        gone = leave_hung_up_terminal() or gone  # a hang-up that came after the signal
         if not self.ui_closed.wait(GONE_GRACE if gone else UI_GRACE):
             # the UI did not come down (its output thread stuck on a dead terminal): every file is
             # written and renamed, so end the process here
@@ -142,39 +142,6 @@ class _StopSaver(threading.Thread):
             return None
         self.done.wait()
         return self.outcome
-
-
-def _leave_hung_up_terminal() -> bool:
-    """Point standard input, output and error at /dev/null where they are a terminal that has hung up
-    (a tty whose every call fails with EIO), so that nothing the UI still writes fails; True if one was."""
-    import errno
-    import stat
-    import termios
-
-    dead = []
-    for fd in (0, 1, 2):
-        try:
-            if not stat.S_ISCHR(os.fstat(fd).st_mode):
-                continue
-            termios.tcgetattr(fd)
-        except termios.error as exc:
-            if exc.args and exc.args[0] == errno.EIO:
-                dead.append(fd)
-        except OSError:
-            continue
-    if not dead:
-        return False
-    try:
-        null = os.open(os.devnull, os.O_RDWR)
-    except OSError:
-        return True
-    for fd in dead:
-        try:
-            os.dup2(null, fd)
-        except OSError:
-            pass
-    os.close(null)
-    return True
 
 
 def _tell(saved, name: str) -> None:

@@ -100,6 +100,41 @@ def _stop_signals_to(event: threading.Event):
             signal.signal(sig, old)
 
 
+def leave_hung_up_terminal() -> bool:
+    """Point standard input, output and error at /dev/null where they are a terminal that has hung up
+    (a tty whose every call fails with EIO), so that nothing still written there fails (the progress
+    display, the summary, the TUI's last frames); True if one was. ``relaxtui solve`` and ``relaxtui
+    open`` call it once a stop signal has come: an SSH drop hangs the terminal up and sends SIGHUP."""
+    import errno
+    import stat
+    import termios
+
+    dead = []
+    for fd in (0, 1, 2):
+        try:
+            if not stat.S_ISCHR(os.fstat(fd).st_mode):
+                continue
+            termios.tcgetattr(fd)
+        except termios.error as exc:
+            if exc.args and exc.args[0] == errno.EIO:
+                dead.append(fd)
+        except OSError:
+            continue
+    if not dead:
+        return False
+    try:
+        null = os.open(os.devnull, os.O_RDWR)
+    except OSError:
+        return True
+    for fd in dead:
+        try:
+            os.dup2(null, fd)
+        except OSError:
+            pass
+    os.close(null)
+    return True
+
+
 # kept for callers of the previous name (Ctrl-C only behaved the same way)
 _sigint_to = _stop_signals_to
 
@@ -263,6 +298,9 @@ def run(args) -> int:
                 pause_for_tests("solving" if steps == 1 else "solving:2")
         pause_for_tests("solved")  # the run has ended (a signal now changes nothing but the wait)
         signals.writing = True  # from here on a signal never aborts: the set is finished first
+        # a hang-up (an SSH drop) leaves a terminal every write to which fails: the progress display's
+        # last frame raised there before a thing was written (seen in tmux: kill-session, no output set)
+        leave_hung_up_terminal()
         display.stop()
         if run.operator is not None:  # nothing runs on this operator again: an unfinished estimate frees its vectors
             run.operator.radius_job().discard()
