@@ -204,6 +204,21 @@ def test_sigkill_while_writing_leaves_a_consistent_set_or_none(tmp_path, moment,
         assert not list(tmp_path.glob(".*.part"))
 
 
+def test_a_closed_progress_pipe_does_not_stop_the_run(tmp_path):
+    # stderr a pipe whose reader has gone (a log pager quit, a launcher that died): the progress lines
+    # fail with EPIPE (Python ignores SIGPIPE), the run must go on and write its set anyway
+    write_case(tmp_path, n=40)
+    args = ["solve", "case.toml", "--method", "jacobi", "--max-sweeps", "300", "--out", "f.npy", "--report", "r.json",
+            "--history", "h.csv"]
+    proc = subprocess.Popen(command() + args, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc.stderr.close()  # before the first progress line
+    out, _ = proc.communicate(timeout=120)
+    assert proc.returncode == 1, out  # the sweep limit: "not converged" (relaxtui.commands.solve.exit_code)
+    assert check_set(tmp_path) == "complete"
+    assert json.loads((tmp_path / "r.json").read_text())["status"] == "sweep-limit"
+    assert "sweep-limit" in out  # the summary on stdout, which is still read
+
+
 def test_concurrent_runs_to_the_same_paths_never_mix(tmp_path):
     write_case(tmp_path, n=40)
     runs = [start(tmp_path, "", "--max-sweeps", str(n)) for n in (200, 300, 400, 500)]

@@ -368,8 +368,25 @@ def _g(x, digits: int = 4) -> str:
     return "n/a" if x is None else f"{x:.{digits}g}"
 
 
+def _best_effort(method):
+    """A display method whose writes may fail (stderr a closed pipe, a terminal that has hung up): the
+    display then falls silent and the run goes on to write its outputs."""
+    import functools
+
+    @functools.wraps(method)
+    def wrapped(self, *args):
+        try:
+            return method(self, *args)
+        except OSError:
+            self.quiet = True
+            self._progress = None
+
+    return wrapped
+
+
 class _Display:
-    """Rich progress on a terminal's stderr; plain lines every few seconds otherwise."""
+    """Rich progress on a terminal's stderr; plain lines every few seconds otherwise. Progress only:
+    a failing write silences it (:func:`_best_effort`), it never ends the run."""
 
     def __init__(self, run, quiet: bool):
         self.run = run
@@ -380,6 +397,7 @@ class _Display:
         self._last_line = 0.0
         self._e0 = None
 
+    @_best_effort
     def start(self, text: str) -> None:
         if self.quiet:
             return
@@ -400,6 +418,7 @@ class _Display:
         else:
             print(f"relaxtui: {text}", file=sys.stderr, flush=True)
 
+    @_best_effort
     def stage(self, text: str) -> None:
         """What the preparation is doing now (assembly, kernels, Lanczos steps so far)."""
         if self.quiet:
@@ -413,6 +432,7 @@ class _Display:
             self._last_line = time.monotonic()
             print(f"relaxtui: preparing: {text}", file=sys.stderr, flush=True)
 
+    @_best_effort
     def update(self, p) -> None:
         if self.quiet:
             return
@@ -439,6 +459,7 @@ class _Display:
             self._last_line = time.monotonic()
             print(f"relaxtui: {info}", file=sys.stderr, flush=True)
 
+    @_best_effort
     def stop(self) -> None:
         if self._progress is not None:
             self._progress.stop()

@@ -78,7 +78,8 @@ def run(args) -> int | None:
 
 def _lead(comm, group, args, threads: int) -> int:
     from relaxtui.case import load_case
-    from relaxtui.commands.solve import _default_outputs, _Display, _stop_signals_to, _summary, _write_all, exit_code
+    from relaxtui.commands.solve import (_default_outputs, _Display, _stop_signals_to, _summary, _write_all, exit_code,
+                                        leave_hung_up_terminal)
     from relaxtui.parallel import stop
     from relaxtui.parallel.group import DISTRIBUTED_METHODS, STEPPED_METHODS, DistributedOperator, refusal
     from relaxtui.output.atomic import pause_for_tests
@@ -126,6 +127,7 @@ def _lead(comm, group, args, threads: int) -> int:
         pause_for_tests("solved")
         signals.writing = True  # from here on a signal never aborts: the set is finished first
         group.check_stop(writing=True)  # the followers too
+        leave_hung_up_terminal()  # as in one process (relaxtui.commands.solve.run)
         display.stop()
         if run.operator is not None:  # as in one process: an unfinished estimate frees its arrays first
             run.operator.radius_job().discard()
